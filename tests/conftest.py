@@ -1,0 +1,74 @@
+"""Shared fixtures: a small invented log with every feature kind, written hive-partitioned."""
+
+import datetime as dt
+import json
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+SMALL_SPEC = {
+    "label": {"column": "clicked"},
+    "time": {"column": "day"},
+    "weight": {"column": "w"},
+    "hashing": {"bits": 12, "seed": 42},
+    "features": [
+        {"column": "shop", "kind": "categorical"},
+        {"column": "hour", "kind": "categorical"},
+        {"column": "tags", "kind": "multi"},
+        {"column": "amount", "kind": "numeric", "transform": "log1p"},
+        {"column": "age_days", "kind": "numeric", "edges": [1, 7, 30]},
+    ],
+    "crosses": [["shop", "hour"], ["tags", "age_days"]],
+}
+
+
+def make_table(rng: np.random.Generator, n: int, day: dt.date | None = None) -> pa.Table:
+    """An invented table of n rows with nulls in every feature column."""
+    shops = np.array([f"shop-{i}" for i in range(30)] + ["é-ß-☃"], dtype=object)
+    tags_pool = [f"t{i}" for i in range(8)]
+    shop = shops[rng.integers(0, shops.size, n)]
+    shop[rng.random(n) < 0.05] = None
+    hour = rng.integers(0, 24, n)
+    hour_mask = rng.random(n) < 0.05
+    tags = []
+    for _ in range(n):
+        u = rng.random()
+        if u < 0.1:
+            tags.append(None)
+        else:
+            k = rng.integers(0, 4)
+            tags.append([tags_pool[j] if rng.random() > 0.1 else None for j in rng.integers(0, 8, k)])
+    amount = rng.exponential(20, n) - 2
+    amount_mask = rng.random(n) < 0.1
+    age = rng.integers(0, 60, n).astype(float)
+    age_mask = rng.random(n) < 0.1
+    clicked = (rng.random(n) < 0.2).astype(np.int64)
+    cols = {
+        "shop": pa.array(shop, pa.string()),
+        "hour": pa.array(hour, pa.int64(), mask=hour_mask),
+        "tags": pa.array(tags, pa.list_(pa.string())),
+        "amount": pa.array(amount, pa.float64(), mask=amount_mask),
+        "age_days": pa.array(age, pa.float64(), mask=age_mask),
+        "clicked": pa.array(clicked),
+        "w": pa.array(rng.uniform(0.5, 2.0, n)),
+    }
+    if day is not None:
+        cols["day"] = pa.array([day] * n, pa.date32())
+    return pa.table(cols)
+
+
+@pytest.fixture
+def small_log(tmp_path):
+    """A hive-partitioned folder of three days (two files on the second day) plus its spec file."""
+    rng = np.random.default_rng(5)
+    root = tmp_path / "logs"
+    for d, parts in [(1, 1), (2, 2), (3, 1)]:
+        folder = root / f"day=2026-03-0{d}"
+        folder.mkdir(parents=True)
+        for p in range(parts):
+            pq.write_table(make_table(rng, 700 + 100 * p), folder / f"part-{p}.parquet", row_group_size=300)
+    spec_path = tmp_path / "spec.json"
+    spec_path.write_text(json.dumps(SMALL_SPEC))
+    return root, spec_path

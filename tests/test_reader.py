@@ -1,0 +1,171 @@
+"""The reader's batches against a row-by-row reference written from the README's hashing contract
+with the mmh3 library, plus streaming, resume, shuffling and bad-input behaviour."""
+
+import datetime as dt
+import json
+import math
+
+import mmh3
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+import scipy.sparse as sp
+
+from trainer.errors import UserError
+from trainer.reader import Position, Reader
+from trainer.spec import load_spec
+
+from conftest import SMALL_SPEC, make_table
+
+
+def canonical(v):
+    # the contract's canonical strings (README): ints in decimal, booleans true/false, dates ISO
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, dt.date):
+        return v.isoformat()
+    return str(v)
+
+
+def reference_row(row: dict, spec: dict) -> dict[int, float]:
+    """Contract, row by row, with mmh3 (the reference implementation of MurmurHash3_x86_32)."""
+    seed, mask = spec["hashing"]["seed"], (1 << spec["hashing"]["bits"]) - 1
+    out: dict[int, float] = {}
+
+    def add(token: bytes, value: float):
+        b = mmh3.hash(token, seed, signed=False) & mask
+        out[b] = out.get(b, 0.0) + value
+
+    toks = {}
+    for f in spec["features"]:
+        c, v = f["column"], row[f["column"]]
+        if f["kind"] == "categorical":
+            toks[c] = [] if v is None else [c.encode() + b"\x1f" + canonical(v).encode()]
+        elif f["kind"] == "multi":
+            toks[c] = [] if v is None else [c.encode() + b"\x1f" + canonical(e).encode() for e in v if e is not None]
+        elif "edges" in f:
+            toks[c] = [] if v is None else [c.encode() + b"\x1f#" + str(sum(e <= v for e in f["edges"])).encode()]
+        else:
+            toks[c] = []
+            if v is not None:
+                x = math.copysign(math.log1p(abs(v)), v) if f.get("transform") == "log1p" else v
+                add(c.encode(), x)
+        for t in toks[c]:
+            add(t, 1.0)
+    for cross in spec["crosses"]:
+        combos = [b""]
+        for i, c in enumerate(cross):
+            combos = [a + (b"\x1e" if i else b"") + t for a in combos for t in toks[c]]
+        for t in combos:
+            add(t, 1.0)
+    return out
+
+
+def to_dense_rows(batches, n_buckets):
+    mats = [sp.csr_matrix((b.data, b.indices, b.indptr), shape=(b.n_rows, n_buckets)) for b in batches]
+    return sp.vstack(mats).toarray()
+
+
+def all_rows(root):
+    tables = [pq.read_table(p) for p in sorted(root.rglob("*.parquet"))]
+    return pa.concat_tables(tables).to_pylist()
+
+
+@pytest.mark.parametrize("dictionary", [True, False])
+def test_batches_match_contract_reference(small_log, dictionary):
+    root, spec_path = small_log
+    spec = load_spec(spec_path)
+    reader = Reader(spec, root, batch_rows=500, dictionary=dictionary)
+    batches = list(reader.batches())
+    got = to_dense_rows(batches, spec.n_buckets)
+    rows = all_rows(root)
+    assert got.shape[0] == len(rows) == sum(b.n_rows for b in batches)
+    want = np.zeros_like(got)
+    for i, r in enumerate(rows):
+        for b, v in reference_row(r, SMALL_SPEC).items():
+            want[i, b] = v
+    np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-12)
+    labels = np.concatenate([b.labels for b in batches])
+    np.testing.assert_array_equal(labels, [r["clicked"] for r in rows])
+    np.testing.assert_allclose(np.concatenate([b.weights for b in batches]), [r["w"] for r in rows])
+    assert all(b.n_rows == 500 for b in batches[:-1])
+
+
+def test_dictionary_and_plain_paths_identical(small_log):
+    root, spec_path = small_log
+    spec = load_spec(spec_path)
+    a = list(Reader(spec, root, batch_rows=333, dictionary=True).batches())
+    b = list(Reader(spec, root, batch_rows=333, dictionary=False).batches())
+    assert len(a) == len(b)
+    for x, y in zip(a, b):
+        for k in ("indptr", "indices", "data", "labels", "weights"):
+            np.testing.assert_array_equal(getattr(x, k), getattr(y, k))
+
+
+def test_date_filter_on_partition_key(small_log):
+    root, spec_path = small_log
+    spec = load_spec(spec_path)
+    reader = Reader(spec, root, start=dt.date(2026, 3, 2), end=dt.date(2026, 3, 2), batch_rows=10_000)
+    assert len(reader.files) == 2  # only the second day's two files are opened
+    assert sum(b.n_rows for b in reader.batches()) == 700 + 800
+
+
+def test_date_filter_on_column(tmp_path):
+    rng = np.random.default_rng(1)
+    parts = [make_table(rng, 200, dt.date(2026, 3, d)) for d in (1, 2, 3)]
+    pq.write_table(pa.concat_tables(parts), tmp_path / "one.parquet", row_group_size=200)
+    spec_path = tmp_path / "spec.json"
+    spec_path.write_text(json.dumps(SMALL_SPEC))
+    spec = load_spec(spec_path)
+    r = Reader(spec, tmp_path / "one.parquet", start=dt.date(2026, 3, 2), batch_rows=1000)
+    assert sum(b.n_rows for b in r.batches()) == 400
+    with pytest.raises(UserError, match="no rows left"):
+        list(Reader(spec, tmp_path / "one.parquet", start=dt.date(2027, 1, 1), batch_rows=100).batches())
+
+
+@pytest.mark.parametrize("shuffle", [0, 450])
+def test_resume_from_any_batch_gives_same_stream(small_log, shuffle):
+    root, spec_path = small_log
+    spec = load_spec(spec_path)
+    reader = Reader(spec, root, batch_rows=128, shuffle_rows=shuffle, seed=3, negative_keep_rate=0.5)
+    full = list(reader.batches(pass_index=1))
+    for k in (0, 3, 7, len(full) - 2):
+        resumed = list(reader.batches(pass_index=1, start=full[k].position))
+        assert len(resumed) == len(full) - k - 1
+        for x, y in zip(full[k + 1:], resumed):
+            np.testing.assert_array_equal(x.indices, y.indices)
+            np.testing.assert_array_equal(x.labels, y.labels)
+
+
+def test_shuffle_is_a_seeded_permutation(small_log):
+    root, spec_path = small_log
+    spec = load_spec(spec_path)
+    plain = list(Reader(spec, root, batch_rows=10_000).batches())
+    mixed = list(Reader(spec, root, batch_rows=10_000, shuffle_rows=1000, seed=9).batches())
+    again = list(Reader(spec, root, batch_rows=10_000, shuffle_rows=1000, seed=9).batches())
+    w0, w1 = np.concatenate([b.weights for b in plain]), np.concatenate([b.weights for b in mixed])
+    assert not np.array_equal(w0, w1)
+    np.testing.assert_array_equal(np.sort(w0), np.sort(w1))
+    np.testing.assert_array_equal(w1, np.concatenate([b.weights for b in again]))
+
+
+def test_negative_sampling_keeps_positives(small_log):
+    root, spec_path = small_log
+    spec = load_spec(spec_path)
+    full = np.concatenate([b.labels for b in Reader(spec, root, batch_rows=5000).batches()])
+    r = Reader(spec, root, batch_rows=5000, negative_keep_rate=0.25, seed=1)
+    kept = np.concatenate([b.labels for b in r.batches()])
+    assert kept.sum() == full.sum()
+    n_neg = (full == 0).sum()
+    # binomial(n_neg, 0.25): within 5 standard deviations (common practice)
+    assert abs((kept == 0).sum() - 0.25 * n_neg) < 5 * math.sqrt(n_neg * 0.25 * 0.75)
+    assert r.counts.sampled_out == n_neg - (kept == 0).sum()
+
+
+def test_keep_columns_follow_rows(small_log):
+    root, spec_path = small_log
+    spec = load_spec(spec_path)
+    r = Reader(spec, root, batch_rows=256, shuffle_rows=600, seed=2, keep=("w",))
+    for b in r.batches():
+        np.testing.assert_array_equal(b.columns.column("w").to_numpy(), b.weights)

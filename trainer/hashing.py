@@ -1,0 +1,144 @@
+"""MurmurHash3 x86 32-bit in numba, token building and bucket mapping.
+
+MurmurHash3 is Austin Appleby's public-domain hash ("MurmurHash3", SMHasher project, 2011); this is
+the x86 32-bit variant, byte-for-byte equal to the reference ``MurmurHash3_x86_32``. Tokens follow the
+hashing contract in README.md: ``utf8(column) 0x1F utf8(value)`` for categorical values,
+``token(a) 0x1E token(b)`` for crosses; bucket = hash mod 2^bits.
+"""
+
+from __future__ import annotations
+
+import numba as nb
+import numpy as np
+
+FIELD_SEP = 0x1F
+CROSS_SEP = 0x1E
+
+@nb.njit(cache=True, inline="always")
+def _rotl(x, r):
+    return np.uint32((x << np.uint32(r)) | (x >> np.uint32(32 - r)))
+
+
+@nb.njit(cache=True)
+def murmur3_32(buf, start, end, seed):
+    """Hash ``buf[start:end]`` (uint8 array) with MurmurHash3_x86_32 and ``seed``; return uint32."""
+    h = np.uint32(seed)
+    n = end - start
+    nblocks = n // 4
+    c1 = np.uint32(0xCC9E2D51)
+    c2 = np.uint32(0x1B873593)
+    for i in range(nblocks):
+        p = start + 4 * i
+        k = (np.uint32(buf[p]) | (np.uint32(buf[p + 1]) << np.uint32(8))
+             | (np.uint32(buf[p + 2]) << np.uint32(16)) | (np.uint32(buf[p + 3]) << np.uint32(24)))
+        k = np.uint32(k * c1)
+        k = _rotl(k, 15)
+        k = np.uint32(k * c2)
+        h = np.uint32(h ^ k)
+        h = _rotl(h, 13)
+        h = np.uint32(h * np.uint32(5) + np.uint32(0xE6546B64))
+    tail = start + 4 * nblocks
+    rem = n & 3
+    k = np.uint32(0)
+    if rem == 3:
+        k = np.uint32(k ^ (np.uint32(buf[tail + 2]) << np.uint32(16)))
+    if rem >= 2:
+        k = np.uint32(k ^ (np.uint32(buf[tail + 1]) << np.uint32(8)))
+    if rem >= 1:
+        k = np.uint32(k ^ np.uint32(buf[tail]))
+        k = np.uint32(k * c1)
+        k = _rotl(k, 15)
+        k = np.uint32(k * c2)
+        h = np.uint32(h ^ k)
+    h = np.uint32(h ^ np.uint32(n))
+    h = np.uint32(h ^ (h >> np.uint32(16)))
+    h = np.uint32(h * np.uint32(0x85EBCA6B))
+    h = np.uint32(h ^ (h >> np.uint32(13)))
+    h = np.uint32(h * np.uint32(0xC2B2AE35))
+    h = np.uint32(h ^ (h >> np.uint32(16)))
+    return h
+
+
+def hash_bytes(data: bytes, seed: int = 0) -> int:
+    """Return MurmurHash3_x86_32 of ``data`` with ``seed`` (0..2^32-1) as a Python int."""
+    buf = np.frombuffer(bytes(data), dtype=np.uint8)
+    return int(murmur3_32(buf, 0, buf.size, np.uint32(seed)))
+
+
+@nb.njit(cache=True)
+def hash_tokens(prefix, buf, offsets, seed, mask):
+    """Bucket of every token ``prefix + buf[offsets[i]:offsets[i+1]]``.
+
+    Takes uint8 ``prefix`` and ``buf``, int64 ``offsets`` (n + 1), uint32 ``seed`` and ``mask``
+    (2^bits - 1); returns int32 buckets (n,). One scratch buffer, no per-token allocation.
+    """
+    n = offsets.size - 1
+    plen = prefix.size
+    longest = 0
+    for i in range(n):
+        longest = max(longest, offsets[i + 1] - offsets[i])
+    scratch = np.empty(plen + longest, dtype=np.uint8)
+    scratch[:plen] = prefix
+    out = np.empty(n, dtype=np.int32)
+    for i in range(n):
+        a = offsets[i]
+        m = offsets[i + 1] - a
+        for j in range(m):
+            scratch[plen + j] = buf[a + j]
+        out[i] = np.int32(murmur3_32(scratch, 0, plen + m, seed) & mask)
+    return out
+
+
+@nb.njit(cache=True)
+def cross_tokens(a_ptr, a_ids, a_prefix, a_buf, a_off, b_ptr, b_ids, b_prefix, b_buf, b_off):
+    """Join two token streams row by row into cross tokens ``token(a) 0x1E token(b)``.
+
+    Each side is a row structure (``ptr`` int64 n + 1 over ``ids`` int64) pointing into a token table
+    whose token k is ``prefix + buf[off[k]:off[k+1]]``. Returns ``(ptr, buf, off)``: for row r the
+    Cartesian product of its a-tokens and b-tokens, in a-major order, as a new table with empty prefix
+    (the ids of the result are 0..len-1 in row order).
+    """
+    n = a_ptr.size - 1
+    ptr = np.zeros(n + 1, dtype=np.int64)
+    total_bytes = 0
+    for r in range(n):
+        na = a_ptr[r + 1] - a_ptr[r]
+        nbb = b_ptr[r + 1] - b_ptr[r]
+        ptr[r + 1] = ptr[r] + na * nbb
+        if na and nbb:
+            la = 0
+            for p in range(a_ptr[r], a_ptr[r + 1]):
+                k = a_ids[p]
+                la += a_off[k + 1] - a_off[k]
+            lb = 0
+            for q in range(b_ptr[r], b_ptr[r + 1]):
+                k = b_ids[q]
+                lb += b_off[k + 1] - b_off[k]
+            total_bytes += (la + na * a_prefix.size) * nbb + (lb + nbb * b_prefix.size) * na + na * nbb
+    out = np.empty(total_bytes, dtype=np.uint8)
+    off = np.empty(ptr[n] + 1, dtype=np.int64)
+    off[0] = 0
+    t = 0
+    pos = 0
+    for r in range(n):
+        for p in range(a_ptr[r], a_ptr[r + 1]):
+            ka = a_ids[p]
+            for q in range(b_ptr[r], b_ptr[r + 1]):
+                kb = b_ids[q]
+                for j in range(a_prefix.size):
+                    out[pos] = a_prefix[j]
+                    pos += 1
+                for j in range(a_off[ka], a_off[ka + 1]):
+                    out[pos] = a_buf[j]
+                    pos += 1
+                out[pos] = 0x1E
+                pos += 1
+                for j in range(b_prefix.size):
+                    out[pos] = b_prefix[j]
+                    pos += 1
+                for j in range(b_off[kb], b_off[kb + 1]):
+                    out[pos] = b_buf[j]
+                    pos += 1
+                t += 1
+                off[t] = pos
+    return ptr, out, off
