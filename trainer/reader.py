@@ -689,7 +689,9 @@ class Reader:
         if self.missing_as_null:
             for feat in spec.features:
                 if table.schema.get_field_index(feat.column) < 0:
-                    table = table.append_column(feat.column, pa.nulls(n, pa.string()))
+                    kind_type = {"categorical": pa.string(), "multi": pa.list_(pa.string()),
+                                 "numeric": pa.float64()}[feat.kind]
+                    table = table.append_column(feat.column, pa.nulls(n, kind_type))
         keep = np.ones(n, dtype=bool)
         where = f"{f.path}: column"
         if spec.time_column and (self.start or self.end) and spec.time_column not in f.partitions:
