@@ -169,3 +169,18 @@ def test_keep_columns_follow_rows(small_log):
     r = Reader(spec, root, batch_rows=256, shuffle_rows=600, seed=2, keep=("w",))
     for b in r.batches():
         np.testing.assert_array_equal(b.columns.column("w").to_numpy(), b.weights)
+
+
+def test_readme_worked_example(tmp_path):
+    # The README's worked example, by hand: hash values computed with mmh3 when the README was written.
+    table = pa.table({"campaign": ["spring-sale"], "hour": pa.array([9], pa.int32()), "y": [1]})
+    pq.write_table(table, tmp_path / "one.parquet")
+    (tmp_path / "spec.json").write_text(json.dumps({
+        "label": {"column": "y"}, "hashing": {"bits": 18, "seed": 0},
+        "features": [{"column": "campaign", "kind": "categorical"}, {"column": "hour", "kind": "categorical"}],
+        "crosses": [["campaign", "hour"]]}))
+    spec = load_spec(tmp_path / "spec.json")
+    (batch,) = Reader(spec, tmp_path / "one.parquet").batches()
+    assert mmh3.hash(b"campaign\x1fspring-sale", 0, signed=False) == 0xF121FF00
+    assert batch.indices[0] == 0xF121FF00 & 0x3FFFF == 130816
+    assert batch.indices[2] == 0xA8078C35 & 0x3FFFF == 232501

@@ -12,3 +12,7 @@ class UserError(Exception):
 
 class Diverged(UserError):
     """Training produced a non-finite loss or weight; the last good state is kept."""
+
+
+class Interrupted(Exception):
+    """Training stopped on SIGINT or SIGTERM after saving a checkpoint; the message says how to resume."""

@@ -29,6 +29,7 @@ from trainer.hashing import cross_tokens, hash_tokens
 from trainer.spec import Feature, Spec
 
 CHUNK_ROWS = 65536
+PARQUET_SUFFIXES = (".parquet", ".parq")
 _EMPTY_BYTES = np.zeros(0, dtype=np.uint8)
 
 
@@ -106,6 +107,8 @@ def discover(path: str | Path, spec: Spec | None, start: dt.date | None = None,
              missing_ok: tuple[str, ...] = ()) -> list[DataFile]:
     """Find the Parquet files under ``path`` (a file, a folder, or a hive-partitioned folder).
 
+    In a folder, files ending in .parquet or .parq count, except hidden ones (a path part starting
+    with "." or "_"); other files are ignored.
     Files outside ``[start, end]`` by a partition key named as the spec's time column are pruned.
     Every file's footer is read to check that it is Parquet, that it has the columns in ``need``
     (default: all the spec's columns; ones in ``missing_ok`` may be absent) and that all files agree
@@ -117,7 +120,7 @@ def discover(path: str | Path, spec: Spec | None, start: dt.date | None = None,
     if root.is_file():
         candidates = [root]
     else:
-        candidates = sorted(p for p in root.rglob("*") if p.is_file()
+        candidates = sorted(p for p in root.rglob("*") if p.is_file() and p.suffix in PARQUET_SUFFIXES
                             and not any(part.startswith((".", "_")) for part in p.relative_to(root).parts))
         if not candidates:
             raise UserError(f"{root}: folder holds no Parquet files")

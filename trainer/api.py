@@ -1,0 +1,158 @@
+"""The command line's verbs for notebooks: train, evaluate, score, export, inspect, report, demo.
+
+Every function takes plain values, returns data, prints nothing (training reports through ``log``)
+and raises ``trainer.errors.UserError`` for the user's mistakes.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+
+from trainer.checkpoint import write_atomic
+from trainer.errors import UserError
+from trainer.evaluation import evaluate as _evaluate
+from trainer.model import Model, export_model, inspect_model, load_model
+from trainer.reader import Reader, parse_day
+from trainer.report import write_report
+from trainer.scoring import score_to_parquet
+from trainer.spec import Spec, load_spec
+from trainer.training import TrainOptions, Trainer
+
+__all__ = ["train", "evaluate", "score", "export", "inspect", "report", "demo", "load_model", "TrainOptions"]
+
+
+def _day(value: str | dt.date | None, option: str) -> dt.date | None:
+    if value is None or isinstance(value, dt.date):
+        return value
+    return parse_day(value, option)
+
+
+def train(spec: str | Path | Spec, data: str | Path, out: str | Path, *, holdout: str | Path | None = None,
+          resume: bool = False, force: bool = False, log: Callable[[str], None] | None = None,
+          progress_bar: bool = False, **options) -> Model:
+    """Train a model from ``data`` into the folder ``out`` and return it.
+
+    ``spec``: a spec file or Spec; ``holdout``: a holdout log (or use ``holdout_start``/``holdout_end``
+    on the training path); ``options``: any TrainOptions field (dates as YYYY-MM-DD strings or
+    dates). Raises UserError for bad options, data or folders; Interrupted on SIGINT/SIGTERM.
+    """
+    spec = spec if isinstance(spec, Spec) else load_spec(spec)
+    for key in ("start", "end", "holdout_start", "holdout_end"):
+        if key in options:
+            options[key] = _day(options[key], f"--{key.replace('_', '-')}")
+    unknown = set(options) - {f for f in TrainOptions.__dataclass_fields__}
+    if unknown:
+        raise UserError(f"train: unknown option(s) {', '.join(sorted(unknown))}")
+    trainer = Trainer(spec, data, out, TrainOptions(**options), holdout=holdout, resume=resume, force=force,
+                      log=log, progress_bar=progress_bar)
+    return trainer.run()
+
+
+def evaluate(model: str | Path | Model, data: str | Path, *, start=None, end=None, by: str | None = None,
+             segments: int = 20, skip_bad_labels: bool = False, json_out: str | Path | None = None) -> dict:
+    """Metrics of ``model`` on the labelled log ``data`` (inclusive date filter ``start``..``end``).
+
+    ``by`` adds one row per value of that column (the ``segments`` largest, the rest pooled).
+    ``json_out`` also writes the summary as JSON (atomically). Returns the summary dict.
+    """
+    model = model if isinstance(model, Model) else load_model(model)
+    if segments < 1:
+        raise UserError(f"--segments must be an integer >= 1; got {segments}")
+    reader = Reader(model.spec, data, _day(start, "--start"), _day(end, "--end"), batch_rows=65536,
+                    skip_bad_labels=skip_bad_labels, keep=(by,) if by else ())
+    summary = _evaluate(model, reader, by=by, segments=segments)
+    if reader.counts.bad_labels:
+        summary["skipped_bad_labels"] = reader.counts.bad_labels
+    if json_out is not None:
+        write_atomic(Path(json_out), [json.dumps(summary, indent=2, default=_json_default).encode()])
+    return summary
+
+
+def _json_default(v):
+    if isinstance(v, np.generic):
+        return v.item()
+    raise TypeError(type(v))
+
+
+def score(model: str | Path, data: str | Path, out: str | Path, *, keep: tuple[str, ...] = (),
+          missing_as_null: bool = False, start=None, end=None) -> dict:
+    """Score ``data`` with the model (training folder or export) into the Parquet file ``out``."""
+    return score_to_parquet(model, data, out, keep=tuple(keep), missing_as_null=missing_as_null,
+                            start=_day(start, "--start"), end=_day(end, "--end"))
+
+
+def export(model: str | Path, out: str | Path, *, force: bool = False) -> Path:
+    """Export a trained model folder to ``out`` (weights.parquet + model.json); returns ``out``."""
+    return export_model(model, out, force=force)
+
+
+def inspect(model: str | Path) -> dict:
+    """Size, non-zero buckets, collision estimate, largest weights and options of a model."""
+    return inspect_model(model)
+
+
+def report(model_dir: str | Path, out: str | Path | None = None, *, top: int = 15) -> Path:
+    """Write the self-contained HTML report of a training folder; returns its path
+    (default ``MODEL_DIR/report.html``)."""
+    model_dir = Path(model_dir)
+    model = load_model(model_dir)
+    passes = []
+    metrics_path = model_dir / "metrics.jsonl"
+    if metrics_path.exists():
+        for line in metrics_path.read_text().splitlines():
+            if line.strip():
+                rec = json.loads(line)
+                passes.append({"pass": rec["pass"], "rows": rec["rows"], "progressive_loss": rec["progressive_loss"],
+                               "holdout": rec["holdout"]})
+    progress_path = model_dir / "progress.json"
+    progress = json.loads(progress_path.read_text()) if progress_path.exists() else []
+    w = model.weights
+    nz = np.flatnonzero(w)
+    order = nz[np.argsort(w[nz], kind="stable")]
+    picks = list(order[::-1][:top]) + list(order[:top])
+    examples = model.info.get("examples") or {}
+    top_weights = [{"bucket": int(b), "weight": float(w[b]), "examples": examples.get(str(int(b)), [])}
+                   for b in picks]
+    run = {"title": f"hashcurve model {model_dir.name}", "options": model.info.get("options", {}),
+           "passes": passes, "progress": progress, "final_holdout": model.info.get("holdout"),
+           "top_weights": top_weights, "loss": model.loss}
+    path = Path(out) if out is not None else model_dir / "report.html"
+    write_report(run, path)
+    return path
+
+
+def demo_data_dir() -> Path:
+    """The shipped demo folder: beside the package in a source checkout, else ./demo_data."""
+    for base in (Path(__file__).resolve().parents[1], Path.cwd()):
+        if (base / "demo_data" / "spec.json").exists():
+            return base / "demo_data"
+    raise UserError("demo_data/spec.json not found beside the package or in the current folder; "
+                    "run from a source checkout (pip install -e .)")
+
+
+def demo(out: str | Path = "hashcurve-demo", *, log: Callable[[str], None] | None = None,
+         progress_bar: bool = False) -> dict:
+    """The whole job on the shipped demo logs: train on all days but the last with default options,
+    evaluate the last day after each pass, export, score the held-out day and write the report.
+    Returns the paths written (model, export, scores, report, evaluation)."""
+    root = demo_data_dir()
+    logs = root / "logs"
+    days = sorted(p.name.split("=", 1)[1] for p in logs.iterdir() if p.is_dir() and "=" in p.name)
+    if len(days) < 2:
+        raise UserError(f"{logs}: the demo needs at least two days of logs")
+    out = Path(out)
+    model_dir, export_dir = out / "model", out / "export"
+    train(root / "spec.json", logs, model_dir, end=days[-2], holdout_start=days[-1], holdout_end=days[-1],
+          force=True, log=log, progress_bar=progress_bar)
+    export(model_dir, export_dir, force=True)
+    scores = out / "holdout-scores.parquet"
+    score(export_dir, logs, scores, start=days[-1], end=days[-1])
+    summary = evaluate(model_dir, logs, start=days[-1], end=days[-1], json_out=out / "holdout-metrics.json")
+    html = report(model_dir, out / "report.html")
+    return {"model": model_dir, "export": export_dir, "scores": scores, "metrics": out / "holdout-metrics.json",
+            "report": html, "train_days": f"{days[0]}..{days[-2]}", "holdout_day": days[-1], "summary": summary}

@@ -1,0 +1,104 @@
+"""Atomic, checksummed checkpoints of the complete training state.
+
+File layout (little-endian): the 8-byte magic ``HCCKPT01``; an 8-byte header length; the header,
+UTF-8 JSON with ``version``, the caller's ``meta`` and, for each array, its name, dtype, shape, byte
+offset and length in the payload; the payload, the arrays' raw bytes in order; last, the 32-byte
+SHA-256 of everything before it. Writing goes to a temporary file beside the target, is flushed and
+fsynced, then renamed over the target and the folder fsynced, so a crash at any moment leaves either
+the old checkpoint or the new one, never a mix. A file that fails any check is refused and left as it is.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import tempfile
+from pathlib import Path
+
+import numpy as np
+
+from trainer.errors import UserError
+
+MAGIC = b"HCCKPT01"
+VERSION = 1
+
+
+def fsync_dir(folder: Path) -> None:
+    """Flush a folder's entries to disk (after a rename), where the platform allows it."""
+    fd = os.open(folder, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def write_atomic(path: Path, chunks) -> None:
+    """Write the byte chunks of the iterable ``chunks`` to ``path`` atomically (temp file beside it,
+    fsync, rename, fsync the folder). A failure leaves ``path`` as it was and no temp file behind."""
+    path = Path(path)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            for chunk in chunks:
+                fh.write(chunk)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    fsync_dir(path.parent)
+
+
+def save_checkpoint(path: Path, arrays: dict[str, np.ndarray], meta: dict) -> None:
+    """Write ``arrays`` (name -> numpy array) and JSON-able ``meta`` to ``path`` atomically."""
+    entries, offset = [], 0
+    arrays = {k: np.array(v, order="C", copy=None) for k, v in arrays.items()}
+    for name, a in arrays.items():
+        entries.append({"name": name, "dtype": a.dtype.str, "shape": list(a.shape), "offset": offset,
+                        "nbytes": a.nbytes})
+        offset += a.nbytes
+    header = json.dumps({"version": VERSION, "meta": meta, "arrays": entries}).encode("utf-8")
+    digest = hashlib.sha256()
+
+    def chunks():
+        for part in (MAGIC, len(header).to_bytes(8, "little"), header):
+            digest.update(part)
+            yield part
+        for a in arrays.values():
+            view = memoryview(a.reshape(-1).view(np.uint8))
+            digest.update(view)
+            yield view
+        yield digest.digest()
+
+    write_atomic(path, chunks())
+
+
+def load_checkpoint(path: Path) -> tuple[dict[str, np.ndarray], dict]:
+    """Read and verify a checkpoint; return ``(arrays, meta)``.
+
+    Raises UserError (naming the file, leaving it untouched) when it is missing, truncated, fails its
+    checksum or has another format version.
+    """
+    path = Path(path)
+    try:
+        blob = path.read_bytes()
+    except FileNotFoundError:
+        raise UserError(f"{path}: no checkpoint to resume from") from None
+    if len(blob) < 48 or blob[:8] != MAGIC:
+        raise UserError(f"{path}: not a hashcurve checkpoint (bad magic or too short); left untouched")
+    if hashlib.sha256(blob[:-32]).digest() != blob[-32:]:
+        raise UserError(f"{path}: checkpoint is truncated or corrupt (checksum mismatch); left untouched")
+    hlen = int.from_bytes(blob[8:16], "little")
+    header = json.loads(blob[16:16 + hlen].decode("utf-8"))
+    if header.get("version") != VERSION:
+        raise UserError(f"{path}: checkpoint format version {header.get('version')} is not {VERSION}; "
+                        "it was written by another version of hashcurve")
+    base = 16 + hlen
+    arrays = {}
+    for e in header["arrays"]:
+        start = base + e["offset"]
+        raw = blob[start:start + e["nbytes"]]
+        arrays[e["name"]] = np.frombuffer(raw, dtype=np.dtype(e["dtype"])).reshape(e["shape"]).copy()
+    return arrays, header["meta"]

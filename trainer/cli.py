@@ -1,0 +1,195 @@
+"""The ``hashcurve`` command line: argument parsing, exit codes and one-line error messages.
+
+Exit codes: 0 done; 2 the user's mistake (one line on stderr, no traceback); 130 stopped by a signal
+after saving a checkpoint; 1 a bug (with its traceback).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import sys
+
+from trainer import __version__, api
+from trainer.errors import Interrupted, UserError
+from trainer.model import format_inspect
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with one-line errors and exit code 2."""
+
+    def error(self, message):
+        raise UserError(f"{self.prog}: {message}")
+
+
+def _add_dates(p: argparse.ArgumentParser, what: str) -> None:
+    p.add_argument("--start", metavar="YYYY-MM-DD", help=f"first day of {what} (inclusive)")
+    p.add_argument("--end", metavar="YYYY-MM-DD", help=f"last day of {what} (inclusive)")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The full argument parser (also used to document the commands)."""
+    d = api.TrainOptions()
+    top = _Parser(prog="hashcurve", description="Train, check and export calibrated response-rate models "
+                  "from hashed Parquet logs.")
+    top.add_argument("--version", action="version", version=f"hashcurve {__version__}")
+    sub = top.add_subparsers(dest="command", required=True, parser_class=_Parser)
+
+    p = sub.add_parser("demo", help="train, evaluate, export, score and report on the shipped demo logs")
+    p.add_argument("--out", default="hashcurve-demo", help="folder for every output (default: %(default)s)")
+    p.add_argument("--quiet", action="store_true", help="no progress bars")
+
+    p = sub.add_parser("train", help="train a model from a Parquet log")
+    p.add_argument("--spec", required=True, help="feature spec (JSON)")
+    p.add_argument("--data", required=True, help="Parquet file, folder or hive-partitioned folder")
+    p.add_argument("--out", required=True, help="model folder to create (or to resume)")
+    _add_dates(p, "training data")
+    p.add_argument("--holdout", help="holdout log (default: --data, when holdout dates are given)")
+    p.add_argument("--holdout-start", metavar="YYYY-MM-DD", help="first holdout day (inclusive)")
+    p.add_argument("--holdout-end", metavar="YYYY-MM-DD", help="last holdout day (inclusive)")
+    p.add_argument("--passes", type=int, default=d.passes, help="passes over the data (default: %(default)s)")
+    p.add_argument("--loss", default=d.loss, help="logistic or squared-hinge (default: %(default)s)")
+    p.add_argument("--solver", default=d.solver, help="olbfgs, res, sgd or adagrad (default: %(default)s)")
+    p.add_argument("--l2", type=float, default=d.l2, help="L2 strength lambda, per-row average form "
+                   "(default: %(default)s)")
+    p.add_argument("--history", type=int, default=d.history, help="curvature pairs kept (default: %(default)s)")
+    p.add_argument("--batch-rows", type=int, default=d.batch_rows, help="rows per step (default: %(default)s)")
+    p.add_argument("--step0", type=float, default=d.step0, help="initial step size (default: the solver's)")
+    p.add_argument("--seed", type=int, default=d.seed, help="seed for shuffling and sampling (default: %(default)s)")
+    p.add_argument("--shuffle-buffer", type=int, default=d.shuffle_buffer,
+                   help="shuffle rows within windows of this many rows; 0 keeps file order (default: %(default)s)")
+    p.add_argument("--negative-keep-rate", type=float, default=d.negative_keep_rate,
+                   help="keep each negative row with this probability, corrected in the model (default: %(default)s)")
+    p.add_argument("--patience", type=int, default=d.patience,
+                   help="passes without holdout improvement before stopping (default: %(default)s)")
+    p.add_argument("--checkpoint-every", type=int, default=d.checkpoint_every,
+                   help="rows between checkpoints (default: %(default)s)")
+    p.add_argument("--skip-bad-labels", action="store_true", help="drop rows with null or unaccepted labels")
+    p.add_argument("--resume", action="store_true", help="continue from the checkpoint in --out")
+    p.add_argument("--force", action="store_true", help="replace the files of another run in --out")
+    p.add_argument("--quiet", action="store_true", help="no progress bars or per-pass table")
+
+    p = sub.add_parser("evaluate", help="metrics of a model on a labelled log")
+    p.add_argument("--model", required=True, help="model folder or export folder")
+    p.add_argument("--data", required=True, help="Parquet file, folder or hive-partitioned folder")
+    _add_dates(p, "the data")
+    p.add_argument("--by", metavar="COLUMN", help="add one row per value of this column")
+    p.add_argument("--segments", type=int, default=20, help="largest values listed with --by (default: %(default)s)")
+    p.add_argument("--skip-bad-labels", action="store_true", help="drop rows with null or unaccepted labels")
+    p.add_argument("--json", metavar="FILE", help="also write the summary as JSON")
+
+    p = sub.add_parser("report", help="self-contained HTML report of a training folder")
+    p.add_argument("--model", required=True, help="model folder (from train)")
+    p.add_argument("--out", help="HTML file (default: MODEL/report.html)")
+
+    p = sub.add_parser("export", help="portable weights.parquet + model.json with the hashing contract")
+    p.add_argument("--model", required=True, help="model folder (from train)")
+    p.add_argument("--out", required=True, help="export folder (must be empty or new)")
+    p.add_argument("--force", action="store_true", help="replace a non-empty export folder")
+
+    p = sub.add_parser("score", help="score a Parquet log into a Parquet file")
+    p.add_argument("--model", required=True, help="model folder or export folder")
+    p.add_argument("--data", required=True, help="Parquet file, folder or hive-partitioned folder")
+    p.add_argument("--out", required=True, help="output Parquet file (appears only when complete)")
+    p.add_argument("--keep", nargs="+", default=[], metavar="COLUMN", help="input columns to copy beside the score")
+    p.add_argument("--missing-as-null", action="store_true", help="read absent feature columns as all null")
+    _add_dates(p, "the data")
+
+    p = sub.add_parser("inspect", help="size, collisions, largest weights and options of a model")
+    p.add_argument("--model", required=True, help="model folder or export folder")
+    p.add_argument("--json", action="store_true", help="print JSON instead of text")
+    return top
+
+
+def _fmt(v, spec=".5f") -> str:
+    return format(v, spec) if isinstance(v, (int, float)) and math.isfinite(v) else "-"
+
+
+def format_summary(s: dict) -> str:
+    """A readable evaluation summary (our own layout)."""
+    lines = [f"rows {s.get('rows', 0):,}   positives {s.get('positives', 0):,}"]
+    if "log_loss" in s:
+        lines += [f"  log-loss            {_fmt(s['log_loss'])}",
+                  f"  normalized entropy  {_fmt(s['normalized_entropy'])}",
+                  f"  AUC                 {_fmt(s['auc'])}",
+                  f"  Brier score         {_fmt(s['brier'])}",
+                  f"  predicted/observed  {_fmt(s['calibration_ratio'], '.4f')}",
+                  f"  calibration error   {_fmt(s['ece'])}  (expected, over {len(s['bins'])} bins)",
+                  f"  error rate          {_fmt(s['error_rate'], '.4f')} at 0.5, "
+                  f"{_fmt(s['error_rate_at_base_rate'], '.4f')} at the base-rate threshold"]
+    if "margin" in s:
+        m = s["margin"]
+        lines += [f"  squared-hinge loss  {_fmt(s['squared_hinge_loss'])}",
+                  f"  AUC (margins)       {_fmt(m['auc'])}",
+                  f"  error rate          {_fmt(m['error_rate'], '.4f')} at margin 0"]
+    if s.get("segments"):
+        lines.append(f"\n  {'value':<24} {'rows':>10} {'observed':>9} {'predicted':>9} {'pred/obs':>9} {'log-loss':>9}")
+        for r in s["segments"]:
+            lines.append(f"  {str(r['value'])[:24]:<24} {r['rows']:>10,} {_fmt(r['observed_rate'], '9.5f')} "
+                         f"{_fmt(r['mean_prediction'], '9.5f')} {_fmt(r['calibration_ratio'], '9.4f')} "
+                         f"{_fmt(r['log_loss'], '9.5f')}")
+    return "\n".join(lines)
+
+
+def _train(a) -> None:
+    options = {k: getattr(a, k) for k in ("passes", "loss", "solver", "l2", "history", "batch_rows", "step0",
+                                          "seed", "shuffle_buffer", "negative_keep_rate", "patience",
+                                          "checkpoint_every", "start", "end", "holdout_start", "holdout_end",
+                                          "skip_bad_labels")}
+    api.train(a.spec, a.data, a.out, holdout=a.holdout, resume=a.resume, force=a.force,
+              log=None if a.quiet else print, progress_bar=not a.quiet, **options)
+    print(f"model written to {a.out}")
+
+
+def _demo(a) -> None:
+    out = api.demo(a.out, log=print, progress_bar=not a.quiet)
+    print(f"\ntrained on {out['train_days']}, held out {out['holdout_day']}:")
+    print(format_summary(out["summary"]))
+    print("\noutputs:")
+    for key, label in (("model", "model folder"), ("export", "export (weights + contract)"),
+                       ("scores", "holdout scores"), ("metrics", "holdout metrics"), ("report", "HTML report")):
+        print(f"  {label:<28} {out[key]}")
+
+
+def _evaluate(a) -> None:
+    s = api.evaluate(a.model, a.data, start=a.start, end=a.end, by=a.by, segments=a.segments,
+                     skip_bad_labels=a.skip_bad_labels, json_out=a.json)
+    print(format_summary(s))
+
+
+def _report(a) -> None:
+    print(f"report written to {api.report(a.model, a.out)}")
+
+
+def _export(a) -> None:
+    print(f"export written to {api.export(a.model, a.out, force=a.force)}")
+
+
+def _score(a) -> None:
+    r = api.score(a.model, a.data, a.out, keep=tuple(a.keep), missing_as_null=a.missing_as_null,
+                  start=a.start, end=a.end)
+    print(f"{r['rows']:,} rows scored into {r['out']}")
+
+
+def _inspect(a) -> None:
+    d = api.inspect(a.model)
+    print(json.dumps(d, indent=2) if a.json else format_inspect(d))
+
+
+COMMANDS = {"demo": _demo, "train": _train, "evaluate": _evaluate, "report": _report, "export": _export,
+            "score": _score, "inspect": _inspect}
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run the command line; returns the exit code."""
+    try:
+        args = build_parser().parse_args(argv)
+        COMMANDS[args.command](args)
+    except UserError as exc:
+        print(f"hashcurve: error: {' '.join(str(exc).split())}", file=sys.stderr)
+        return 2
+    except Interrupted as exc:
+        print(f"hashcurve: {exc}", file=sys.stderr)
+        return 130
+    return 0

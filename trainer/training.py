@@ -1,0 +1,358 @@
+"""The pass loop: progressive validation, per-pass holdout evaluation, early stop, checkpoints, resume.
+
+One training run owns one model folder:
+
+- ``run.json``: spec, options and fingerprint of the run (written first, so another run is refused);
+- ``checkpoint.bin``: the complete state (``trainer.checkpoint``), every ``checkpoint_every`` rows
+  and at each pass end;
+- ``metrics.jsonl``: one line per finished pass (progressive loss, holdout metrics);
+- ``progress.json``: the progressive-validation curve;
+- ``model.json`` + ``model.npz``: the model (the best pass's when a holdout decides).
+
+Progressive validation ("online" or "test-then-train" evaluation, common practice): each batch's
+loss is measured before the solver learns from it.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+import json
+import math
+import signal
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+from tqdm import tqdm
+
+from trainer.checkpoint import load_checkpoint, save_checkpoint, write_atomic
+from trainer.errors import Interrupted, UserError
+from trainer.evaluation import evaluate
+from trainer.metrics import fit_platt
+from trainer.model import Model, load_model
+from trainer.reader import Position, Reader
+from trainer.solvers import check_choice, check_float, check_int, make_solver, SOLVER_NAMES
+from trainer.spec import Spec
+
+RUN_FILES = ("run.json", "checkpoint.bin", "metrics.jsonl", "progress.json", "model.json", "model.npz",
+             "report.html")
+PROGRESS_POINTS_PER_PASS = 200
+
+
+@dataclass
+class TrainOptions:
+    """Training options; the ones in ``TRAJECTORY`` decide the weights and must match on resume."""
+
+    passes: int = 3
+    loss: str = "logistic"
+    solver: str = "olbfgs"
+    l2: float = 1e-6
+    history: int = 10
+    batch_rows: int = 4096
+    step0: float | None = None
+    seed: int = 0
+    shuffle_buffer: int = 0
+    negative_keep_rate: float = 1.0
+    checkpoint_every: int = 2_000_000
+    patience: int = 1
+    start: dt.date | None = None
+    end: dt.date | None = None
+    holdout_start: dt.date | None = None
+    holdout_end: dt.date | None = None
+    skip_bad_labels: bool = False
+
+    TRAJECTORY = ("loss", "solver", "l2", "history", "batch_rows", "step0", "seed", "shuffle_buffer",
+                  "negative_keep_rate", "start", "end", "skip_bad_labels")
+
+    def validate(self) -> None:
+        """Raise UserError naming the first option outside its accepted range."""
+        check_int("--passes", self.passes, 1, 10_000)
+        check_choice("--loss", self.loss, ("logistic", "squared-hinge"))
+        check_choice("--solver", self.solver, SOLVER_NAMES)
+        check_float("--l2", self.l2, 0.0, 1e6)
+        check_int("--history", self.history, 1, 100)
+        check_int("--batch-rows", self.batch_rows, 1, 10_000_000)
+        if self.step0 is not None:
+            check_float("--step0", self.step0, 0.0, 1e6, lo_open=True)
+        check_int("--seed", self.seed, 0, 2**32 - 1)
+        check_int("--shuffle-buffer", self.shuffle_buffer, 0, 100_000_000)
+        check_float("--negative-keep-rate", self.negative_keep_rate, 0.0, 1.0, lo_open=True)
+        check_int("--checkpoint-every", self.checkpoint_every, 1, 10**15)
+        check_int("--patience", self.patience, 1, 10_000)
+
+    def as_json(self) -> dict:
+        """Options as JSON values (dates as YYYY-MM-DD)."""
+        out = {}
+        for f in dataclasses.fields(self):
+            v = getattr(self, f.name)
+            out[f.name] = v.isoformat() if isinstance(v, dt.date) else v
+        return out
+
+
+@dataclass
+class _State:
+    """The trainer's own part of a checkpoint (the solver keeps the rest)."""
+
+    pass_index: int = 0
+    position: Position | None = None
+    rows_in_pass: int = 0
+    rows_total: int = 0
+    steps: int = 0
+    pv_loss: float = 0.0
+    pv_weight: float = 0.0
+    progress: list = dataclasses.field(default_factory=list)
+    best_pass: int | None = None
+    best_score: float | None = None
+    bad_passes: int = 0
+    stopped_early: bool = False
+
+
+class _StopFlag:
+    """Turns SIGINT/SIGTERM into a flag the loop checks between steps, so a step is never cut."""
+
+    def __init__(self):
+        self.signal = None
+
+    def __enter__(self):
+        self._old = {s: signal.signal(s, self._set) for s in (signal.SIGINT, signal.SIGTERM)}
+        return self
+
+    def _set(self, signum, frame):
+        self.signal = signum
+
+    def __exit__(self, *exc):
+        for s, h in self._old.items():
+            signal.signal(s, h)
+
+
+def _holdout_score(summary: dict, loss: str) -> float:
+    return summary["log_loss"] if loss == "logistic" else summary["squared_hinge_loss"]
+
+
+class Trainer:
+    """One training run into ``out``; ``run()`` returns the final Model.
+
+    ``spec``: the feature spec; ``data``: training log path; ``holdout``: holdout log path or None
+    (with ``options.holdout_start/end`` it may be the training path itself); ``resume``: continue
+    from ``out/checkpoint.bin``; ``force``: replace another run's files in ``out``; ``log``: where
+    lines for the user go (None for quiet); ``progress_bar``: show tqdm bars.
+    Raises UserError for bad options, data or model folders before writing anything.
+    """
+
+    def __init__(self, spec: Spec, data: str | Path, out: str | Path, options: TrainOptions, *,
+                 holdout: str | Path | None = None, resume: bool = False, force: bool = False,
+                 log: Callable[[str], None] | None = print, progress_bar: bool = True):
+        options.validate()
+        self.spec, self.opt, self.out = spec, options, Path(out)
+        self.log = log or (lambda _line: None)
+        self.progress_bar = progress_bar
+        self.data = str(data)
+        self.holdout_path = str(holdout) if holdout is not None else (
+            self.data if (options.holdout_start or options.holdout_end) else None)
+        self.reader = Reader(spec, data, options.start, options.end, batch_rows=options.batch_rows,
+                             shuffle_rows=options.shuffle_buffer, seed=options.seed,
+                             negative_keep_rate=options.negative_keep_rate,
+                             skip_bad_labels=options.skip_bad_labels)
+        self.holdout = (Reader(spec, self.holdout_path, options.holdout_start, options.holdout_end,
+                               batch_rows=65536, skip_bad_labels=options.skip_bad_labels)
+                        if self.holdout_path else None)
+        self.solver = make_solver(options.solver, spec.n_buckets, options.loss, options.l2,
+                                  history=options.history, step0=options.step0, seed=options.seed)
+        self.state = _State()
+        self.ckpt = self.out / "checkpoint.bin"
+        self.resume = resume
+        self._prepare_folder(force)
+
+    # -- the model folder -------------------------------------------------------------------------
+
+    def _fingerprint(self) -> dict:
+        opts = self.opt.as_json()
+        return {"spec": self.spec.fingerprint(), "data": self.data,
+                **{k: opts[k] for k in TrainOptions.TRAJECTORY}}
+
+    def _prepare_folder(self, force: bool) -> None:
+        if self.resume:
+            arrays, meta = load_checkpoint(self.ckpt)
+            theirs, ours = meta["fingerprint"], self._fingerprint()
+            for key in ours:
+                if theirs.get(key) != ours[key]:
+                    what = "the spec" if key == "spec" else ("--data" if key == "data" else f"--{key.replace('_', '-')}")
+                    raise UserError(f"{self.ckpt}: cannot resume: {what} differs from the checkpoint's "
+                                    f"({theirs.get(key)!r} there, {ours[key]!r} now)")
+            self.solver.load_state({k[7:]: (v.item() if v.ndim == 0 else v)
+                                    for k, v in arrays.items() if k.startswith("solver.")})
+            s = meta["state"]
+            s["position"] = Position(*s["position"]) if s["position"] is not None else None
+            self.state = _State(**s)
+            self._trim_metrics()
+            return
+        if self.out.exists() and not self.out.is_dir():
+            raise UserError(f"{self.out}: exists and is not a folder")
+        if self.out.exists() and any(self.out.iterdir()):
+            if not force:
+                raise UserError(f"{self.out}: folder is not empty (another run?); use --resume to continue "
+                                "it or --force to replace its files")
+            if not (self.out / "run.json").exists():
+                raise UserError(f"{self.out}: not a hashcurve model folder (no run.json); --force only "
+                                "replaces a model folder, choose an empty or new --out")
+            for name in RUN_FILES:
+                (self.out / name).unlink(missing_ok=True)
+        self.out.mkdir(parents=True, exist_ok=True)
+        run = {"format": "hashcurve-run", "version": 1, "spec": self.spec.raw, "data": self.data,
+               "holdout": self.holdout_path, "options": self.opt.as_json(),
+               "created": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds")}
+        write_atomic(self.out / "run.json", [json.dumps(run, indent=2).encode()])
+
+    def _trim_metrics(self) -> None:
+        """After a resume, drop metric lines of passes the checkpoint does not count as finished."""
+        path = self.out / "metrics.jsonl"
+        if not path.exists():
+            return
+        lines = [ln for ln in path.read_text().splitlines()
+                 if ln.strip() and json.loads(ln)["pass"] <= self.state.pass_index]
+        write_atomic(path, [("\n".join(lines) + "\n" if lines else "").encode()])
+
+    def _save_checkpoint(self) -> None:
+        arrays = {f"solver.{k}": np.asarray(v) for k, v in self.solver.state().items()}
+        s = dataclasses.asdict(self.state)
+        s["position"] = list(dataclasses.astuple(self.state.position)) if self.state.position else None
+        save_checkpoint(self.ckpt, arrays, {"fingerprint": self._fingerprint(), "state": s})
+        write_atomic(self.out / "progress.json", [json.dumps(self.state.progress).encode()])
+
+    # -- the model --------------------------------------------------------------------------------
+
+    def current_model(self, holdout: dict | None = None, calibration: dict | None = None) -> Model:
+        """A Model of the solver's current weights (copied), with the downsampling correction."""
+        intercept = self.solver.intercept + math.log(self.opt.negative_keep_rate)
+        info = {"options": self.opt.as_json(), "negative_keep_rate": self.opt.negative_keep_rate,
+                "summary": {"passes": self.state.pass_index, "rows": self.state.rows_total,
+                            "steps": self.state.steps, "data": self.data, "holdout_data": self.holdout_path,
+                            "stopped_early": self.state.stopped_early, "best_pass": self.state.best_pass},
+                "holdout": holdout, "calibration": calibration, "examples": {}}
+        return Model(self.spec, np.array(self.solver.weights, dtype=np.float64), intercept,
+                     self.opt.loss, info)
+
+    # -- the loop ---------------------------------------------------------------------------------
+
+    def run(self) -> Model:
+        """Train to the requested passes (or an early stop) and return the final model.
+
+        Raises Interrupted after saving a checkpoint on SIGINT/SIGTERM, Diverged (a UserError) with
+        the last good checkpoint kept, and UserError for bad data met on the way.
+        """
+        st = self.state
+        if st.pass_index == 0 and st.position is None and not self.resume:
+            self.log(self._table_header())
+        with _StopFlag() as stop:
+            while st.pass_index < self.opt.passes and not st.stopped_early:
+                self._one_pass(stop)
+                self._finish_pass()
+        return self._final_model()
+
+    def _one_pass(self, stop: _StopFlag) -> None:
+        st, opt = self.state, self.opt
+        since_ckpt = 0
+        point_rows = max(self.reader.total_rows // PROGRESS_POINTS_PER_PASS, opt.batch_rows)
+        window_loss = window_w = 0.0
+        bar = tqdm(total=self.reader.total_rows, initial=st.rows_in_pass, unit="rows", unit_scale=True,
+                   desc=f"pass {st.pass_index + 1}/{opt.passes}", disable=not self.progress_bar,
+                   mininterval=0.5, leave=False, dynamic_ncols=True)
+        shown = time.monotonic()
+        for batch in self.reader.batches(st.pass_index, st.position):
+            loss = self.solver.step(batch)
+            w = float(batch.weights.sum())
+            st.pv_loss += loss * w
+            st.pv_weight += w
+            window_loss += loss * w
+            window_w += w
+            st.rows_in_pass += batch.n_rows
+            st.rows_total += batch.n_rows
+            st.steps += 1
+            st.position = batch.position
+            since_ckpt += batch.n_rows
+            if window_w and (st.rows_in_pass // point_rows) != ((st.rows_in_pass - batch.n_rows) // point_rows):
+                st.progress.append({"rows": st.rows_total, "loss": window_loss / window_w})
+                window_loss = window_w = 0.0
+            bar.update(batch.n_rows)
+            if time.monotonic() - shown > 0.5:
+                bar.set_postfix_str(f"progressive loss {st.pv_loss / st.pv_weight:.5f}")
+                shown = time.monotonic()
+            if since_ckpt >= opt.checkpoint_every:
+                self._save_checkpoint()
+                since_ckpt = 0
+            if stop.signal is not None:
+                bar.close()
+                self._save_checkpoint()
+                name = signal.Signals(stop.signal).name
+                raise Interrupted(f"{name}: stopped in pass {st.pass_index + 1} after {st.rows_in_pass:,} rows; "
+                                  f"checkpoint saved in {self.ckpt}; continue with the same command plus --resume")
+        bar.close()
+
+    def _finish_pass(self) -> None:
+        st = self.state
+        started = time.monotonic()
+        holdout = None
+        if self.holdout is not None:
+            holdout = evaluate(self.current_model(), self.holdout)
+        st.pass_index += 1
+        record = {"pass": st.pass_index, "rows": st.rows_in_pass, "rows_total": st.rows_total,
+                  "progressive_loss": st.pv_loss / st.pv_weight if st.pv_weight else None,
+                  "holdout": holdout}
+        if holdout is not None:
+            score = _holdout_score(holdout, self.opt.loss)
+            if st.best_score is None or score < st.best_score:
+                st.best_score, st.best_pass, st.bad_passes = score, st.pass_index, 0
+                self.current_model(holdout).save(self.out)
+            else:
+                st.bad_passes += 1
+                if st.bad_passes >= self.opt.patience and st.pass_index < self.opt.passes:
+                    st.stopped_early = True
+        with open(self.out / "metrics.jsonl", "a", encoding="utf-8") as fh:
+            fh.write(json.dumps(record) + "\n")
+        self.log(self._table_row(record, time.monotonic() - started))
+        if st.stopped_early:
+            self.log(f"early stop: holdout loss has not improved for {st.bad_passes} pass(es); "
+                     f"keeping the weights of pass {st.best_pass}")
+        st.position, st.rows_in_pass, st.pv_loss, st.pv_weight = None, 0, 0.0, 0.0
+        self._save_checkpoint()
+
+    def _final_model(self) -> Model:
+        st = self.state
+        if self.holdout is None:
+            model = self.current_model()
+        else:
+            model = load_model(self.out)
+        if self.opt.loss == "squared-hinge" and self.holdout is not None:
+            margins, labels, weights = [], [], []
+            for batch in self.holdout.batches():
+                margins.append(model.margin(batch))
+                labels.append(batch.labels)
+                weights.append(batch.weights)
+            a, b = fit_platt(np.concatenate(margins), np.concatenate(labels), np.concatenate(weights))
+            model.info["calibration"] = {"method": "platt", "a": a, "b": b, "fitted_on": self.holdout_path}
+        model.info["summary"].update({"passes": st.pass_index, "stopped_early": st.stopped_early,
+                                      "best_pass": st.best_pass})
+        model.save(self.out)
+        return model
+
+    # -- the per-pass table -------------------------------------------------------------------------
+
+    def _table_header(self) -> str:
+        return (f"{'pass':>4} {'rows':>11} {'train loss':>11} {'holdout loss':>13} {'norm.ent':>9} "
+                f"{'AUC':>7} {'pred/obs':>9} {'error':>7} {'eval s':>7}")
+
+    def _table_row(self, rec: dict, seconds: float) -> str:
+        h = rec["holdout"] or {}
+        margin = h.get("margin", {})
+        loss = h.get("log_loss", h.get("squared_hinge_loss"))
+
+        def f(v, spec):
+            return format(v, spec) if isinstance(v, (int, float)) and v is not None and math.isfinite(v) else "-"
+
+        return (f"{rec['pass']:>4} {rec['rows']:>11,} {f(rec['progressive_loss'], '11.5f')} {f(loss, '13.5f')} "
+                f"{f(h.get('normalized_entropy'), '9.4f')} {f(h.get('auc', margin.get('auc')), '7.4f')} "
+                f"{f(h.get('calibration_ratio'), '9.4f')} {f(h.get('error_rate', margin.get('error_rate')), '7.4f')} "
+                f"{seconds:7.1f}")
