@@ -1,0 +1,654 @@
+"""Streaming evaluation metrics for binary response models.
+
+Two accumulators see rows in chunks of any size, keep fixed-size state, and merge exactly, so a
+held-out slice can be scored in pieces (or in several processes) and combined afterwards:
+
+* :class:`BinaryMetrics` for calibrated probabilities (log-loss, normalized entropy, AUC, Brier
+  score, calibration ratio, expected calibration error, error rates, reliability table, score
+  histograms by class);
+* :class:`MarginMetrics` for raw margins of a squared-hinge model (AUC and error rate at margin 0).
+
+:func:`fit_platt` and :func:`apply_platt` turn margins into probabilities so that a squared-hinge
+model can be judged by :class:`BinaryMetrics` as well.
+
+Every per-row loop runs in numba over plain arrays; the summaries work on the fixed-size state only.
+
+Ranking metrics (AUC, error rate at the base rate) come from a fine histogram over a monotone
+quantisation of the score: the IEEE-754 bit pattern of a non-negative float64 orders like its value,
+so its top bits (exponent and the leading ``auc_bits`` mantissa bits) give a bin index that never
+reorders two scores. Each bin also keeps the smallest and largest score it has seen. Pairs in
+different bins are ranked exactly; pairs inside one bin are counted as ties (1/2). Where a bin
+holds a single distinct score this is exactly how scikit-learn scores ties; where it holds
+several, the reported ``auc_error_bound`` covers the difference (see :class:`BinaryMetrics`).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numba import njit
+from scipy.special import expit
+
+from trainer.errors import UserError
+
+#: Predictions are clipped to ``[EPS, 1 - EPS]`` before taking logarithms. scikit-learn 1.9's
+#: ``log_loss`` clips at the machine epsilon of the input dtype (stated in its docstring; older
+#: releases used a fixed 1e-15); we use the float64 machine epsilon, 2.220446049250313e-16.
+EPS = float(np.finfo(np.float64).eps)
+
+#: Standard normal 0.975 quantile, for 95% Wilson intervals.
+WILSON_Z = 1.959963984540054
+
+# Probability scores: q = min(p, 1 - p) (exact in float64 for p >= 1/2) is binned over the octaves
+# [2^-64, 2^-1); q < 2^-64 falls in one end bin per side, p = 1/2 has a bin of its own.
+_PROB_LOW_EXP = 64
+_PROB_OCTAVES = 63
+# Margins: |m| is binned over the octaves [2^-32, 2^32), with one bin below and one above per sign.
+_MARGIN_LOW_EXP = 32
+_MARGIN_OCTAVES = 64
+
+# Slots of the weighted running sums.
+_W, _PW, _LOSS, _BRIER, _PRED, _TP, _FP, _TN, _FN = range(9)
+_N_SUMS = 9
+
+
+@njit(cache=True)
+def _octave_index(bits, low_exp, octaves, res_bits):
+    """Monotone bin of a non-negative float64 given by its bit pattern.
+
+    0 below 2^-low_exp, 1 .. octaves << res_bits inside [2^-low_exp, 2^(octaves - low_exp)),
+    (octaves << res_bits) + 1 at or above the top.
+    """
+    k = np.int64(bits >> np.uint64(52 - res_bits)) - (np.int64(1023 - low_exp) << res_bits)
+    if k < 0:
+        return np.int64(0)
+    top = np.int64(octaves) << res_bits
+    if k >= top:
+        return top + 1
+    return k + 1
+
+
+@njit(cache=True)
+def _prob_bin(p, res_bits, buf, ubuf):
+    """Bin of a probability in [0, 1]; ascending in p; 2 * n_side + 1 bins in all."""
+    n_side = (np.int64(_PROB_OCTAVES) << res_bits) + 1
+    if p == 0.5:
+        return n_side
+    if p < 0.5:
+        buf[0] = p
+        return _octave_index(ubuf[0], _PROB_LOW_EXP, _PROB_OCTAVES, res_bits)
+    buf[0] = 1.0 - p
+    return 2 * n_side - _octave_index(ubuf[0], _PROB_LOW_EXP, _PROB_OCTAVES, res_bits)
+
+
+@njit(cache=True)
+def _margin_bin(m, res_bits, buf, ubuf):
+    """Bin of a finite margin; ascending in m; 2 * centre + 1 bins in all."""
+    centre = (np.int64(_MARGIN_OCTAVES) << res_bits) + 1
+    buf[0] = abs(m)
+    j = _octave_index(ubuf[0], _MARGIN_LOW_EXP, _MARGIN_OCTAVES, res_bits)
+    if j == 0:
+        return centre
+    if m < 0.0:
+        return centre - j
+    return centre + j
+
+
+@njit(cache=True)
+def _softplus(x):
+    """log(1 + exp(x)) without overflow."""
+    if x > 0.0:
+        return x + math.log1p(math.exp(-x))
+    return math.log1p(math.exp(x))
+
+
+@njit(cache=True)
+def _accumulate_binary(labels, probs, weights, margins, rel_inner, hist_edges, res_bits,
+                       counts, sums, rel_count, rel_sums, hist, auc_w, auc_lo, auc_hi):
+    """Add one chunk of rows to the state arrays of a BinaryMetrics (in place)."""
+    buf = np.empty(1, np.float64)
+    ubuf = buf.view(np.uint64)
+    use_w = weights.size > 0
+    use_m = margins.size > 0
+    n_hist = hist.shape[0]
+    lo_clip = EPS
+    hi_clip = 1.0 - EPS
+    for i in range(labels.size):
+        y = labels[i]
+        p = probs[i]
+        w = weights[i] if use_w else 1.0
+        pos = 1 if y == 1.0 else 0
+        counts[0] += 1
+        counts[1] += pos
+        sums[_W] += w
+        sums[_PW] += w * y
+        if use_m:
+            loss = _softplus(-margins[i]) if pos else _softplus(margins[i])
+        else:
+            pc = min(max(p, lo_clip), hi_clip)
+            loss = -math.log(pc) if pos else -math.log1p(-pc)
+        sums[_LOSS] += w * loss
+        d = p - y
+        sums[_BRIER] += w * d * d
+        sums[_PRED] += w * p
+        if p > 0.5:
+            if pos:
+                sums[_TP] += w
+            else:
+                sums[_FP] += w
+        else:
+            if pos:
+                sums[_FN] += w
+            else:
+                sums[_TN] += w
+        b = np.searchsorted(rel_inner, p, side="left")
+        rel_count[b] += 1
+        rel_sums[b, 0] += w
+        rel_sums[b, 1] += w * w
+        rel_sums[b, 2] += w * p
+        rel_sums[b, 3] += w * y
+        h = np.searchsorted(hist_edges, p, side="right") - 1
+        if h >= n_hist:
+            h = n_hist - 1
+        hist[h, pos] += w
+        k = _prob_bin(p, res_bits, buf, ubuf)
+        auc_w[k, pos] += w
+        if p < auc_lo[k]:
+            auc_lo[k] = p
+        if p > auc_hi[k]:
+            auc_hi[k] = p
+
+
+@njit(cache=True)
+def _accumulate_margin(labels, margins, weights, res_bits, counts, sums, auc_w, auc_lo, auc_hi):
+    """Add one chunk of rows to the state arrays of a MarginMetrics (in place)."""
+    buf = np.empty(1, np.float64)
+    ubuf = buf.view(np.uint64)
+    use_w = weights.size > 0
+    for i in range(labels.size):
+        y = labels[i]
+        m = margins[i]
+        w = weights[i] if use_w else 1.0
+        pos = 1 if y == 1.0 else 0
+        counts[0] += 1
+        counts[1] += pos
+        sums[_W] += w
+        sums[_PW] += w * y
+        if m > 0.0:
+            if pos:
+                sums[_TP] += w
+            else:
+                sums[_FP] += w
+        else:
+            if pos:
+                sums[_FN] += w
+            else:
+                sums[_TN] += w
+        k = _margin_bin(m, res_bits, buf, ubuf)
+        auc_w[k, pos] += w
+        if m < auc_lo[k]:
+            auc_lo[k] = m
+        if m > auc_hi[k]:
+            auc_hi[k] = m
+
+
+@njit(cache=True)
+def _platt_terms(margins, targets, weights, a, b):
+    """Cross-entropy of sigmoid(a*m + b) against soft targets, with gradient and Hessian in a, b."""
+    f = 0.0
+    g1 = 0.0
+    g2 = 0.0
+    h11 = 0.0
+    h12 = 0.0
+    h22 = 0.0
+    for i in range(margins.size):
+        m = margins[i]
+        t = targets[i]
+        w = weights[i]
+        z = a * m + b
+        f += w * (_softplus(z) - t * z)
+        if z >= 0.0:
+            e = math.exp(-z)
+            s = 1.0 / (1.0 + e)
+        else:
+            e = math.exp(z)
+            s = e / (1.0 + e)
+        r = w * (s - t)
+        c = w * s * (1.0 - s)
+        g1 += r * m
+        g2 += r
+        h11 += c * m * m
+        h12 += c * m
+        h22 += c
+    return f, g1, g2, h11, h12, h22
+
+
+def _float_array(values, name, n=None):
+    """A contiguous float64 copy/view of ``values``; UserError when it is not 1-D of length n."""
+    arr = np.ascontiguousarray(values, dtype=np.float64)
+    if arr.ndim != 1:
+        raise UserError(f"{name}: expected a 1-D array, got shape {arr.shape}")
+    if n is not None and arr.size != n:
+        raise UserError(f"{name}: expected {n} values (one per label), got {arr.size}")
+    return arr
+
+
+def _check_labels(labels):
+    y = _float_array(labels, "labels")
+    if not np.all((y == 0.0) | (y == 1.0)):
+        raise UserError("labels: every label must be 0 or 1")
+    return y
+
+
+def _check_weights(weights, n):
+    if weights is None:
+        return np.empty(0, np.float64)
+    w = _float_array(weights, "weights", n)
+    if not np.all(np.isfinite(w) & (w >= 0.0)):
+        raise UserError("weights: every row weight must be finite and >= 0")
+    return w
+
+
+def _check_int(value, name, lo, hi):
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or not lo <= value <= hi:
+        raise UserError(f"{name}: expected an integer in {lo}..{hi}, got {value!r}")
+    return int(value)
+
+
+def _safe_div(num, den):
+    return float(num / den) if den > 0 else math.nan
+
+
+def _rank_summary(auc_w, auc_lo, auc_hi):
+    """AUC, its error bound and the error rate at the base rate from a rank histogram.
+
+    Returns (auc, auc_error_bound, error_rate_at_base_rate); the first two are NaN with one class.
+    """
+    used = (auc_w[:, 0] + auc_w[:, 1]) > 0.0
+    neg = auc_w[used, 0]
+    pos = auc_w[used, 1]
+    n_w = float(neg.sum())
+    p_w = float(pos.sum())
+    total = n_w + p_w
+    if total <= 0.0:
+        return math.nan, math.nan, math.nan
+    # Error rate when the top-scored weight equal to the positive weight is called positive; a bin
+    # that straddles the cut is split in proportion, as for tied scores.
+    pos_d = pos[::-1]
+    tot_d = pos_d + neg[::-1]
+    cum = np.cumsum(tot_d)
+    k = min(int(np.searchsorted(cum, p_w, side="left")), tot_d.size - 1)
+    above = float(cum[k - 1]) if k > 0 else 0.0
+    frac = min(max((p_w - above) / tot_d[k], 0.0), 1.0)
+    tp = float(pos_d[:k].sum()) + frac * float(pos_d[k])
+    err_base = float(max(2.0 * (p_w - tp), 0.0) / total)
+    if p_w <= 0.0 or n_w <= 0.0:
+        return math.nan, math.nan, err_base
+    neg_below = np.concatenate(([0.0], np.cumsum(neg)[:-1]))
+    pairs = p_w * n_w
+    auc = float(np.sum(pos * (neg_below + 0.5 * neg))) / pairs
+    mixed = auc_lo[used] < auc_hi[used]
+    bound = 0.5 * float(np.sum(pos[mixed] * neg[mixed])) / pairs
+    return auc, bound, err_base
+
+
+def _confusion(sums):
+    return {"tp": float(sums[_TP]), "fp": float(sums[_FP]), "tn": float(sums[_TN]),
+            "fn": float(sums[_FN])}
+
+
+def wilson_interval(successes, n, z=WILSON_Z):
+    """Wilson score interval for a binomial proportion (vectorised).
+
+    Takes ``successes`` (weighted count of positives) and ``n`` (sample size; for weighted rows the
+    effective size (sum w)^2 / sum w^2 from "Survey Sampling", Wiley, 1965) as arrays or scalars,
+    and ``z`` (normal quantile; default gives 95%). Returns (low, high) arrays; NaN where n <= 0.
+    Raises nothing. Source: "Probable Inference, the Law of Succession, and Statistical
+    Inference", Journal of the American Statistical Association, 1927.
+    """
+    s = np.asarray(successes, dtype=np.float64)
+    nn = np.asarray(n, dtype=np.float64)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        phat = s / nn
+        z2 = z * z
+        denom = 1.0 + z2 / nn
+        centre = (phat + z2 / (2.0 * nn)) / denom
+        half = z / denom * np.sqrt(phat * (1.0 - phat) / nn + z2 / (4.0 * nn * nn))
+        low = np.where(nn > 0, np.clip(centre - half, 0.0, 1.0), np.nan)
+        high = np.where(nn > 0, np.clip(centre + half, 0.0, 1.0), np.nan)
+    return low, high
+
+
+def _sigmoid_edges(n_bins):
+    """Histogram edges 0, expit(linspace(-ln 9999, ln 9999, n_bins - 1)), 1 (logit-uniform)."""
+    lim = math.log(9999.0)
+    return np.concatenate(([0.0], expit(np.linspace(-lim, lim, n_bins - 1)), [1.0]))
+
+
+class BinaryMetrics:
+    """Streaming, mergeable quality metrics of predicted probabilities against 0/1 labels.
+
+    ``BinaryMetrics(n_bins=10, histogram_bins=40, auc_bits=12)``: ``n_bins`` equal-width reliability
+    bins over [0, 1] (1..10000; a score on an inner edge belongs to the lower bin, as in
+    scikit-learn's ``calibration_curve``); ``histogram_bins`` score-histogram bins (3..10000) whose
+    inner edges are uniform in log-odds between 1e-4 and 1 - 1e-4, with two end bins reaching 0 and
+    1 (half-open [lo, hi) as in ``numpy.histogram``, the last bin closed); ``auc_bits`` leading
+    mantissa bits of the rank histogram (4..14). Raises UserError for values out of range.
+
+    State is fixed in size: 2 * (63 * 2**auc_bits + 1) + 1 rank bins with four float64 each
+    (16.5 MB at the default 12 bits) plus the small tables. Memory does not grow with rows.
+
+    AUC guarantee: two scores in different rank bins are ordered exactly; each rank bin is counted
+    as a block of tied scores (1/2 per positive-negative pair, the tie rule of scikit-learn's
+    ``roc_auc_score``). A bin spans scores within a relative 2**-auc_bits of each other in p for
+    p < 1/2 and in 1 - p for p > 1/2 (2.4e-4 at the default), plus one bin for p < 2**-64 and one
+    for 1 - p < 2**-64. Bins whose smallest and largest score are equal are exact, so ties of any
+    size are exact; the summary's ``auc_error_bound`` = sum over bins holding more than one
+    distinct score of (positive weight * negative weight / 2), divided by (total positive weight *
+    total negative weight), bounds |reported AUC - exact AUC| (up to float rounding). The same
+    block rule decides the error rate at the base rate. Merging adds the histograms, so it is exact.
+    The AUC is the probability that a random positive outranks a random negative, from "The meaning
+    and use of the area under a receiver operating characteristic (ROC) curve", Radiology, 1982.
+    """
+
+    def __init__(self, n_bins: int = 10, histogram_bins: int = 40, auc_bits: int = 12):
+        self.n_bins = _check_int(n_bins, "n_bins", 1, 10000)
+        self.histogram_bins = _check_int(histogram_bins, "histogram_bins", 3, 10000)
+        self.auc_bits = _check_int(auc_bits, "auc_bits", 4, 14)
+        self._rel_edges = np.linspace(0.0, 1.0, self.n_bins + 1)
+        self._hist_edges = _sigmoid_edges(self.histogram_bins)
+        n_rank = 2 * ((_PROB_OCTAVES << self.auc_bits) + 1) + 1
+        self._counts = np.zeros(2, np.int64)
+        self._sums = np.zeros(_N_SUMS, np.float64)
+        self._rel_count = np.zeros(self.n_bins, np.int64)
+        self._rel_sums = np.zeros((self.n_bins, 4), np.float64)
+        self._hist = np.zeros((self.histogram_bins, 2), np.float64)
+        self._auc_w = np.zeros((n_rank, 2), np.float64)
+        self._auc_lo = np.full(n_rank, np.inf)
+        self._auc_hi = np.full(n_rank, -np.inf)
+
+    def update(self, labels, probs, weights=None, margins=None) -> None:
+        """Add a chunk of rows.
+
+        Takes ``labels`` (0/1, bool or numbers), ``probs`` (predicted probabilities in [0, 1]),
+        optional ``weights`` (row weights, finite and >= 0; default 1) and optional ``margins``
+        (the model's log-odds z with p = 1/(1+exp(-z))). With margins, log-loss is computed from
+        them as log(1 + exp(-z)) / log(1 + exp(z)) (no clipping needed); without, from the
+        probabilities clipped to [EPS, 1 - EPS] (see :data:`EPS`). All other metrics use
+        ``probs``. Returns None. Raises UserError for labels other than 0/1, probabilities outside
+        [0, 1] or NaN, bad weights, non-finite margins, or arrays of unequal length.
+        """
+        y = _check_labels(labels)
+        p = _float_array(probs, "probs", y.size)
+        if not np.all((p >= 0.0) & (p <= 1.0)):
+            raise UserError("probs: every predicted probability must be in [0, 1] (NaN refused)")
+        w = _check_weights(weights, y.size)
+        if margins is None:
+            m = np.empty(0, np.float64)
+        else:
+            m = _float_array(margins, "margins", y.size)
+            if not np.all(np.isfinite(m)):
+                raise UserError("margins: every margin must be finite")
+        if y.size == 0:
+            return
+        _accumulate_binary(y, p, w, m, self._rel_edges[1:-1], self._hist_edges, self.auc_bits,
+                           self._counts, self._sums, self._rel_count, self._rel_sums, self._hist,
+                           self._auc_w, self._auc_lo, self._auc_hi)
+
+    def merge(self, other: BinaryMetrics) -> BinaryMetrics:
+        """Combine two accumulators into a new one, as if all rows had gone through one.
+
+        Takes another BinaryMetrics built with the same ``n_bins``, ``histogram_bins`` and
+        ``auc_bits``. Returns a new BinaryMetrics; both inputs are left unchanged. Raises
+        ValueError when the settings differ (a programming error, not a user mistake).
+        """
+        if not isinstance(other, BinaryMetrics) or (
+                (self.n_bins, self.histogram_bins, self.auc_bits)
+                != (other.n_bins, other.histogram_bins, other.auc_bits)):
+            raise ValueError("BinaryMetrics.merge: both accumulators need the same bin settings")
+        out = BinaryMetrics(self.n_bins, self.histogram_bins, self.auc_bits)
+        out._counts = self._counts + other._counts
+        out._sums = self._sums + other._sums
+        out._rel_count = self._rel_count + other._rel_count
+        out._rel_sums = self._rel_sums + other._rel_sums
+        out._hist = self._hist + other._hist
+        out._auc_w = self._auc_w + other._auc_w
+        out._auc_lo = np.minimum(self._auc_lo, other._auc_lo)
+        out._auc_hi = np.maximum(self._auc_hi, other._auc_hi)
+        return out
+
+    def summary(self) -> dict:
+        """All metrics as a plain dict with stable keys (floats, ints, lists; NaN when undefined).
+
+        Keys: ``rows``, ``positives`` (row counts); ``weight_sum``, ``positive_weight``,
+        ``base_rate`` (weighted); ``log_loss`` (weighted mean cross-entropy); ``normalized_entropy``
+        (log-loss divided by the entropy of the base rate; NaN with one class); ``auc`` (NaN with
+        one class) and ``auc_error_bound`` (see the class docstring); ``brier`` (weighted mean
+        squared error of the probability, "Verification of forecasts expressed in terms of
+        probability", Monthly Weather Review, 1950); ``calibration_ratio`` (sum of w*p over sum of
+        w*y; NaN without positives); ``ece`` (expected calibration error over the reliability bins,
+        sum of |sum w*p - sum w*y| per bin over the total weight, "Obtaining Well Calibrated
+        Probabilities Using Bayesian Binning", AAAI, 2015); ``error_rate`` (weighted share
+        misclassified when p > 0.5 means positive); ``error_rate_at_base_rate`` (the same when the
+        top-scored share of weight equal to the base rate is called positive, i.e. at the
+        precision-recall break-even point); ``confusion`` ({tp, fp, tn, fn} weighted, at p > 0.5);
+        ``bins`` (reliability table: per bin {lo, hi, count, weight, mean_prediction,
+        observed_rate, wilson_low, wilson_high}, a 95% Wilson interval on the observed rate with
+        the effective sample size (sum w)^2 / sum w^2); ``histogram`` ({edges, positives,
+        negatives}: weight per score bin by class). All values are NaN for an empty accumulator.
+        Raises nothing.
+        """
+        s = self._sums
+        w_sum = float(s[_W])
+        p_w = float(s[_PW])
+        base = _safe_div(p_w, w_sum)
+        log_loss = _safe_div(s[_LOSS], w_sum)
+        if 0.0 < base < 1.0:
+            entropy = -(base * math.log(base) + (1.0 - base) * math.log1p(-base))
+            ne = log_loss / entropy
+        else:
+            ne = math.nan
+        auc, bound, err_base = _rank_summary(self._auc_w, self._auc_lo, self._auc_hi)
+        rw = self._rel_sums[:, 0]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            mean_pred = self._rel_sums[:, 2] / rw
+            observed = self._rel_sums[:, 3] / rw
+            n_eff = rw * rw / self._rel_sums[:, 1]
+            wl, wh = wilson_interval(observed * n_eff, n_eff)
+        used = rw > 0
+        bins = []
+        for b in range(self.n_bins):
+            bins.append({
+                "lo": float(self._rel_edges[b]),
+                "hi": float(self._rel_edges[b + 1]),
+                "count": int(self._rel_count[b]),
+                "weight": float(rw[b]),
+                "mean_prediction": float(mean_pred[b]) if used[b] else math.nan,
+                "observed_rate": float(observed[b]) if used[b] else math.nan,
+                "wilson_low": float(wl[b]) if used[b] else math.nan,
+                "wilson_high": float(wh[b]) if used[b] else math.nan,
+            })
+        ece = float(np.abs(self._rel_sums[:, 2] - self._rel_sums[:, 3]).sum() / w_sum) \
+            if w_sum > 0 else math.nan
+        return {
+            "rows": int(self._counts[0]),
+            "positives": int(self._counts[1]),
+            "weight_sum": w_sum,
+            "positive_weight": p_w,
+            "base_rate": base,
+            "log_loss": log_loss,
+            "normalized_entropy": ne,
+            "auc": auc,
+            "auc_error_bound": bound,
+            "brier": _safe_div(s[_BRIER], w_sum),
+            "calibration_ratio": _safe_div(s[_PRED], p_w),
+            "ece": ece,
+            "error_rate": _safe_div(s[_FP] + s[_FN], w_sum),
+            "error_rate_at_base_rate": err_base,
+            "confusion": _confusion(s),
+            "bins": bins,
+            "histogram": {
+                "edges": [float(e) for e in self._hist_edges],
+                "positives": [float(v) for v in self._hist[:, 1]],
+                "negatives": [float(v) for v in self._hist[:, 0]],
+            },
+        }
+
+
+class MarginMetrics:
+    """Streaming, mergeable ranking metrics of raw margins (for squared-hinge models).
+
+    ``MarginMetrics(auc_bits=12)``: ``auc_bits`` leading mantissa bits of the rank histogram
+    (4..14; UserError otherwise). The rank histogram bins |m| over [2**-32, 2**32) with relative
+    width 2**-auc_bits, one bin for |m| < 2**-32 (both signs) and one per sign beyond 2**32; the
+    AUC guarantee and ``auc_error_bound`` are as in :class:`BinaryMetrics`. The error rate calls a
+    row positive when its margin is > 0.
+    """
+
+    def __init__(self, auc_bits: int = 12):
+        self.auc_bits = _check_int(auc_bits, "auc_bits", 4, 14)
+        n_rank = 2 * ((_MARGIN_OCTAVES << self.auc_bits) + 1) + 1
+        self._counts = np.zeros(2, np.int64)
+        self._sums = np.zeros(_N_SUMS, np.float64)
+        self._auc_w = np.zeros((n_rank, 2), np.float64)
+        self._auc_lo = np.full(n_rank, np.inf)
+        self._auc_hi = np.full(n_rank, -np.inf)
+
+    def update(self, labels, margins, weights=None) -> None:
+        """Add a chunk of rows.
+
+        Takes ``labels`` (0/1), ``margins`` (finite model outputs) and optional ``weights``
+        (finite, >= 0; default 1). Returns None. Raises UserError for labels other than 0/1,
+        non-finite margins, bad weights or arrays of unequal length.
+        """
+        y = _check_labels(labels)
+        m = _float_array(margins, "margins", y.size)
+        if not np.all(np.isfinite(m)):
+            raise UserError("margins: every margin must be finite")
+        w = _check_weights(weights, y.size)
+        if y.size == 0:
+            return
+        _accumulate_margin(y, m, w, self.auc_bits, self._counts, self._sums, self._auc_w,
+                           self._auc_lo, self._auc_hi)
+
+    def merge(self, other: MarginMetrics) -> MarginMetrics:
+        """Combine two accumulators into a new one (inputs unchanged).
+
+        Takes a MarginMetrics with the same ``auc_bits``; returns the combined MarginMetrics.
+        Raises ValueError when the settings differ.
+        """
+        if not isinstance(other, MarginMetrics) or self.auc_bits != other.auc_bits:
+            raise ValueError("MarginMetrics.merge: both accumulators need the same auc_bits")
+        out = MarginMetrics(self.auc_bits)
+        out._counts = self._counts + other._counts
+        out._sums = self._sums + other._sums
+        out._auc_w = self._auc_w + other._auc_w
+        out._auc_lo = np.minimum(self._auc_lo, other._auc_lo)
+        out._auc_hi = np.maximum(self._auc_hi, other._auc_hi)
+        return out
+
+    def summary(self) -> dict:
+        """Metrics as a dict with stable keys.
+
+        Keys: ``rows``, ``positives``, ``weight_sum``, ``positive_weight``, ``base_rate``, ``auc``,
+        ``auc_error_bound``, ``error_rate`` (margin > 0 means positive), ``error_rate_at_base_rate``
+        and ``confusion`` ({tp, fp, tn, fn} weighted), defined as in
+        :meth:`BinaryMetrics.summary`. Raises nothing.
+        """
+        s = self._sums
+        w_sum = float(s[_W])
+        auc, bound, err_base = _rank_summary(self._auc_w, self._auc_lo, self._auc_hi)
+        return {
+            "rows": int(self._counts[0]),
+            "positives": int(self._counts[1]),
+            "weight_sum": w_sum,
+            "positive_weight": float(s[_PW]),
+            "base_rate": _safe_div(s[_PW], w_sum),
+            "auc": auc,
+            "auc_error_bound": bound,
+            "error_rate": _safe_div(s[_FP] + s[_FN], w_sum),
+            "error_rate_at_base_rate": err_base,
+            "confusion": _confusion(s),
+        }
+
+
+def fit_platt(margins, labels, weights=None, *, prior_correction: bool = True,
+              max_iter: int = 100) -> tuple[float, float]:
+    """Fit Platt scaling p = 1 / (1 + exp(-(a*m + b))) on a calibration slice.
+
+    Takes ``margins`` (finite), ``labels`` (0/1) and optional ``weights`` (frequency weights,
+    finite and >= 0). Minimises the weighted cross-entropy against Platt's targets
+    (N+ + 1)/(N+ + 2) for positives and 1/(N- + 2) for negatives (N+/N- the weighted class totals)
+    when ``prior_correction`` is true, or against the 0/1 labels when false (plain logistic
+    regression on the one-dimensional margin). Method from "Probabilistic Outputs for Support
+    Vector Machines and Comparisons to Regularized Likelihood Methods", Advances in Large Margin
+    Classifiers, MIT Press, 1999; solved by Newton's method with backtracking line search and a
+    1e-12 ridge on the Hessian as in "A Note on Platt's Probabilistic Outputs for Support Vector
+    Machines", Machine Learning, 2007. Stops when the gradient is below 1e-11 of its scale, when no
+    step decreases the objective, or after ``max_iter`` Newton steps (1..1000).
+    Returns (a, b) as floats. Raises UserError for an empty slice, bad labels/weights/margins, or,
+    without prior correction, a slice with one class or one separated by the margin (no finite
+    maximum-likelihood fit exists then).
+    """
+    y = _check_labels(labels)
+    m = _float_array(margins, "margins", y.size)
+    if not np.all(np.isfinite(m)):
+        raise UserError("margins: every margin must be finite")
+    w = _check_weights(weights, y.size)
+    max_iter = _check_int(max_iter, "max_iter", 1, 1000)
+    if w.size == 0:
+        w = np.ones(y.size)
+    keep = w > 0
+    if not np.any(keep):
+        raise UserError("fit_platt: the calibration slice needs at least one row with weight > 0")
+    p_w = float(np.sum(w * y))
+    n_w = float(np.sum(w * (1.0 - y)))
+    if prior_correction:
+        hi, lo = (p_w + 1.0) / (p_w + 2.0), 1.0 / (n_w + 2.0)
+    else:
+        is_pos = keep & (y == 1.0)
+        is_neg = keep & (y == 0.0)
+        if not np.any(is_pos) or not np.any(is_neg):
+            raise UserError("fit_platt: the calibration slice holds one class only; "
+                            "use prior_correction=True")
+        if m[is_neg].max() <= m[is_pos].min() or m[is_pos].max() <= m[is_neg].min():
+            raise UserError("fit_platt: the margins separate the classes of the calibration slice; "
+                            "use prior_correction=True")
+        hi, lo = 1.0, 0.0
+    t = np.where(y == 1.0, hi, lo)
+    a, b = 0.0, math.log((p_w + 1.0) / (n_w + 1.0))
+    ridge = 1e-12
+    tol_a = 1e-11 * max(float(np.sum(w * np.abs(m))), 1e-300)
+    tol_b = 1e-11 * (p_w + n_w)
+    f, g1, g2, h11, h12, h22 = _platt_terms(m, t, w, a, b)
+    for _ in range(max_iter):
+        if abs(g1) <= tol_a and abs(g2) <= tol_b:
+            break
+        h11 += ridge
+        h22 += ridge
+        det = h11 * h22 - h12 * h12
+        da = -(h22 * g1 - h12 * g2) / det
+        db = -(h11 * g2 - h12 * g1) / det
+        slope = g1 * da + g2 * db
+        step = 1.0
+        while step >= 1e-10:
+            na, nb = a + step * da, b + step * db
+            terms = _platt_terms(m, t, w, na, nb)
+            if terms[0] < f + 1e-4 * step * slope:
+                a, b = na, nb
+                f, g1, g2, h11, h12, h22 = terms
+                break
+            step *= 0.5
+        else:
+            break
+    return float(a), float(b)
+
+
+def apply_platt(margins, a: float, b: float) -> np.ndarray:
+    """Probabilities 1 / (1 + exp(-(a*m + b))) for an array of margins (overflow-safe).
+
+    Takes ``margins`` (array-like) and the pair (a, b) returned by :func:`fit_platt`; returns a
+    float64 array. Raises nothing. Source: as :func:`fit_platt`.
+    """
+    return expit(a * np.asarray(margins, dtype=np.float64) + b)
