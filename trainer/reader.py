@@ -338,11 +338,41 @@ def _keep_uniform(file_idx, raw, seed, pass_index):
     return out
 
 
-class Featurizer:
-    """Hashes the spec's features of a chunk of rows into CSR (``trainer.hashing`` contract)."""
+class BucketExamples:
+    """A few readable token values per bucket, from the first ``max_rows`` rows hashed, so reports can
+    say which field values a weight came from. At most ``per_bucket`` values per bucket."""
 
-    def __init__(self, spec: Spec):
+    def __init__(self, n_buckets: int, per_bucket: int = 3, max_rows: int = 500_000,
+                 values: dict[str, list[str]] | None = None):
+        self.per_bucket, self.rows_left = per_bucket, max_rows
+        self.values: dict[str, list[str]] = values or {}
+        self.count = np.zeros(n_buckets, dtype=np.uint8)
+        for b, v in self.values.items():
+            self.count[int(b)] = len(v)
+
+    def add(self, tok: "_Tokens", buckets: np.ndarray) -> None:
+        """Record values of the tokens ``tok`` uses whose buckets have room."""
+        ids = np.unique(tok.ids)
+        b = buckets[ids]
+        room = self.count[b] < self.per_bucket
+        ids, b = ids[room], b[room]
+        _, first = np.unique(b, return_index=True)
+        for k, bucket in zip(ids[first].tolist(), b[first].tolist()):
+            raw = tok.prefix.tobytes() + tok.buf[tok.off[k]:tok.off[k + 1]].tobytes()
+            text = raw.decode("utf-8", errors="replace").replace("\x1f", "=").replace("\x1e", " & ")
+            seen = self.values.setdefault(str(bucket), [])
+            if text not in seen:
+                seen.append(text)
+                self.count[bucket] += 1
+
+
+class Featurizer:
+    """Hashes the spec's features of a chunk of rows into CSR (``trainer.hashing`` contract); with
+    ``examples``, also records a few readable values per bucket."""
+
+    def __init__(self, spec: Spec, examples: BucketExamples | None = None):
         self.spec = spec
+        self.examples = examples
         self.seed = np.uint32(spec.seed)
         self.mask = np.uint32(spec.n_buckets - 1)
         self.prefixes = {f.column: np.frombuffer(f.column.encode("utf-8") + b"\x1f", dtype=np.uint8)
@@ -393,9 +423,14 @@ class Featurizer:
         data = np.empty(indptr[-1], dtype=np.float64)
         cursor = indptr[:-1].copy()
         empty = np.zeros(0, dtype=np.float64)
+        sample = self.examples is not None and self.examples.rows_left > 0
         for t in parts:
             _scatter(t.ptr, t.ids, self._hash(t), empty if t.values is None else t.values,
                      cursor, indices, data)
+            if sample:
+                self.examples.add(t, t.buckets)
+        if sample:
+            self.examples.rows_left -= n
         return indptr, indices, data
 
 
@@ -523,6 +558,7 @@ class Reader:
     instead of raising. ``keep``: columns to carry along in ``Batch.columns``. ``missing_as_null``:
     a feature column absent from a file reads as all null. ``dictionary``: read string columns
     dictionary-encoded (each distinct value hashed once per chunk); both ways give the same batches.
+    ``examples``: a BucketExamples that records readable values per bucket as rows are hashed.
     """
 
     spec: Spec
@@ -539,6 +575,7 @@ class Reader:
     missing_as_null: bool = False
     dictionary: bool = True
     chunk_rows: int = CHUNK_ROWS
+    examples: BucketExamples | None = None
     counts: ReadCounts = field(default_factory=ReadCounts)
 
     def __post_init__(self):
@@ -551,7 +588,7 @@ class Reader:
         self._need = list(dict.fromkeys(need + list(self.keep)))
         missing_ok = tuple(f.column for f in self.spec.features) if self.missing_as_null else ()
         self.files = discover(self.path, self.spec, self.start, self.end, need=self._need, missing_ok=missing_ok)
-        self.featurizer = Featurizer(self.spec)
+        self.featurizer = Featurizer(self.spec, self.examples)
 
     @property
     def total_rows(self) -> int:

@@ -33,7 +33,7 @@ from trainer.errors import Interrupted, UserError
 from trainer.evaluation import evaluate
 from trainer.metrics import fit_platt
 from trainer.model import Model, load_model
-from trainer.reader import Position, Reader
+from trainer.reader import BucketExamples, Position, Reader
 from trainer.solvers import check_choice, check_float, check_int, make_solver, SOLVER_NAMES
 from trainer.spec import Spec
 
@@ -155,7 +155,7 @@ class Trainer:
         self.reader = Reader(spec, data, options.start, options.end, batch_rows=options.batch_rows,
                              shuffle_rows=options.shuffle_buffer, seed=options.seed,
                              negative_keep_rate=options.negative_keep_rate,
-                             skip_bad_labels=options.skip_bad_labels)
+                             skip_bad_labels=options.skip_bad_labels, examples=BucketExamples(spec.n_buckets))
         self.holdout = (Reader(spec, self.holdout_path, options.holdout_start, options.holdout_end,
                                batch_rows=65536, skip_bad_labels=options.skip_bad_labels)
                         if self.holdout_path else None)
@@ -184,6 +184,9 @@ class Trainer:
                                     f"({theirs.get(key)!r} there, {ours[key]!r} now)")
             self.solver.load_state({k[7:]: (v.item() if v.ndim == 0 else v)
                                     for k, v in arrays.items() if k.startswith("solver.")})
+            ex = meta["examples"]
+            self.reader.examples = self.reader.featurizer.examples = BucketExamples(
+                self.spec.n_buckets, max_rows=ex["rows_left"], values=ex["values"])
             s = meta["state"]
             s["position"] = Position(*s["position"]) if s["position"] is not None else None
             self.state = _State(**s)
@@ -219,21 +222,30 @@ class Trainer:
         arrays = {f"solver.{k}": np.asarray(v) for k, v in self.solver.state().items()}
         s = dataclasses.asdict(self.state)
         s["position"] = list(dataclasses.astuple(self.state.position)) if self.state.position else None
-        save_checkpoint(self.ckpt, arrays, {"fingerprint": self._fingerprint(), "state": s})
+        ex = self.reader.examples
+        save_checkpoint(self.ckpt, arrays, {"fingerprint": self._fingerprint(), "state": s,
+                                            "examples": {"values": ex.values, "rows_left": ex.rows_left}})
         write_atomic(self.out / "progress.json", [json.dumps(self.state.progress).encode()])
 
     # -- the model --------------------------------------------------------------------------------
 
     def current_model(self, holdout: dict | None = None, calibration: dict | None = None) -> Model:
-        """A Model of the solver's current weights (copied), with the downsampling correction."""
+        """A Model of the solver's current weights (copied), with the downsampling correction and an
+        estimate of the distinct tokens seen: every bucket a token reached has a non-zero weight, so
+        D ~ -m ln(1 - occupied/m) ("A Linear-Time Probabilistic Counting Algorithm for Database
+        Applications", ACM Transactions on Database Systems, 1990)."""
         intercept = self.solver.intercept + math.log(self.opt.negative_keep_rate)
+        weights = np.array(self.solver.weights, dtype=np.float64)
+        m, occupied = weights.size, int(np.count_nonzero(weights))
+        distinct = round(-m * math.log1p(-occupied / m)) if occupied < m else None
         info = {"options": self.opt.as_json(), "negative_keep_rate": self.opt.negative_keep_rate,
                 "summary": {"passes": self.state.pass_index, "rows": self.state.rows_total,
+                            "distinct_tokens": distinct, "distinct_tokens_method":
+                            "linear counting on the occupied buckets (ACM TODS 1990)",
                             "steps": self.state.steps, "data": self.data, "holdout_data": self.holdout_path,
                             "stopped_early": self.state.stopped_early, "best_pass": self.state.best_pass},
-                "holdout": holdout, "calibration": calibration, "examples": {}}
-        return Model(self.spec, np.array(self.solver.weights, dtype=np.float64), intercept,
-                     self.opt.loss, info)
+                "holdout": holdout, "calibration": calibration, "examples": self.reader.examples.values}
+        return Model(self.spec, weights, intercept, self.opt.loss, info)
 
     # -- the loop ---------------------------------------------------------------------------------
 
