@@ -72,3 +72,14 @@ def small_log(tmp_path):
     spec_path = tmp_path / "spec.json"
     spec_path.write_text(json.dumps(SMALL_SPEC))
     return root, spec_path
+
+
+def make_model(spec, loss: str = "logistic", calibration: dict | None = None, seed: int = 0, info: dict | None = None):
+    """A trainer.model.Model with random weights (about 30% exactly zero) and a random intercept,
+    for tests that need a model but no training."""
+    from trainer.model import Model
+
+    rng = np.random.default_rng(seed)
+    w = rng.normal(0.0, 0.7, spec.n_buckets)
+    w[rng.random(spec.n_buckets) < 0.3] = 0.0
+    return Model(spec, w, float(rng.normal(-1.0, 0.3)), loss, {"calibration": calibration, **(info or {})})

@@ -3,7 +3,6 @@
 
 import json
 
-import pytest
 
 from trainer.cli import main
 

@@ -13,7 +13,7 @@ import pytest
 import scipy.sparse as sp
 
 from trainer.errors import UserError
-from trainer.reader import Position, Reader
+from trainer.reader import Reader
 from trainer.spec import load_spec
 
 from conftest import SMALL_SPEC, make_table

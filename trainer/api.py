@@ -13,7 +13,7 @@ from typing import Callable
 
 import numpy as np
 
-from trainer.checkpoint import write_atomic
+from trainer.atomic import write_atomic
 from trainer.errors import UserError
 from trainer.evaluation import evaluate as _evaluate
 from trainer.model import Model, export_model, inspect_model, load_model
@@ -111,13 +111,7 @@ def report(model_dir: str | Path, out: str | Path | None = None, *, top: int = 1
                                "holdout": rec["holdout"]})
     progress_path = model_dir / "progress.json"
     progress = json.loads(progress_path.read_text()) if progress_path.exists() else []
-    w = model.weights
-    nz = np.flatnonzero(w)
-    order = nz[np.argsort(w[nz], kind="stable")]
-    picks = list(order[::-1][:top]) + list(order[:top])
-    examples = model.info.get("examples") or {}
-    top_weights = [{"bucket": int(b), "weight": float(w[b]), "examples": examples.get(str(int(b)), [])}
-                   for b in picks]
+    top_weights = model.top_weights(top, 1) + model.top_weights(top, -1)
     run = {"title": f"hashcurve model {model_dir.name}", "options": model.info.get("options", {}),
            "passes": passes, "progress": progress, "final_holdout": model.info.get("holdout"),
            "top_weights": top_weights, "loss": model.loss}

@@ -12,43 +12,15 @@ from __future__ import annotations
 
 import hashlib
 import json
-import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
 
+from trainer.atomic import write_atomic
 from trainer.errors import UserError
 
 MAGIC = b"HCCKPT01"
 VERSION = 1
-
-
-def fsync_dir(folder: Path) -> None:
-    """Flush a folder's entries to disk (after a rename), where the platform allows it."""
-    fd = os.open(folder, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-
-
-def write_atomic(path: Path, chunks) -> None:
-    """Write the byte chunks of the iterable ``chunks`` to ``path`` atomically (temp file beside it,
-    fsync, rename, fsync the folder). A failure leaves ``path`` as it was and no temp file behind."""
-    path = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            for chunk in chunks:
-                fh.write(chunk)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    fsync_dir(path.parent)
 
 
 def save_checkpoint(path: Path, arrays: dict[str, np.ndarray], meta: dict) -> None:

@@ -10,10 +10,9 @@ from __future__ import annotations
 
 import html
 import math
-import os
-import secrets
 from pathlib import Path
 
+from trainer.atomic import write_atomic
 from trainer.errors import UserError
 
 _WIDTH = 540
@@ -435,16 +434,5 @@ def write_report(run: dict, path) -> Path:
     folder = target.parent
     if not folder.is_dir():
         raise UserError(f"report path {str(target)!r}: folder {str(folder)!r} does not exist")
-    text = render_report(run).encode("utf-8")
-    tmp = folder / f".{target.name}.{os.getpid()}.{secrets.token_hex(4)}.tmp"
-    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, target)
-    except BaseException:
-        os.unlink(tmp)
-        raise
+    write_atomic(target, [render_report(run).encode("utf-8")])
     return target

@@ -28,7 +28,8 @@ from typing import Callable
 import numpy as np
 from tqdm import tqdm
 
-from trainer.checkpoint import load_checkpoint, save_checkpoint, write_atomic
+from trainer.atomic import write_atomic
+from trainer.checkpoint import load_checkpoint, save_checkpoint
 from trainer.errors import Interrupted, UserError
 from trainer.evaluation import evaluate
 from trainer.metrics import fit_platt
@@ -344,7 +345,9 @@ class Trainer:
                 labels.append(batch.labels)
                 weights.append(batch.weights)
             a, b = fit_platt(np.concatenate(margins), np.concatenate(labels), np.concatenate(weights))
-            model.info["calibration"] = {"method": "platt", "a": a, "b": b, "fitted_on": self.holdout_path}
+            calibration = {"method": "platt", "a": a, "b": b, "fitted_on": self.holdout_path}
+            model = Model(model.spec, model.weights, model.intercept, model.loss,
+                          {**model.info, "calibration": calibration})
         model.info["summary"].update({"passes": st.pass_index, "stopped_early": st.stopped_early,
                                       "best_pass": st.best_pass})
         model.save(self.out)
