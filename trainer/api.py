@@ -112,7 +112,7 @@ def report(model_dir: str | Path, out: str | Path | None = None, *, top: int = 1
     progress_path = model_dir / "progress.json"
     progress = json.loads(progress_path.read_text()) if progress_path.exists() else []
     top_weights = model.top_weights(top, 1) + model.top_weights(top, -1)
-    run = {"title": f"hashcurve model {model_dir.name}", "options": model.info.get("options", {}),
+    run = {"title": f"hashcurve report: {model_dir}", "options": model.info.get("options", {}),
            "passes": passes, "progress": progress, "final_holdout": model.info.get("holdout"),
            "top_weights": top_weights, "loss": model.loss}
     path = Path(out) if out is not None else model_dir / "report.html"

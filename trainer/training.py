@@ -261,8 +261,9 @@ class Trainer:
             self.log(self._table_header())
         with _StopFlag() as stop:
             while st.pass_index < self.opt.passes and not st.stopped_early:
+                started = time.monotonic()
                 self._one_pass(stop)
-                self._finish_pass()
+                self._finish_pass(time.monotonic() - started)
         return self._final_model()
 
     def _one_pass(self, stop: _StopFlag) -> None:
@@ -304,7 +305,7 @@ class Trainer:
                                   f"checkpoint saved in {self.ckpt}; continue with the same command plus --resume")
         bar.close()
 
-    def _finish_pass(self) -> None:
+    def _finish_pass(self, train_seconds: float) -> None:
         st = self.state
         started = time.monotonic()
         holdout = None
@@ -313,7 +314,7 @@ class Trainer:
         st.pass_index += 1
         record = {"pass": st.pass_index, "rows": st.rows_in_pass, "rows_total": st.rows_total,
                   "progressive_loss": st.pv_loss / st.pv_weight if st.pv_weight else None,
-                  "holdout": holdout}
+                  "holdout": holdout, "train_seconds": train_seconds, "eval_seconds": time.monotonic() - started}
         if holdout is not None:
             score = _holdout_score(holdout, self.opt.loss)
             if st.best_score is None or score < st.best_score:
@@ -325,7 +326,7 @@ class Trainer:
                     st.stopped_early = True
         with open(self.out / "metrics.jsonl", "a", encoding="utf-8") as fh:
             fh.write(json.dumps(record) + "\n")
-        self.log(self._table_row(record, time.monotonic() - started))
+        self.log(self._table_row(record))
         if st.stopped_early:
             self.log(f"early stop: holdout loss has not improved for {st.bad_passes} pass(es); "
                      f"keeping the weights of pass {st.best_pass}")
@@ -357,9 +358,9 @@ class Trainer:
 
     def _table_header(self) -> str:
         return (f"{'pass':>4} {'rows':>11} {'train loss':>11} {'holdout loss':>13} {'norm.ent':>9} "
-                f"{'AUC':>7} {'pred/obs':>9} {'error':>7} {'eval s':>7}")
+                f"{'AUC':>7} {'pred/obs':>9} {'error':>7} {'train s':>8} {'eval s':>7}")
 
-    def _table_row(self, rec: dict, seconds: float) -> str:
+    def _table_row(self, rec: dict) -> str:
         h = rec["holdout"] or {}
         margin = h.get("margin", {})
         loss = h.get("log_loss", h.get("squared_hinge_loss"))
@@ -370,4 +371,4 @@ class Trainer:
         return (f"{rec['pass']:>4} {rec['rows']:>11,} {f(rec['progressive_loss'], '11.5f')} {f(loss, '13.5f')} "
                 f"{f(h.get('normalized_entropy'), '9.4f')} {f(h.get('auc', margin.get('auc')), '7.4f')} "
                 f"{f(h.get('calibration_ratio'), '9.4f')} {f(h.get('error_rate', margin.get('error_rate')), '7.4f')} "
-                f"{seconds:7.1f}")
+                f"{rec['train_seconds']:8.1f} {rec['eval_seconds']:7.1f}")
