@@ -108,7 +108,9 @@ def test_bad_options_exit_2_and_write_nothing(log_4files, tmp_path, capsys, opti
 
 
 def test_res_refuses_large_feature_space(log_4files, tmp_path, capsys):
-    data, spec = log_4files
+    data, _ = log_4files
+    spec = tmp_path / "big.json"
+    spec.write_text(json.dumps({**SMALL_SPEC, "hashing": {"bits": 16, "seed": 42}}))
     assert main(cli_args(spec, data, tmp_path / "r") + ["--solver", "res"]) == 2
     assert "olbfgs" in capsys.readouterr().err
     assert not (tmp_path / "r").exists()

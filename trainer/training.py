@@ -20,6 +20,7 @@ import datetime as dt
 import json
 import math
 import signal
+import sys
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -272,7 +273,8 @@ class Trainer:
         point_rows = max(self.reader.total_rows // PROGRESS_POINTS_PER_PASS, opt.batch_rows)
         window_loss = window_w = 0.0
         bar = tqdm(total=self.reader.total_rows, initial=st.rows_in_pass, unit="rows", unit_scale=True,
-                   desc=f"pass {st.pass_index + 1}/{opt.passes}", disable=not self.progress_bar,
+                   desc=f"pass {st.pass_index + 1}/{opt.passes}",
+                   disable=not (self.progress_bar and sys.stderr.isatty()),
                    mininterval=0.5, leave=False, dynamic_ncols=True)
         shown = time.monotonic()
         for batch in self.reader.batches(st.pass_index, st.position):

@@ -1,0 +1,205 @@
+"""Losses and numba kernels against references outside the project (each check names its source)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.optimize
+import scipy.sparse as sp
+from scipy.special import expit, log_expit
+from sklearn.metrics import log_loss
+
+from trainer.errors import UserError
+from trainer.kernels import (batch_support, curvatures_into, margins_into, predict_margin,
+                             regularized_gradient, residuals_into, scatter_compact,
+                             scatter_compact_squares, two_loop)
+from trainer.losses import (loss_code, pointwise_curvature, pointwise_derivative, pointwise_loss)
+from trainer.reader import Batch
+
+LOSSES = ("logistic", "squared-hinge")
+
+
+def _batch(rng, rows=60, n=17, nnz=5):
+    """A random weighted CSR batch; row 0 holds one bucket twice (collisions stay separate entries)."""
+    indices = rng.integers(0, n, rows * nnz).astype(np.int32)
+    indices[1] = indices[0]
+    data = rng.normal(size=rows * nnz)
+    indptr = np.arange(rows + 1, dtype=np.int64) * nnz
+    labels = (rng.random(rows) < 0.4).astype(np.float64)
+    weights = rng.uniform(0.2, 3.0, rows)
+    return Batch(indptr, indices, data, labels, weights, rows)
+
+
+def _csr(batch, n):
+    # scipy sums duplicate entries: the meaning of colliding tokens (README.md, 'Hashing contract')
+    return sp.csr_matrix((batch.data, batch.indices, batch.indptr), shape=(batch.n_rows, n))
+
+
+def _objective(loss, batch, n, lam):
+    """F(x) and its gradient through the project's kernels, x = (w, b)."""
+    code = loss_code(loss)
+    mark = np.full(n, -1, dtype=np.int32)
+    slot = np.empty(batch.indices.shape[0], dtype=np.int32)
+    cols = batch_support(batch.indices, mark, slot)
+
+    def f(x):
+        z = np.empty(batch.n_rows)
+        margins_into(batch.indptr, batch.indices, batch.data, x[:n], x[n], z)
+        r = np.empty(batch.n_rows)
+        loss_sum, weight_sum, _ = residuals_into(code, batch.labels, batch.weights, z, r)
+        return loss_sum / weight_sum + 0.5 * lam * x[:n] @ x[:n]
+
+    def grad(x):
+        z = np.empty(batch.n_rows)
+        margins_into(batch.indptr, batch.indices, batch.data, x[:n], x[n], z)
+        r = np.empty(batch.n_rows)
+        _, weight_sum, r_sum = residuals_into(code, batch.labels, batch.weights, z, r)
+        gsp = np.empty(cols.shape[0])
+        scatter_compact(batch.indptr, slot, batch.data, r, 1.0 / weight_sum, gsp)
+        out = np.empty(n + 1)
+        regularized_gradient(x[:n], lam, cols, gsp, r_sum / weight_sum, out)
+        return out
+
+    return f, grad
+
+
+def test_logistic_loss_matches_sklearn_log_loss():
+    rng = np.random.default_rng(0)
+    z = rng.normal(scale=4.0, size=500)
+    y = (rng.random(500) < 0.3).astype(float)
+    c = rng.uniform(0.1, 2.0, 500)
+    mine = np.average(pointwise_loss("logistic", y, z), weights=c)
+    # reference: sklearn.metrics.log_loss on p = expit(z) with the same sample weights
+    ref = log_loss(y, expit(z), sample_weight=c, labels=[0, 1])
+    assert mine == pytest.approx(ref, rel=1e-12)
+
+
+def test_squared_hinge_matches_textbook_formula():
+    rng = np.random.default_rng(1)
+    z = rng.normal(scale=2.0, size=400)
+    y = (rng.random(400) < 0.5).astype(float)
+    s = 2 * y - 1
+    # reference: the L2-SVM loss max(0, 1 - s z)^2 ("A Dual Coordinate Descent Method for Large-scale
+    # Linear SVM", ICML 2008), evaluated with numpy
+    np.testing.assert_allclose(pointwise_loss("squared-hinge", y, z), np.maximum(0.0, 1.0 - s * z) ** 2,
+                               rtol=1e-15, atol=0)
+
+
+@pytest.mark.parametrize("loss", LOSSES)
+def test_derivatives_match_central_differences(loss):
+    rng = np.random.default_rng(2)
+    z = rng.normal(scale=3.0, size=300)
+    y = (rng.random(300) < 0.5).astype(float)
+    away_from_kink = np.abs(1.0 - (2 * y - 1) * z) > 1e-3  # the squared hinge's l'' jumps at s z = 1
+    z, y = z[away_from_kink], y[away_from_kink]
+    h = 1e-6
+    # reference: central differences (f(z+h) - f(z-h)) / 2h, truncation error O(h^2)
+    fd1 = (pointwise_loss(loss, y, z + h) - pointwise_loss(loss, y, z - h)) / (2 * h)
+    np.testing.assert_allclose(pointwise_derivative(loss, y, z), fd1, rtol=1e-6, atol=1e-8)
+    fd2 = (pointwise_derivative(loss, y, z + h) - pointwise_derivative(loss, y, z - h)) / (2 * h)
+    np.testing.assert_allclose(pointwise_curvature(loss, y, z), fd2, rtol=1e-5, atol=1e-8)
+
+
+def test_extreme_margins_are_finite_and_accurate():
+    z = np.array([-1e4, -800.0, -40.0, -1.0, 0.0, 1.0, 40.0, 800.0, 1e4] * 2)
+    y = np.repeat([1.0, 0.0], 9)
+    s = 2 * y - 1
+    for loss in LOSSES:
+        for fn in (pointwise_loss, pointwise_derivative, pointwise_curvature):
+            assert np.isfinite(fn(loss, y, z)).all()
+    # reference: scipy.special.log_expit / expit, which are accurate in both tails
+    np.testing.assert_allclose(pointwise_loss("logistic", y, z), -log_expit(s * z), rtol=1e-14, atol=0)
+    np.testing.assert_allclose(pointwise_derivative("logistic", y, z), -s * expit(-s * z), rtol=1e-14, atol=0)
+    np.testing.assert_allclose(pointwise_curvature("logistic", y, z), expit(z) * expit(-z),
+                               rtol=1e-13, atol=0)
+    # at z = -1e4 with y = 1 the loss is 1e4 + log1p(exp(-1e4)) = 1e4 exactly in float64 (from memory:
+    # log(1 + e^m) = m + log1p(e^-m))
+    assert pointwise_loss("logistic", [1.0], [-1e4])[0] == 1e4
+    # textbook formula: (1 + 1e4)^2
+    assert pointwise_loss("squared-hinge", [1.0], [-1e4])[0] == (1.0 + 1e4) ** 2
+
+
+def test_unknown_loss_is_a_user_error():
+    with pytest.raises(UserError, match="--loss"):
+        pointwise_loss("hinge", [1.0], [0.0])
+
+
+def test_predict_margin_matches_scipy_sparse():
+    rng = np.random.default_rng(3)
+    batch = _batch(rng)
+    w = rng.normal(size=17)
+    # reference: scipy.sparse CSR product X w + b
+    np.testing.assert_allclose(predict_margin(batch, w, 0.7), _csr(batch, 17) @ w + 0.7,
+                               rtol=1e-13, atol=1e-13)
+
+
+@pytest.mark.parametrize("loss", LOSSES)
+def test_objective_gradient_matches_finite_differences(loss):
+    rng = np.random.default_rng(4)
+    n, lam = 17, 0.03
+    batch = _batch(rng, n=n)
+    f, grad = _objective(loss, batch, n, lam)
+    for _ in range(3):
+        x = rng.normal(scale=0.5, size=n + 1)
+        # reference: scipy.optimize.check_grad (forward differences, step 1.49e-8)
+        err = scipy.optimize.check_grad(f, grad, x)
+        assert err < 1e-6 * max(1.0, np.linalg.norm(grad(x)))
+
+
+@pytest.mark.parametrize("loss", LOSSES)
+def test_gauss_newton_diagonal_matches_dense_product(loss):
+    rng = np.random.default_rng(5)
+    n = 17
+    batch = _batch(rng, n=n)
+    z = rng.normal(size=batch.n_rows)
+    h = np.empty(batch.n_rows)
+    curvatures_into(loss_code(loss), batch.labels, batch.weights, z, h)
+    mark = np.full(n, -1, dtype=np.int32)
+    slot = np.empty(batch.indices.shape[0], dtype=np.int32)
+    cols = batch_support(batch.indices, mark, slot)
+    assert (mark == -1).all()
+    out = np.empty(cols.shape[0])
+    scatter_compact_squares(batch.indptr, slot, batch.data, h, 0.5, out)
+    X = _csr(batch, n).toarray()
+    # reference: diagonal of X^T diag(h) X with numpy dense algebra
+    ref = 0.5 * np.einsum("ij,i,ij->j", X, h, X)
+    np.testing.assert_allclose(out, ref[cols], rtol=1e-12, atol=1e-14)
+    absent = np.setdiff1d(np.arange(n), cols)
+    assert np.all(ref[absent] == 0)
+
+
+def test_two_loop_matches_dense_bfgs_inverse_update():
+    rng = np.random.default_rng(6)
+    n, lam, damp, history = 12, 0.05, 0.01, 4
+    size = n + 1
+    S = rng.normal(size=(history, size))
+    yidx_list, yval_list, dense_y = [], [], []
+    for k in range(history):
+        idx = np.append(np.sort(rng.choice(n, 5, replace=False)), n).astype(np.int32)
+        A = rng.normal(size=(size, size))
+        val = ((A @ A.T) @ S[k])[idx] * 0.1 + 1.0 * S[k][idx]  # keeps s.y > 0
+        yidx_list.append(idx)
+        yval_list.append(val)
+        y = np.zeros(size)
+        y[idx] = val
+        y[:n] += lam * S[k][:n]
+        dense_y.append(y)
+    yptr = np.zeros(history + 1, dtype=np.int64)
+    yptr[1:] = np.cumsum([len(a) for a in yidx_list])
+    yidx = np.concatenate(yidx_list)
+    yval = np.concatenate(yval_list)
+    rho = np.array([1.0 / (S[k] @ dense_y[k]) for k in range(history)])
+    assert (rho > 0).all()
+    order = np.array([2, 3, 0, 1], dtype=np.int64)  # a wrapped ring buffer, oldest first
+    diag = rng.uniform(0.0, 2.0, size)
+    q = rng.normal(size=size)
+    mine = q.copy()
+    two_loop(mine, S, order, history, rho, np.zeros(history), yptr, yidx, yval, lam, n, diag, damp)
+    # reference: dense BFGS inverse update H+ = (I - rho s y^T) H (I - rho y s^T) + rho s s^T
+    # ("Numerical Optimization", Springer, 2006, eq. 6.17; from memory), applied oldest to newest
+    H = np.diag(1.0 / (diag + damp + np.append(np.full(n, lam), 0.0)))
+    eye = np.eye(size)
+    for k in order:
+        s, y = S[k], dense_y[k]
+        H = (eye - rho[k] * np.outer(s, y)) @ H @ (eye - rho[k] * np.outer(y, s)) + rho[k] * np.outer(s, s)
+    np.testing.assert_allclose(mine, H @ q, rtol=1e-10, atol=1e-12)

@@ -1,0 +1,258 @@
+"""Online solvers for the L2-regularized linear objective, one small protocol for all.
+
+Objective (per-row average form, intercept b unregularized, row weights c_i, labels y_i in {0, 1})::
+
+    F(w, b) = sum_i c_i l(y_i, x_i.w + b) / sum_i c_i + (l2 / 2) ||w||^2
+
+with l the logistic or squared-hinge loss of :mod:`trainer.losses`. Every solver offers:
+
+* ``step(batch) -> float``: one update from a :class:`trainer.reader.Batch`; returns the batch's
+  weighted mean data loss at the weights *before* the update (progressive validation). Raises
+  :class:`trainer.errors.Diverged` without changing any state when the loss, the gradient or the new
+  weights would be non-finite.
+* ``weights`` (read-only float64 view, length n_features) and ``intercept`` (float).
+* ``state() -> dict`` of plain numpy arrays and scalars holding the complete state, and
+  ``load_state(state)``, after which later steps are bit-for-bit those of an uninterrupted run.
+
+Methods (``make_solver`` names): ``"olbfgs"`` online limited-memory BFGS (default), ``"res"``
+regularized stochastic BFGS (dense, small problems only), ``"sgd"`` stochastic gradient descent,
+``"adagrad"`` diagonal AdaGrad.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Protocol
+
+import numpy as np
+
+from trainer.errors import Diverged, UserError
+from trainer.kernels import batch_support, margins_into, residuals_into, scatter_compact
+from trainer.losses import LOSS_NAMES, loss_code
+
+SOLVER_NAMES = ("olbfgs", "res", "sgd", "adagrad")
+MAX_FEATURES = 1 << 30
+
+
+class Solver(Protocol):
+    """What the trainer relies on; see the module docstring for the contract of each member."""
+
+    @property
+    def weights(self) -> np.ndarray: ...
+
+    @property
+    def intercept(self) -> float: ...
+
+    def step(self, batch) -> float: ...
+
+    def state(self) -> dict: ...
+
+    def load_state(self, state: dict) -> None: ...
+
+
+def check_float(option: str, value, lo: float, hi: float = math.inf, *, lo_open: bool = False) -> float:
+    """Return ``value`` as a float when it is finite and in [lo, hi] (or (lo, hi] with ``lo_open``;
+    ``hi`` = inf means any finite value above ``lo``).
+
+    Raises ``UserError`` naming ``option`` and the accepted range otherwise.
+    """
+    left = "(" if lo_open else "["
+    right = ")" if math.isinf(hi) else "]"
+    message = f"{option} must be a finite number in {left}{lo:g}, {hi:g}{right}; got {value!r}"
+    if isinstance(value, bool):
+        raise UserError(message)
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        raise UserError(message) from None
+    if not math.isfinite(v) or v < lo or v > hi or (lo_open and v == lo):
+        raise UserError(message)
+    return v
+
+
+def check_int(option: str, value, lo: int, hi: int) -> int:
+    """Return ``value`` as an int when it is an integer in [lo, hi]; else raise ``UserError`` naming
+    ``option`` and the accepted range."""
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or not lo <= value <= hi:
+        raise UserError(f"{option} must be an integer in [{lo}, {hi}]; got {value!r}")
+    return int(value)
+
+
+def check_choice(option: str, value, choices) -> str:
+    """Return ``value`` when it is one of ``choices``; else raise ``UserError`` listing them."""
+    if value not in choices:
+        raise UserError(f"{option} must be one of {', '.join(choices)}; got {value!r}")
+    return value
+
+
+def schedule(step0: float, t0: float, t: int) -> float:
+    """Step size eps_t = step0 * t0 / (t0 + t): sum eps_t diverges and sum eps_t^2 converges, the
+    conditions of "A Stochastic Approximation Method" (Annals of Mathematical Statistics, 1951)."""
+    return step0 * t0 / (t0 + t)
+
+
+class BatchGradient:
+    """Margins, residuals and the sparse data gradient of one batch at given weights.
+
+    Attributes: ``cols`` (int32 distinct buckets of the batch), ``slot`` (position in ``cols`` of each
+    nonzero), ``z`` (margins), ``r`` (c_i l'_i), ``weight_sum`` C, ``loss`` (weighted mean data loss),
+    ``gsp`` (X^T r / C on ``cols``), ``gb`` (sum r / C, the intercept's gradient).
+    """
+
+    __slots__ = ("batch", "cols", "slot", "z", "r", "weight_sum", "loss", "gsp", "gb")
+
+    def __init__(self, batch, cols, slot):
+        self.batch = batch
+        self.cols = cols
+        self.slot = slot
+        self.z = np.empty(batch.n_rows, dtype=np.float64)
+        self.r = np.empty(batch.n_rows, dtype=np.float64)
+        self.gsp = np.empty(cols.shape[0], dtype=np.float64)
+        self.weight_sum = 0.0
+        self.loss = 0.0
+        self.gb = 0.0
+
+    def evaluate(self, code: int, w: np.ndarray, b: float) -> bool:
+        """Fill every attribute at weights (w, b); return True when loss and gradient are finite."""
+        bt = self.batch
+        margins_into(bt.indptr, bt.indices, bt.data, w, b, self.z)
+        loss_sum, weight_sum, r_sum = residuals_into(code, bt.labels, bt.weights, self.z, self.r)
+        self.weight_sum = weight_sum
+        self.loss = loss_sum / weight_sum
+        self.gb = r_sum / weight_sum
+        scatter_compact(bt.indptr, self.slot, bt.data, self.r, 1.0 / weight_sum, self.gsp)
+        return math.isfinite(self.loss) and math.isfinite(self.gb) and bool(np.isfinite(self.gsp).all())
+
+
+class LinearSolver:
+    """Shared part of every solver: options, the weight vector, the batch gradient, checks, state.
+
+    Weights live in one float64 vector ``_x`` of length n_features + 1: the bucket weights, then the
+    intercept. Subclasses implement ``step`` and extend ``_options``, ``_extra_state`` and
+    ``_load_extra``. Raises ``UserError`` naming the option for a bad size, loss or l2.
+    """
+
+    method = ""
+    OPTIONS: tuple[str, ...] = ()
+
+    def __init__(self, n_features: int, loss: str, l2: float):
+        self.n = check_int("n_features", n_features, 1, MAX_FEATURES)
+        self.loss_name = check_choice("--loss", loss, tuple(LOSS_NAMES))
+        self.code = loss_code(loss)
+        self.l2 = check_float("--l2", l2, 0.0, 1e6)
+        self._x = np.zeros(self.n + 1, dtype=np.float64)
+        self._mark = np.full(self.n, -1, dtype=np.int32)
+        self.t = 0
+
+    @property
+    def weights(self) -> np.ndarray:
+        """Bucket weights, a read-only float64 view of length n_features."""
+        v = self._x[: self.n].view()
+        v.flags.writeable = False
+        return v
+
+    @property
+    def intercept(self) -> float:
+        """The intercept b (unregularized)."""
+        return float(self._x[self.n])
+
+    def _check_batch(self, batch) -> None:
+        if batch.n_rows < 1:
+            raise ValueError("a batch must hold at least one row")
+        if batch.indices.shape[0] and (int(batch.indices.max()) >= self.n or int(batch.indices.min()) < 0):
+            raise ValueError(f"batch holds a bucket id outside [0, {self.n}), the model's bucket range")
+
+    def _gradient(self, batch) -> BatchGradient:
+        """Evaluate the batch at the current weights; raise ``Diverged`` when the result is non-finite."""
+        self._check_batch(batch)
+        slot = np.empty(batch.indices.shape[0], dtype=np.int32)
+        cols = batch_support(batch.indices, self._mark, slot)
+        g = BatchGradient(batch, cols, slot)
+        if not g.evaluate(self.code, self._x[: self.n], self._x[self.n]):
+            self._diverged("the loss or its gradient")
+        return g
+
+    def _diverged(self, what: str):
+        raise Diverged(f"--solver {self.method}: {what} became non-finite at step {self.t}; the last good "
+                       f"weights are kept; retry with a smaller initial step, e.g. --step0 "
+                       f"{self._suggested_step0():.3g}")
+
+    def _suggested_step0(self) -> float:
+        """A smaller initial step to suggest in the ``Diverged`` message (a tenth of the current one)."""
+        return self.step0 / 10.0
+
+    def _options(self) -> dict:
+        """Method options that shape the trajectory; a checkpoint must have been written with the same."""
+        return {}
+
+    def state(self) -> dict:
+        """Complete solver state as plain numpy arrays and scalars (see the package docstring)."""
+        st = {"method": self.method, "loss": self.loss_name, "n_features": self.n, "l2": self.l2,
+              "t": self.t, "x": self._x.copy()}
+        st.update(self._options())
+        st.update(self._extra_state())
+        return st
+
+    def load_state(self, state: dict) -> None:
+        """Restore a :meth:`state` dict exactly. Raises ``UserError`` when it was written by another
+        method or with another loss, size, l2 or method option than this solver has."""
+        expected = {"method": self.method, "loss": self.loss_name, "n_features": self.n, "l2": self.l2}
+        expected.update(self._options())
+        for key, mine in expected.items():
+            theirs = _scalar(state.get(key))
+            if theirs != mine:
+                raise UserError(f"checkpoint was written with {key} = {theirs!r} but this run uses {mine!r}")
+        x = np.asarray(state["x"], dtype=np.float64)
+        if x.shape != self._x.shape:
+            raise UserError(f"checkpoint weights have shape {x.shape}; expected {self._x.shape}")
+        self._x[:] = x
+        self.t = int(_scalar(state["t"]))
+        self._load_extra(state)
+
+    def _extra_state(self) -> dict:
+        return {}
+
+    def _load_extra(self, state: dict) -> None:
+        return None
+
+
+def _scalar(v):
+    """Unwrap 0-d numpy arrays (as np.load returns them) and numpy scalars to Python scalars."""
+    if isinstance(v, np.ndarray) and v.ndim == 0:
+        v = v.item()
+    if isinstance(v, np.generic):
+        v = v.item()
+    return v
+
+
+def make_solver(name: str, n_features: int, loss: str, l2: float, *, history: int = 10,
+                step0: float | None = None, seed: int = 0, **method_options) -> Solver:
+    """Build a solver for the objective of this package's docstring.
+
+    Takes the method ``name`` ("olbfgs", "res", "sgd", "adagrad"), the number of buckets
+    ``n_features``, the ``loss`` ("logistic" or "squared-hinge"), the per-row-average L2 strength
+    ``l2`` in [0, 1e6], the curvature memory ``history`` (olbfgs only), the initial step ``step0``
+    (None selects the method's default), the ``seed`` in [0, 2^32 - 1] (validated for a uniform
+    interface: no method draws random numbers, every run is deterministic whatever the seed) and the
+    method options listed on each class (``OPTIONS``). Returns a solver following the
+    :class:`Solver` protocol. Raises ``UserError`` naming the option for an unknown name, loss or
+    option, or a value out of range.
+    """
+    check_choice("--solver", name, SOLVER_NAMES)
+    check_int("--seed", seed, 0, 2**32 - 1)
+    if name != "olbfgs" and history != 10:
+        raise UserError(f"--history applies to --solver olbfgs only; got --solver {name}")
+    if name == "olbfgs":
+        from trainer.solvers.olbfgs import OnlineLBFGS as cls
+        method_options["history"] = history
+    elif name == "res":
+        from trainer.solvers.res import RES as cls
+    elif name == "sgd":
+        from trainer.solvers.sgd import SGD as cls
+    else:
+        from trainer.solvers.adagrad import AdaGrad as cls
+    for key in method_options:
+        if key != "history" and key not in cls.OPTIONS:
+            accepted = ", ".join(cls.OPTIONS) or "none"
+            raise UserError(f"unknown option {key!r} for --solver {name}; accepted: {accepted}")
+    return cls(n_features, loss, l2, step0=step0, **method_options)

@@ -1,0 +1,64 @@
+"""Diagonal AdaGrad with the L2 term handled in closed form.
+
+Method: "Adaptive Subgradient Methods for Online Learning and Stochastic Optimization" (Journal of
+Machine Learning Research 12, 2011), diagonal composite mirror descent: with G_j the running sum of
+squared data gradients of coordinate j and H_j = delta + sqrt(G_j),
+
+    w_j <- argmin_w  eta g_j w + eta (l2 / 2) w^2 + (H_j / 2) (w - w_j)^2
+         = (H_j w_j - eta g_j) / (H_j + eta l2),
+
+the intercept being the same update without the l2 term.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from trainer.kernels import adagrad_candidate, adagrad_commit
+from trainer.solvers import LinearSolver, check_float
+
+
+class AdaGrad(LinearSolver):
+    """Diagonal AdaGrad (composite mirror descent form).
+
+    Options: ``step0`` = eta ((0, inf), default 0.2, constant; chosen on the benchmark of
+    ``scripts/bench_solvers.py``) and ``delta`` ((0, 1e6], default 1e-6,
+    added to sqrt(G_j) so unseen coordinates stay finite). Raises ``UserError`` naming the option for
+    a value out of range.
+    """
+
+    method = "adagrad"
+    OPTIONS = ("delta",)
+
+    def __init__(self, n_features: int, loss: str, l2: float, *, step0: float | None = None,
+                 delta: float = 1e-6):
+        super().__init__(n_features, loss, l2)
+        self.step0 = check_float("--step0", 0.2 if step0 is None else step0, 0.0, lo_open=True)
+        self.delta = check_float("delta", delta, 0.0, 1e6, lo_open=True)
+        self._acc = np.zeros(self.n + 1, dtype=np.float64)
+
+    def _options(self) -> dict:
+        return {"step0": self.step0, "delta": self.delta}
+
+    def step(self, batch) -> float:
+        """One AdaGrad update from ``batch``; returns the weighted mean data loss before the update.
+
+        Raises ``Diverged`` (state unchanged) when the loss, gradient or new weights are non-finite,
+        and ``ValueError`` for an empty batch or a bucket id out of range.
+        """
+        g = self._gradient(batch)
+        m = g.cols.shape[0] + 1
+        new_x = np.empty(m, dtype=np.float64)
+        new_acc = np.empty(m, dtype=np.float64)
+        if not adagrad_candidate(self._x, self._acc, self.n, self.step0, self.l2, self.delta, g.cols, g.gsp,
+                                 g.gb, new_x, new_acc):
+            self._diverged("the new weights")
+        adagrad_commit(self._x, self._acc, self.n, self.step0, self.l2, self.delta, g.cols, new_x, new_acc)
+        self.t += 1
+        return g.loss
+
+    def _extra_state(self) -> dict:
+        return {"accumulators": self._acc.copy()}
+
+    def _load_extra(self, state: dict) -> None:
+        self._acc[:] = state["accumulators"]
