@@ -103,6 +103,20 @@ def _softplus(x):
     return math.log1p(math.exp(x))
 
 
+@njit(cache=True, inline="always")
+def _add_ranked(sums, auc_w, auc_lo, auc_hi, k, pos, w, called_positive, score):
+    """Add one row to the confusion sums and to rank bin ``k`` (weight, smallest and largest score)."""
+    if called_positive:
+        sums[_TP if pos else _FP] += w
+    else:
+        sums[_FN if pos else _TN] += w
+    auc_w[k, pos] += w
+    if score < auc_lo[k]:
+        auc_lo[k] = score
+    if score > auc_hi[k]:
+        auc_hi[k] = score
+
+
 @njit(cache=True)
 def _accumulate_binary(labels, probs, weights, margins, rel_inner, hist_edges, res_bits,
                        counts, sums, rel_count, rel_sums, hist, auc_w, auc_lo, auc_hi):
@@ -132,16 +146,6 @@ def _accumulate_binary(labels, probs, weights, margins, rel_inner, hist_edges, r
         d = p - y
         sums[_BRIER] += w * d * d
         sums[_PRED] += w * p
-        if p > 0.5:
-            if pos:
-                sums[_TP] += w
-            else:
-                sums[_FP] += w
-        else:
-            if pos:
-                sums[_FN] += w
-            else:
-                sums[_TN] += w
         b = np.searchsorted(rel_inner, p, side="left")
         rel_count[b] += 1
         rel_sums[b, 0] += w
@@ -152,12 +156,7 @@ def _accumulate_binary(labels, probs, weights, margins, rel_inner, hist_edges, r
         if h >= n_hist:
             h = n_hist - 1
         hist[h, pos] += w
-        k = _prob_bin(p, res_bits, buf, ubuf)
-        auc_w[k, pos] += w
-        if p < auc_lo[k]:
-            auc_lo[k] = p
-        if p > auc_hi[k]:
-            auc_hi[k] = p
+        _add_ranked(sums, auc_w, auc_lo, auc_hi, _prob_bin(p, res_bits, buf, ubuf), pos, w, p > 0.5, p)
 
 
 @njit(cache=True)
@@ -175,22 +174,7 @@ def _accumulate_margin(labels, margins, weights, res_bits, counts, sums, auc_w, 
         counts[1] += pos
         sums[_W] += w
         sums[_PW] += w * y
-        if m > 0.0:
-            if pos:
-                sums[_TP] += w
-            else:
-                sums[_FP] += w
-        else:
-            if pos:
-                sums[_FN] += w
-            else:
-                sums[_TN] += w
-        k = _margin_bin(m, res_bits, buf, ubuf)
-        auc_w[k, pos] += w
-        if m < auc_lo[k]:
-            auc_lo[k] = m
-        if m > auc_hi[k]:
-            auc_hi[k] = m
+        _add_ranked(sums, auc_w, auc_lo, auc_hi, _margin_bin(m, res_bits, buf, ubuf), pos, w, m > 0.0, m)
 
 
 @njit(cache=True)
