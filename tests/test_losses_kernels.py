@@ -10,9 +10,9 @@ from scipy.special import expit, log_expit
 from sklearn.metrics import log_loss
 
 from trainer.errors import UserError
-from trainer.kernels import (batch_support, curvatures_into, margins_into, predict_margin,
-                             regularized_gradient, residuals_into, scatter_compact,
-                             scatter_compact_squares, two_loop)
+from trainer.kernels import (batch_support, curvatures_into, direction_products, line_loss, line_residuals,
+                             margins_into, predict_margin, regularized_gradient, residuals_into,
+                             scatter_compact, scatter_compact_squares, sparse_dot, two_loop)
 from trainer.losses import (loss_code, pointwise_curvature, pointwise_derivative, pointwise_loss)
 from trainer.reader import Batch
 
@@ -203,3 +203,32 @@ def test_two_loop_matches_dense_bfgs_inverse_update():
         s, y = S[k], dense_y[k]
         H = (eye - rho[k] * np.outer(s, y)) @ H @ (eye - rho[k] * np.outer(y, s)) + rho[k] * np.outer(s, s)
     np.testing.assert_allclose(mine, H @ q, rtol=1e-10, atol=1e-12)
+
+
+def test_line_kernels_match_numpy():
+    rng = np.random.default_rng(7)
+    batch = _batch(rng)
+    z0 = rng.normal(size=batch.n_rows)
+    u = rng.normal(size=batch.n_rows)
+    code = loss_code("logistic")
+    # reference: sklearn.metrics.log_loss (weighted mean) at the margins z0 + eps u
+    ref = log_loss(batch.labels, expit(z0 - 0.3 * u), sample_weight=batch.weights, labels=[0, 1])
+    assert line_loss(code, batch.labels, batch.weights, z0, u, -0.3) / batch.weights.sum() == pytest.approx(
+        ref, rel=1e-12)
+    r = np.empty(batch.n_rows)
+    total = line_residuals(code, batch.labels, batch.weights, z0, u, -0.3, r)
+    # reference: the logistic residual c (p - y) with p = scipy.special.expit
+    np.testing.assert_allclose(r, batch.weights * (expit(z0 - 0.3 * u) - batch.labels), rtol=1e-12, atol=1e-15)
+    assert total == pytest.approx(r.sum(), rel=1e-12)
+    x = rng.normal(size=18)
+    d = rng.normal(size=18)
+    xd, dd, bound = direction_products(x, d, 17)
+    # reference: numpy inner products and maxima
+    assert xd == pytest.approx(x[:17] @ d[:17], rel=1e-12) and dd == pytest.approx(d[:17] @ d[:17], rel=1e-12)
+    assert bound == np.abs(x).max() + np.abs(d).max()
+    d[3] = np.nan
+    assert np.isnan(direction_products(x, d, 17)[2])
+    cols = np.array([4, 0, 9], dtype=np.int32)
+    vals = rng.normal(size=3)
+    # reference: numpy fancy indexing and an inner product
+    assert sparse_dot(cols, vals, x, 0.5, x[17]) == pytest.approx(vals @ x[cols] + 0.5 * x[17], rel=1e-12)

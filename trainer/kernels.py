@@ -256,22 +256,76 @@ def ema_diagonal(old, beta, cols, curv, curv_last, out):
 
 
 @njit(cache=True)
-def check_step(x, d, eps, n_reg):
-    """Whether x + eps * d is finite everywhere, and sum_{j < n_reg} d_j^2 (read-only pass)."""
-    ok = True
+def direction_products(x, d, n_reg):
+    """One read-only pass over the weights ``x`` and a direction ``d`` (equal length).
+
+    Returns (x.d and d.d over the first ``n_reg`` coordinates, max |x_j| + max |d_j| over all
+    coordinates, NaN when any entry is NaN). The last value bounds |x_j + e d_j| <= (1 + e) * it for
+    0 < e <= 1, and e * it for e > 1, so the new weights are known finite without writing them.
+    """
+    xd = 0.0
     dd = 0.0
-    for j in range(x.shape[0]):
+    mx = 0.0
+    md = 0.0
+    for j in range(n_reg):
+        xj = x[j]
         dj = d[j]
-        if not np.isfinite(x[j] + eps * dj):
-            ok = False
-        if j < n_reg:
-            dd += dj * dj
-    return ok, dd
+        xd += xj * dj
+        dd += dj * dj
+        ax = abs(xj)
+        ad = abs(dj)
+        if not ax <= mx:
+            mx = ax
+        if not ad <= md:
+            md = ad
+    check = xd * 0.0 + dd * 0.0
+    for j in range(n_reg, x.shape[0]):
+        ax = abs(x[j])
+        ad = abs(d[j])
+        check += ax * 0.0 + ad * 0.0
+        if not ax <= mx:
+            mx = ax
+        if not ad <= md:
+            md = ad
+    return xd, dd, mx + md + check
+
+
+@njit(cache=True)
+def sparse_dot(cols, vals, d, last, d_last):
+    """sum_p vals[p] * d[cols[p]] + last * d_last: a gradient held on the batch's buckets (plus the
+    intercept entry ``last``) against a dense direction."""
+    acc = last * d_last
+    for p in range(cols.shape[0]):
+        acc += vals[p] * d[cols[p]]
+    return acc
+
+
+@njit(cache=True)
+def line_loss(code, labels, weights, z0, u, eps):
+    """sum_i c_i l(y_i, z0_i + eps * u_i): the batch's weighted data loss along the line x + eps d,
+    with u = X d + d_b the margins' rate of change (one sparse product per step, none per trial)."""
+    total = 0.0
+    for i in range(z0.shape[0]):
+        total += weights[i] * loss(code, labels[i], z0[i] + eps * u[i])
+    return total
+
+
+@njit(cache=True)
+def line_residuals(code, labels, weights, z0, u, eps, r):
+    """Write r_i = c_i l'(y_i, z0_i + eps * u_i) (residuals at an accepted point of the line) and
+    return their sum."""
+    total = 0.0
+    for i in range(z0.shape[0]):
+        ri = weights[i] * dloss(code, labels[i], z0[i] + eps * u[i])
+        r[i] = ri
+        total += ri
+    return total
 
 
 @njit(cache=True)
 def commit_step(x, d, eps, s_out, store):
-    """x += eps * d in place; when ``store``, also s_out = eps * d (the step of a new curvature pair)."""
+    """x += eps * d in place; when ``store``, also s_out = eps * d (the step of a new curvature pair,
+    rounded to s_out's dtype: float32 storage halves the memory traffic of :func:`two_loop`)."""
     for j in range(x.shape[0]):
         sj = eps * d[j]
         x[j] = x[j] + sj

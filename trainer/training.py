@@ -51,7 +51,7 @@ class TrainOptions:
     passes: int = 3
     loss: str = "logistic"
     solver: str = "olbfgs"
-    l2: float = 1e-6
+    l2: float = 1e-4
     history: int = 10
     batch_rows: int = 4096
     step0: float | None = None

@@ -1,0 +1,264 @@
+"""Training benchmark: hashcurve with default settings against the full-batch optimum and a tuned SGD peer.
+
+Usage:
+    python scripts/bench_train.py [--rows-per-day 250000] [--train-days 4] [--memory]
+
+Generates (once, under bench_data/) the 20-field benchmark log of scripts/loggen.py (config
+"bench20": Zipf vocabularies from 3 to 2e5, one interaction, 2^20 buckets): ``--train-days`` days of
+training rows and one holdout day. In one run it measures
+
+- the reference optimum: the same objective (the default --l2, per-row average, intercept free)
+  minimized over the whole hashed training CSR by scipy.optimize L-BFGS-B with a tight tolerance,
+  and its holdout log-loss LL*;
+- the peer: scikit-learn SGDClassifier(loss="log_loss") on the same in-memory CSR, constant steps
+  {0.002, 0.005, 0.01, 0.02, 0.05} and the "optimal" schedule, 1 to 30 passes; its best one-pass LL
+  and its best wall time to LL <= 1.01 LL* (tuning grid not charged, holdout scoring not charged);
+- hashcurve with default options, end to end from Parquet (holdout scoring not charged);
+- the time per step split into reading + hashing, solver step, and within the step the gradient
+  and the dense direction work;
+- with --memory: peak RSS of `hashcurve train` on the benchmark log and on a log 4x as long.
+
+It prints every figure and the ratios the targets are stated in.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+import scipy.optimize
+import scipy.sparse as sp
+from scipy.special import expit, log_expit
+
+HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE))
+
+import loggen  # noqa: E402
+
+from trainer import api  # noqa: E402
+from trainer.reader import Reader  # noqa: E402
+from trainer.solvers import make_solver  # noqa: E402
+from trainer.spec import load_spec  # noqa: E402
+from trainer.training import TrainOptions  # noqa: E402
+
+PEER_STEPS = (0.002, 0.005, 0.01, 0.02, 0.05)
+PEER_PASSES = 30
+TARGET = 1.01
+
+
+def make_log(rows_per_day: int, days: int) -> Path:
+    """The bench20 log as a hive-partitioned folder (generated once)."""
+    out = HERE.parent / "bench_data" / f"bench20-{rows_per_day}x{days}"
+    if not (out / "spec.json").exists():
+        print(f"generating {rows_per_day * days:,} rows into {out} ...", flush=True)
+        loggen.write_logs(loggen.CONFIGS["bench20"], out, rows_per_day * days, days=days, seed=7,
+                          chunk_rows=131072, bits=20)
+    return out
+
+
+def day_names(folder: Path) -> list[str]:
+    return sorted(p.name.split("=", 1)[1] for p in (folder / "logs").iterdir() if "=" in p.name)
+
+
+def load_csr(spec, logs: Path, start: str, end: str):
+    """The hashed rows of days start..end as one scipy CSR matrix plus labels (not timed for anyone)."""
+    import datetime as dt
+    reader = Reader(spec, logs, dt.date.fromisoformat(start), dt.date.fromisoformat(end), batch_rows=1 << 20)
+    parts, labels = [], []
+    for b in reader.batches():
+        parts.append(sp.csr_matrix((b.data, b.indices, b.indptr), shape=(b.n_rows, spec.n_buckets)))
+        labels.append(b.labels)
+    X = sp.vstack(parts).tocsr()
+    X.sum_duplicates()
+    return X, np.concatenate(labels)
+
+
+def log_loss(y: np.ndarray, z: np.ndarray) -> float:
+    """Mean logistic loss from margins, computed stably."""
+    return float(-np.mean(y * log_expit(z) + (1 - y) * log_expit(-z)))
+
+
+def reference_optimum(X, y, lam: float):
+    """Full-batch minimum of mean logistic loss + lam/2 ||w||^2 (intercept free) by L-BFGS-B."""
+    n_rows, n = X.shape
+    Xt = X.T.tocsr()
+
+    def fg(v):
+        w, b = v[:n], v[n]
+        z = X @ w + b
+        f = log_loss(y, z) + 0.5 * lam * w @ w
+        r = (expit(z) - y) / n_rows
+        g = np.empty(n + 1)
+        g[:n] = Xt @ r + lam * w
+        g[n] = r.sum()
+        return f, g
+
+    t = time.perf_counter()
+    res = scipy.optimize.minimize(fg, np.zeros(n + 1), jac=True, method="L-BFGS-B",
+                                  options={"maxiter": 20000, "maxfun": 40000, "ftol": 1e-15, "gtol": 1e-10,
+                                           "maxcor": 20})
+    return res.x[:n], res.x[n], res.fun, time.perf_counter() - t, res.nit
+
+
+def run_peer(X, y, Xh, yh, lam: float, target_ll: float) -> list[dict]:
+    """SGDClassifier over the grid; per setting the holdout LL and cumulative fit time per pass."""
+    from sklearn.linear_model import SGDClassifier
+
+    out = []
+    settings = [("constant", e) for e in PEER_STEPS] + [("optimal", None)]
+    for schedule, eta in settings:
+        clf = SGDClassifier(loss="log_loss", alpha=lam, learning_rate=schedule, eta0=eta or 0.01,
+                            random_state=0, shuffle=True, average=False)
+        spent, history = 0.0, []
+        for p in range(1, PEER_PASSES + 1):
+            t = time.perf_counter()
+            clf.partial_fit(X, y, classes=np.array([0.0, 1.0]))
+            spent += time.perf_counter() - t
+            z = Xh @ clf.coef_.ravel() + clf.intercept_[0]
+            ll = log_loss(yh, z) if np.all(np.isfinite(z)) else float("inf")
+            history.append({"pass": p, "ll": ll, "seconds": spent})
+            if ll <= target_ll:
+                break
+        label = f"constant {eta}" if eta else "optimal"
+        out.append({"setting": label, "history": history})
+        reached = next((h for h in history if h["ll"] <= target_ll), None)
+        print(f"  peer {label:<16} pass 1 LL {history[0]['ll']:.5f}  "
+              + (f"reaches target at pass {reached['pass']} after {reached['seconds']:.1f} s" if reached
+                 else f"best LL {min(h['ll'] for h in history):.5f} in {len(history)} passes ({spent:.1f} s)"),
+              flush=True)
+    return out
+
+
+def run_hashcurve(logs: Path, spec_path: Path, train_end: str, hold_day: str, passes: int) -> list[dict]:
+    """Default-option training from Parquet; per-pass holdout LL and cumulative training seconds."""
+    out = Path(tempfile.mkdtemp(prefix="bench-model-"))
+    t = time.perf_counter()
+    api.train(spec_path, logs / "logs", out / "m", end=train_end, holdout_start=hold_day, holdout_end=hold_day,
+              passes=passes, patience=passes, log=print)
+    wall = time.perf_counter() - t
+    rows = [json.loads(x) for x in (out / "m" / "metrics.jsonl").read_text().splitlines()]
+    spent, hist = 0.0, []
+    for r in rows:
+        spent += r["train_seconds"]
+        hist.append({"pass": r["pass"], "ll": r["holdout"]["log_loss"], "seconds": spent})
+    print(f"  hashcurve wall time incl. holdout scoring: {wall:.1f} s")
+    return hist
+
+
+def time_split(spec, logs: Path, train_end: str) -> dict:
+    """Seconds per step: reading + hashing alone, then the solver step on the same in-memory batches
+    with its own split into gradient and dense direction work."""
+    import datetime as dt
+    opt = TrainOptions()
+    reader = Reader(spec, logs / "logs", end=dt.date.fromisoformat(train_end), batch_rows=opt.batch_rows)
+    t = time.perf_counter()
+    batches = list(reader.batches())
+    t_read = time.perf_counter() - t
+    solver = make_solver(opt.solver, spec.n_buckets, opt.loss, opt.l2, history=opt.history, step0=opt.step0)
+    t = time.perf_counter()
+    for b in batches:
+        solver.step(b)
+    t_step = time.perf_counter() - t
+    split = getattr(solver, "seconds", {})
+    n = len(batches)
+    return {"steps": n, "read_ms": 1e3 * t_read / n, "step_ms": 1e3 * t_step / n,
+            **{f"{k}_ms": 1e3 * v / n for k, v in split.items()}}
+
+
+def peak_rss(logs: Path, spec_path: Path, train_end: str) -> float:
+    """Peak resident memory (MB) of a default `hashcurve train` child process (one pass, no holdout)."""
+    with tempfile.TemporaryDirectory() as tmp:
+        proc = subprocess.Popen([sys.executable, "-m", "trainer", "train", "--spec", str(spec_path), "--data",
+                                 str(logs / "logs"), "--end", train_end, "--out", str(Path(tmp) / "m"),
+                                 "--passes", "1", "--quiet"], stdout=subprocess.DEVNULL)
+        _, status, usage = os.wait4(proc.pid, 0)
+        if status != 0:
+            raise SystemExit(f"hashcurve train failed with status {status}")
+        return usage.ru_maxrss / 1024
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--rows-per-day", type=int, default=250_000)
+    ap.add_argument("--train-days", type=int, default=4)
+    ap.add_argument("--passes", type=int, default=3, help="hashcurve passes to run (defaults otherwise)")
+    ap.add_argument("--memory", action="store_true", help="also measure peak RSS on 1x and 4x the log")
+    ap.add_argument("--skip-peer", action="store_true")
+    a = ap.parse_args()
+    opt = TrainOptions()
+    folder = make_log(a.rows_per_day, a.train_days + 1)
+    spec_path = folder / "spec.json"
+    spec = load_spec(spec_path)
+    days = day_names(folder)
+    train_end, hold_day = days[-2], days[-1]
+
+    print("warming the numba cache on the demo-sized slice ...", flush=True)
+    with tempfile.TemporaryDirectory() as tmp:
+        api.train(spec_path, folder / "logs", Path(tmp) / "w", start=days[0], end=days[0], passes=1,
+                  holdout_start=hold_day, holdout_end=hold_day)
+
+    X, y = load_csr(spec, folder / "logs", days[0], train_end)
+    Xh, yh = load_csr(spec, folder / "logs", hold_day, hold_day)
+    print(f"train {X.shape[0]:,} rows, holdout {Xh.shape[0]:,} rows, {X.shape[1]:,} buckets, "
+          f"{X.nnz / X.shape[0]:.1f} entries per row, l2 = {opt.l2:g}", flush=True)
+
+    w, b, fstar, secs, nit = reference_optimum(X, y, opt.l2)
+    ll_star = log_loss(yh, Xh @ w + b)
+    print(f"reference optimum: objective {fstar:.6f}, holdout LL* {ll_star:.5f} "
+          f"(L-BFGS-B {nit} iterations, {secs:.0f} s)", flush=True)
+    target = TARGET * ll_star
+
+    ours = run_hashcurve(folder, spec_path, train_end, hold_day, a.passes)
+    for h in ours:
+        print(f"  hashcurve pass {h['pass']}: LL {h['ll']:.5f} = {h['ll'] / ll_star:.4f} LL*, "
+              f"{h['seconds']:.1f} s cumulative training time", flush=True)
+    our_hit = next((h for h in ours if h["ll"] <= target), None)
+
+    print("\n(a) quality")
+    print(f"  one pass:    LL/LL* = {ours[0]['ll'] / ll_star:.4f}   (target <= 1.010)")
+    if len(ours) >= 3:
+        print(f"  three passes: LL/LL* = {ours[2]['ll'] / ll_star:.4f}   (target <= 1.003)")
+
+    if not a.skip_peer:
+        print("\npeer grid (scikit-learn SGDClassifier on in-memory CSR):", flush=True)
+        peer = run_peer(X, y, Xh, yh, opt.l2, target)
+        best_one = min(p["history"][0]["ll"] for p in peer)
+        hits = [next(h for h in p["history"] if h["ll"] <= target) for p in peer
+                if any(h["ll"] <= target for h in p["history"])]
+        peer_best_time = min((h["seconds"] for h in hits), default=float("inf"))
+        peer_pass_time = float(np.median([p["history"][0]["seconds"] for p in peer]))
+        print(f"  peer best one-pass LL/LL* = {best_one / ll_star:.4f}")
+        print("\n(b) time to LL <= 1.01 LL*")
+        ours_t = our_hit["seconds"] if our_hit else float("inf")
+        print(f"  hashcurve {ours_t:.1f} s from Parquet; peer best {peer_best_time:.1f} s from memory; "
+              f"ratio {ours_t / peer_best_time:.2f}x (target <= 0.5x)")
+        print("\n(c) one full pass")
+        print(f"  hashcurve {ours[0]['seconds']:.1f} s from Parquet; peer median {peer_pass_time:.1f} s from memory; "
+              f"ratio {ours[0]['seconds'] / peer_pass_time:.2f}x (target <= 6x, stretch 3x)")
+
+    split = time_split(spec, folder, train_end)
+    print(f"\ntime per step ({split['steps']} steps of {opt.batch_rows} rows):")
+    for k, v in split.items():
+        if k.endswith("_ms"):
+            print(f"  {k[:-3]:<22} {v:8.3f} ms")
+
+    if a.memory:
+        bound = (opt.history + 4) * spec.n_buckets * 8 / 2**20 + 400
+        rss1 = peak_rss(folder, spec_path, train_end)
+        big = make_log(a.rows_per_day * 4, a.train_days + 1)
+        rss4 = peak_rss(big, big / "spec.json", day_names(big)[-2])
+        print("\n(d) memory")
+        print(f"  peak RSS {rss1:.0f} MB on {X.shape[0]:,} rows, {rss4:.0f} MB on 4x the rows "
+              f"(ratio {rss4 / rss1:.3f}; target within 1.10); bound (history + 4) x buckets x 8 B + 400 MB "
+              f"= {bound:.0f} MB")
+
+
+if __name__ == "__main__":
+    main()
