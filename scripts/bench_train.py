@@ -25,7 +25,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import subprocess
 import sys
 import tempfile
@@ -173,15 +172,26 @@ def time_split(spec, logs: Path, train_end: str) -> dict:
 
 
 def peak_rss(logs: Path, spec_path: Path, train_end: str) -> float:
-    """Peak resident memory (MB) of a default `hashcurve train` child process (one pass, no holdout)."""
+    """Peak resident memory (MB) of a default `hashcurve train` child process (one pass, no holdout),
+    read from the child's own /proc/PID/status VmHWM while it runs (a forked child's ru_maxrss would
+    include this parent's memory)."""
     with tempfile.TemporaryDirectory() as tmp:
         proc = subprocess.Popen([sys.executable, "-m", "trainer", "train", "--spec", str(spec_path), "--data",
                                  str(logs / "logs"), "--end", train_end, "--out", str(Path(tmp) / "m"),
                                  "--passes", "1", "--quiet"], stdout=subprocess.DEVNULL)
-        _, status, usage = os.wait4(proc.pid, 0)
-        if status != 0:
-            raise SystemExit(f"hashcurve train failed with status {status}")
-        return usage.ru_maxrss / 1024
+        status_file = Path(f"/proc/{proc.pid}/status")
+        peak_kb = 0
+        while proc.poll() is None:
+            try:
+                for line in status_file.read_text().splitlines():
+                    if line.startswith("VmHWM:"):
+                        peak_kb = max(peak_kb, int(line.split()[1]))
+            except (FileNotFoundError, ProcessLookupError):
+                pass
+            time.sleep(0.02)
+        if proc.returncode != 0:
+            raise SystemExit(f"hashcurve train failed with status {proc.returncode}")
+        return peak_kb / 1024
 
 
 def main() -> None:

@@ -340,15 +340,18 @@ def _keep_uniform(file_idx, raw, seed, pass_index):
 
 class BucketExamples:
     """A few readable token values per bucket, from the first ``max_rows`` rows hashed, so reports can
-    say which field values a weight came from. At most ``per_bucket`` values per bucket."""
+    say which field values a weight came from: at most ``per_bucket`` values per bucket and
+    ``max_values`` in all (frequent values come first, as they fill the first chunks)."""
 
-    def __init__(self, n_buckets: int, per_bucket: int = 3, max_rows: int = 500_000,
-                 values: dict[str, list[str]] | None = None):
-        self.per_bucket, self.rows_left = per_bucket, max_rows
+    def __init__(self, n_buckets: int, per_bucket: int = 2, max_rows: int = 131_072,
+                 values: dict[str, list[str]] | None = None, max_values: int = 100_000):
+        self.per_bucket, self.rows_left, self.max_values = per_bucket, max_rows, max_values
+        self.total = 0
         self.values: dict[str, list[str]] = values or {}
         self.count = np.zeros(n_buckets, dtype=np.uint8)
         for b, v in self.values.items():
             self.count[int(b)] = len(v)
+            self.total += len(v)
 
     def add(self, tok: "_Tokens", buckets: np.ndarray) -> None:
         """Record values of the tokens ``tok`` uses whose buckets have room."""
@@ -357,6 +360,7 @@ class BucketExamples:
         room = self.count[b] < self.per_bucket
         ids, b = ids[room], b[room]
         _, first = np.unique(b, return_index=True)
+        first = first[: max(self.max_values - self.total, 0)]
         for k, bucket in zip(ids[first].tolist(), b[first].tolist()):
             raw = tok.prefix.tobytes() + tok.buf[tok.off[k]:tok.off[k + 1]].tobytes()
             text = raw.decode("utf-8", errors="replace").replace("\x1f", "=").replace("\x1e", " & ")
@@ -364,6 +368,7 @@ class BucketExamples:
             if text not in seen:
                 seen.append(text)
                 self.count[bucket] += 1
+                self.total += 1
 
 
 class Featurizer:
