@@ -15,7 +15,7 @@ fusing the update of one pair with the inner product of the next.
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
+from numba import njit, prange
 
 from trainer.losses import d2loss, dloss, loss
 
@@ -167,6 +167,52 @@ def regularized_gradient(w, lam, cols, gsp, gb, out):
     out[n] = gb
 
 
+#: Dense reductions are summed over this many fixed chunks, whatever the number of threads, so a
+#: result never depends on how the chunks were shared out: same inputs, same bits.
+REDUCTION_CHUNKS = 64
+
+
+@njit(cache=True, parallel=True)
+def axpy_dot(q, c, s, nxt, n_axpy, n_dot):
+    """q[:n_axpy] += c * s[:n_axpy], then return nxt[:n_dot] . q[:n_dot] (after the update).
+
+    One pass over memory, shared between the cores by ``prange`` over ``REDUCTION_CHUNKS`` fixed
+    chunks whose partial sums are added in chunk order (bit-reproducible).
+    """
+    size = q.shape[0]
+    step = (size + REDUCTION_CHUNKS - 1) // REDUCTION_CHUNKS
+    common = min(n_axpy, n_dot)
+    partial = np.zeros(REDUCTION_CHUNKS)
+    for k in prange(REDUCTION_CHUNKS):
+        lo = k * step
+        hi = min(size, lo + step)
+        acc = 0.0
+        for j in range(lo, min(hi, common)):
+            qj = q[j] + c * s[j]
+            q[j] = qj
+            acc += nxt[j] * qj
+        for j in range(max(lo, common), hi):
+            if j < n_axpy:
+                q[j] += c * s[j]
+            if j < n_dot:
+                acc += nxt[j] * q[j]
+        partial[k] = acc
+    total = 0.0
+    for k in range(REDUCTION_CHUNKS):
+        total += partial[k]
+    return total
+
+
+@njit(cache=True, parallel=True)
+def scale_by_diagonal(q, diag, damp, lam, n_reg):
+    """q_j /= diag_j + damp (+ lam for j < n_reg); 0 where that denominator is not positive."""
+    for j in prange(q.shape[0]):
+        den = diag[j] + damp
+        if j < n_reg:
+            den += lam
+        q[j] = q[j] / den if den > 0.0 else 0.0
+
+
 @njit(cache=True)
 def two_loop(q, S, order, m, rho, alpha, yptr, yidx, yval, lam, n_reg, diag, damp):
     """Overwrite ``q`` with H q, H the limited-memory BFGS inverse-Hessian approximation.
@@ -176,48 +222,30 @@ def two_loop(q, S, order, m, rho, alpha, yptr, yidx, yval, lam, n_reg, diag, dam
     1/(s_k.y_k); ``alpha`` is scratch indexed by slot. The initial matrix is diagonal with entries
     1 / (diag_j + lam + damp) for the n_reg regularized coordinates and 1 / (diag_j + damp) for the rest
     (0 where that denominator is not positive). Two-loop recursion of "Updating Quasi-Newton Matrices
-    with Limited Storage" (Mathematics of Computation, 1980).
+    with Limited Storage" (Mathematics of Computation, 1980); the dense passes run on all cores
+    (:func:`axpy_dot`), each fusing one pair's update with the next pair's inner product.
     """
     size = q.shape[0]
     if m > 0:
-        acc = dot(S[order[m - 1]], q)
+        newest = S[order[m - 1]]
+        acc = axpy_dot(q, 0.0, newest, newest, 0, size)
         for t in range(m - 1, -1, -1):
             k = order[t]
             a = rho[k] * acc
             alpha[k] = a
-            c = a * lam
             sk = S[k]
-            if t > 0:
-                nxt = S[order[t - 1]]
-                acc = 0.0
-                for j in range(n_reg):
-                    qj = q[j] - c * sk[j]
-                    q[j] = qj
-                    acc += nxt[j] * qj
-                for j in range(n_reg, size):
-                    acc += nxt[j] * q[j]
-                for p in range(yptr[k], yptr[k + 1]):
-                    i = yidx[p]
-                    v = a * yval[p]
+            nxt = S[order[t - 1]] if t > 0 else sk
+            acc = axpy_dot(q, -a * lam, sk, nxt, n_reg, size if t > 0 else 0)
+            for p in range(yptr[k], yptr[k + 1]):
+                i = yidx[p]
+                v = a * yval[p]
+                if t > 0:
                     acc -= nxt[i] * v
-                    q[i] -= v
-            else:
-                for j in range(n_reg):
-                    q[j] -= c * sk[j]
-                for p in range(yptr[k], yptr[k + 1]):
-                    q[yidx[p]] -= a * yval[p]
-    for j in range(size):
-        den = diag[j] + damp
-        if j < n_reg:
-            den += lam
-        q[j] = q[j] / den if den > 0.0 else 0.0
+                q[i] -= v
+    scale_by_diagonal(q, diag, damp, lam, n_reg)
     if m > 0:
         k = order[0]
-        acc = 0.0
-        sk = S[k]
-        for j in range(n_reg):
-            acc += sk[j] * q[j]
-        acc *= lam
+        acc = lam * axpy_dot(q, 0.0, S[k], S[k], 0, n_reg)
         for p in range(yptr[k], yptr[k + 1]):
             acc += yval[p] * q[yidx[p]]
         for t in range(m):
@@ -226,20 +254,11 @@ def two_loop(q, S, order, m, rho, alpha, yptr, yidx, yval, lam, n_reg, diag, dam
             sk = S[k]
             if t < m - 1:
                 kn = order[t + 1]
-                nxt = S[kn]
-                d = 0.0
-                for j in range(n_reg):
-                    qj = q[j] + c * sk[j]
-                    q[j] = qj
-                    d += nxt[j] * qj
-                for j in range(n_reg, size):
-                    q[j] += c * sk[j]
-                acc = lam * d
+                acc = lam * axpy_dot(q, c, sk, S[kn], size, n_reg)
                 for p in range(yptr[kn], yptr[kn + 1]):
                     acc += yval[p] * q[yidx[p]]
             else:
-                for j in range(size):
-                    q[j] += c * sk[j]
+                axpy_dot(q, c, sk, sk, size, 0)
 
 
 @njit(cache=True)
