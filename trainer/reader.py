@@ -28,7 +28,7 @@ from trainer.errors import UserError
 from trainer.hashing import cross_tokens, hash_tokens
 from trainer.spec import Feature, Spec
 
-CHUNK_ROWS = 65536
+CHUNK_ROWS = 32768
 PARQUET_SUFFIXES = (".parquet", ".parq")
 _EMPTY_BYTES = np.zeros(0, dtype=np.uint8)
 
@@ -173,7 +173,7 @@ def discover(path: str | Path, spec: Spec | None, start: dt.date | None = None,
 class _Tokens:
     """A feature's tokens for one chunk: row r owns ids[ptr[r]:ptr[r+1]] into a token table whose
     token k is prefix + buf[off[k]:off[k+1]] and hashes to buckets[k]; ``values`` per entry or None
-    (all 1.0)."""
+    (all 1.0); ``dictionary``, the Arrow dictionary the table came from, if any."""
 
     ptr: np.ndarray
     ids: np.ndarray
@@ -182,6 +182,7 @@ class _Tokens:
     off: np.ndarray
     buckets: np.ndarray | None = None
     values: np.ndarray | None = None
+    dictionary: pa.Array | None = None
 
 
 def _valid_mask(arr: pa.Array) -> np.ndarray:
@@ -213,27 +214,28 @@ def _canonical_strings(arr: pa.Array, where: str) -> pa.Array:
                     "or dates (cast floats or timestamps before hashing)")
 
 
-def _token_source(values: pa.Array, where: str) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
-    """(buf, off, codes): a token table of canonical strings, and per-element codes into it when the
-    column is dictionary-encoded (each distinct value hashed once), else None (one token per element)."""
-    if pa.types.is_dictionary(values.type):
-        dictionary = _canonical_strings(values.dictionary, where)
-        buf, off = _string_table(dictionary)
-        codes = values.indices.fill_null(0).to_numpy(zero_copy_only=False).astype(np.int64, copy=False)
-        return buf, off, codes
-    strings = _canonical_strings(values, where)
-    buf, off = _string_table(strings)
-    return buf, off, None
+def _token_source(values: pa.Array, where: str):
+    """(buf, off, codes, dictionary): a token table of canonical strings, and per-element codes into it
+    when the column is dictionary-encoded or not made of strings (each distinct value hashed once),
+    else None (one token per element); ``dictionary`` is the column's own Arrow dictionary or None."""
+    t = values.type
+    if pa.types.is_string(t) or pa.types.is_large_string(t):
+        buf, off = _string_table(values)
+        return buf, off, None, None
+    encoded = values if pa.types.is_dictionary(t) else pc.dictionary_encode(values)
+    buf, off = _string_table(_canonical_strings(encoded.dictionary, where))
+    codes = encoded.indices.fill_null(0).to_numpy(zero_copy_only=False).astype(np.int64, copy=False)
+    return buf, off, codes, encoded.dictionary if encoded is values else None
 
 
 def _categorical_tokens(arr: pa.Array, prefix: np.ndarray, where: str) -> _Tokens:
     valid = _valid_mask(arr)
-    buf, off, codes = _token_source(arr, where)
+    buf, off, codes, dictionary = _token_source(arr, where)
     rows = np.flatnonzero(valid)
     ids = rows if codes is None else codes[rows]
     ptr = np.zeros(len(arr) + 1, dtype=np.int64)
     np.cumsum(valid, out=ptr[1:])
-    return _Tokens(ptr, ids.astype(np.int64, copy=False), prefix, buf, off)
+    return _Tokens(ptr, ids.astype(np.int64, copy=False), prefix, buf, off, dictionary=dictionary)
 
 
 def _multi_tokens(arr: pa.Array, prefix: np.ndarray, where: str) -> _Tokens:
@@ -249,13 +251,13 @@ def _multi_tokens(arr: pa.Array, prefix: np.ndarray, where: str) -> _Tokens:
     if arr.null_count:
         in_valid_row = np.repeat(row_valid, np.diff(loff))
         elem_valid = elem_valid & in_valid_row
-    buf, off, codes = _token_source(child, where)
+    buf, off, codes, dictionary = _token_source(child, where)
     elems = lo + np.flatnonzero(elem_valid)
     ids = elems if codes is None else codes[elems]
     cv = np.zeros(hi - lo + 1, dtype=np.int64)
     np.cumsum(elem_valid, out=cv[1:])
     ptr = cv[loff - lo]
-    return _Tokens(ptr, ids.astype(np.int64, copy=False), prefix, buf, off)
+    return _Tokens(ptr, ids.astype(np.int64, copy=False), prefix, buf, off, dictionary=dictionary)
 
 
 def _numeric_values(arr: pa.Array, where: str) -> tuple[np.ndarray, np.ndarray]:
@@ -378,6 +380,7 @@ class Featurizer:
     def __init__(self, spec: Spec, examples: BucketExamples | None = None):
         self.spec = spec
         self.examples = examples
+        self._last_dictionary: dict[str, tuple[pa.Array, np.ndarray]] = {}
         self.seed = np.uint32(spec.seed)
         self.mask = np.uint32(spec.n_buckets - 1)
         self.prefixes = {f.column: np.frombuffer(f.column.encode("utf-8") + b"\x1f", dtype=np.uint8)
@@ -393,9 +396,17 @@ class Featurizer:
             return _multi_tokens(arr, prefix, where)
         return _numeric_tokens(arr, feat, prefix, where)
 
-    def _hash(self, tok: _Tokens) -> np.ndarray:
+    def _hash(self, tok: _Tokens, column: str | None) -> np.ndarray:
+        """Buckets of the token table; a column's dictionary equal to the one of the previous chunk
+        (Parquet repeats a row group's dictionary in every batch read from it) is not hashed again."""
         if tok.buckets is None:
-            tok.buckets = hash_tokens(tok.prefix, tok.buf, tok.off, self.seed, self.mask)
+            last = self._last_dictionary.get(column)
+            if tok.dictionary is not None and last is not None and last[0].equals(tok.dictionary):
+                tok.buckets = last[1]
+            else:
+                tok.buckets = hash_tokens(tok.prefix, tok.buf, tok.off, self.seed, self.mask)
+                if tok.dictionary is not None:
+                    self._last_dictionary[column] = (tok.dictionary, tok.buckets)
         return tok.buckets
 
     def transform(self, table: pa.Table | pa.RecordBatch, source: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -411,6 +422,7 @@ class Featurizer:
             arr = col.combine_chunks() if isinstance(col, pa.ChunkedArray) else col
             toks[feat.column] = self._feature_tokens(feat, arr, f"{source}: column '{feat.column}'")
         parts = [toks[f.column] for f in self.spec.features]
+        names = [f.column for f in self.spec.features] + [None] * len(self.spec.crosses)
         for cross in self.spec.crosses:
             acc = toks[cross[0]]
             for name in cross[1:]:
@@ -429,8 +441,8 @@ class Featurizer:
         cursor = indptr[:-1].copy()
         empty = np.zeros(0, dtype=np.float64)
         sample = self.examples is not None and self.examples.rows_left > 0
-        for t in parts:
-            _scatter(t.ptr, t.ids, self._hash(t), empty if t.values is None else t.values,
+        for name, t in zip(names, parts):
+            _scatter(t.ptr, t.ids, self._hash(t, name), empty if t.values is None else t.values,
                      cursor, indices, data)
             if sample:
                 self.examples.add(t, t.buckets)
