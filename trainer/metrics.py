@@ -104,6 +104,17 @@ def _softplus(x):
 
 
 @njit(cache=True, inline="always")
+def _count_row(counts, sums, y, w):
+    """Add one row to the row, positive and weight counts; return 1 for a positive, else 0."""
+    pos = 1 if y == 1.0 else 0
+    counts[0] += 1
+    counts[1] += pos
+    sums[_W] += w
+    sums[_PW] += w * y
+    return pos
+
+
+@njit(cache=True, inline="always")
 def _add_ranked(sums, auc_w, auc_lo, auc_hi, k, pos, w, called_positive, score):
     """Add one row to the confusion sums and to rank bin ``k`` (weight, smallest and largest score)."""
     if called_positive:
@@ -132,11 +143,7 @@ def _accumulate_binary(labels, probs, weights, margins, rel_inner, hist_edges, r
         y = labels[i]
         p = probs[i]
         w = weights[i] if use_w else 1.0
-        pos = 1 if y == 1.0 else 0
-        counts[0] += 1
-        counts[1] += pos
-        sums[_W] += w
-        sums[_PW] += w * y
+        pos = _count_row(counts, sums, y, w)
         if use_m:
             loss = _softplus(-margins[i]) if pos else _softplus(margins[i])
         else:
@@ -169,11 +176,7 @@ def _accumulate_margin(labels, margins, weights, res_bits, counts, sums, auc_w, 
         y = labels[i]
         m = margins[i]
         w = weights[i] if use_w else 1.0
-        pos = 1 if y == 1.0 else 0
-        counts[0] += 1
-        counts[1] += pos
-        sums[_W] += w
-        sums[_PW] += w * y
+        pos = _count_row(counts, sums, y, w)
         _add_ranked(sums, auc_w, auc_lo, auc_hi, _margin_bin(m, res_bits, buf, ubuf), pos, w, m > 0.0, m)
 
 
