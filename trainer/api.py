@@ -6,17 +6,15 @@ and raises ``trainer.errors.UserError`` for the user's mistakes.
 
 from __future__ import annotations
 
-import datetime as dt
 import json
 from pathlib import Path
 from typing import Callable
 
-import numpy as np
 
 from trainer.atomic import write_atomic
 from trainer.errors import UserError
 from trainer.evaluation import evaluate as _evaluate
-from trainer.model import Model, export_model, inspect_model, load_model
+from trainer.model import Model, export_model, inspect_model, jsonable, load_model
 from trainer.reader import Reader, parse_day
 from trainer.report import write_report
 from trainer.scoring import score_to_parquet
@@ -24,12 +22,6 @@ from trainer.spec import Spec, load_spec
 from trainer.training import TrainOptions, Trainer
 
 __all__ = ["train", "evaluate", "score", "export", "inspect", "report", "demo", "load_model", "TrainOptions"]
-
-
-def _day(value: str | dt.date | None, option: str) -> dt.date | None:
-    if value is None or isinstance(value, dt.date):
-        return value
-    return parse_day(value, option)
 
 
 def train(spec: str | Path | Spec, data: str | Path, out: str | Path, *, holdout: str | Path | None = None,
@@ -44,7 +36,7 @@ def train(spec: str | Path | Spec, data: str | Path, out: str | Path, *, holdout
     spec = spec if isinstance(spec, Spec) else load_spec(spec)
     for key in ("start", "end", "holdout_start", "holdout_end"):
         if key in options:
-            options[key] = _day(options[key], f"--{key.replace('_', '-')}")
+            options[key] = parse_day(options[key], f"--{key.replace('_', '-')}")
     unknown = set(options) - {f for f in TrainOptions.__dataclass_fields__}
     if unknown:
         raise UserError(f"train: unknown option(s) {', '.join(sorted(unknown))}")
@@ -63,27 +55,21 @@ def evaluate(model: str | Path | Model, data: str | Path, *, start=None, end=Non
     model = model if isinstance(model, Model) else load_model(model)
     if segments < 1:
         raise UserError(f"--segments must be an integer >= 1; got {segments}")
-    reader = Reader(model.spec, data, _day(start, "--start"), _day(end, "--end"), batch_rows=65536,
+    reader = Reader(model.spec, data, parse_day(start, "--start"), parse_day(end, "--end"), batch_rows=65536,
                     skip_bad_labels=skip_bad_labels, keep=(by,) if by else ())
     summary = _evaluate(model, reader, by=by, segments=segments)
     if reader.counts.bad_labels:
         summary["skipped_bad_labels"] = reader.counts.bad_labels
     if json_out is not None:
-        write_atomic(Path(json_out), [json.dumps(summary, indent=2, default=_json_default).encode()])
+        write_atomic(Path(json_out), [json.dumps(jsonable(summary), indent=2, allow_nan=False).encode()])
     return summary
-
-
-def _json_default(v):
-    if isinstance(v, np.generic):
-        return v.item()
-    raise TypeError(type(v))
 
 
 def score(model: str | Path, data: str | Path, out: str | Path, *, keep: tuple[str, ...] = (),
           missing_as_null: bool = False, start=None, end=None) -> dict:
     """Score ``data`` with the model (training folder or export) into the Parquet file ``out``."""
     return score_to_parquet(model, data, out, keep=tuple(keep), missing_as_null=missing_as_null,
-                            start=_day(start, "--start"), end=_day(end, "--end"))
+                            start=start, end=end)
 
 
 def export(model: str | Path, out: str | Path, *, force: bool = False) -> Path:

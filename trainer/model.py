@@ -52,16 +52,16 @@ _INFO_DEFAULTS = {"options": {}, "negative_keep_rate": 1.0, "summary": {}, "hold
                   "calibration": None, "examples": {}}
 
 
-def _jsonable(obj):
+def jsonable(obj):
     """A copy of ``obj`` that strict JSON can hold: numpy scalars and arrays become Python numbers
     and lists, tuples become lists, paths and dates become text, non-finite floats (undefined
     metrics) become None."""
     if isinstance(obj, dict):
-        return {str(k): _jsonable(v) for k, v in obj.items()}
+        return {str(k): jsonable(v) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):
-        return [_jsonable(v) for v in obj]
+        return [jsonable(v) for v in obj]
     if isinstance(obj, np.ndarray):
-        return [_jsonable(v) for v in obj.tolist()]
+        return [jsonable(v) for v in obj.tolist()]
     if isinstance(obj, (bool, np.bool_)):
         return bool(obj)
     if isinstance(obj, (int, np.integer)):
@@ -217,7 +217,7 @@ class Model:
                 np.savez(f, weights=self.weights, intercept=np.float64(self.intercept))
             digest = _sha256(folder / ARRAYS_FILE)
             meta = {"format": TRAINING_FORMAT, "version": FORMAT_VERSION, "generator": f"hashcurve {__version__}",
-                    "spec": self.spec.raw, "loss": self.loss, "info": _jsonable(self.info),
+                    "spec": self.spec.raw, "loss": self.loss, "info": jsonable(self.info),
                     "arrays_file": ARRAYS_FILE, "arrays_sha256": digest}
             write_atomic(folder / META_FILE, [json.dumps(meta, indent=1, allow_nan=False).encode("utf-8")])
         except OSError as exc:
@@ -378,7 +378,7 @@ def export_document(model: Model, weights_sha256: str, nonzero: int) -> dict:
     nothing."""
     link = LINKS[model.loss]
     cal = model.calibration
-    return _jsonable({
+    return jsonable({
         "format": EXPORT_FORMAT,
         "version": FORMAT_VERSION,
         "generator": f"hashcurve {__version__}",
@@ -515,7 +515,7 @@ def inspect_model(path: str | Path, top: int = 10) -> dict:
                      else float(min(d, 1))}
     else:
         d = None
-    return _jsonable({
+    return jsonable({
         "path": str(folder),
         "form": form,
         "loss": model.loss,

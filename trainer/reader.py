@@ -84,10 +84,13 @@ class ReadCounts:
     rows: int = 0
 
 
-def parse_day(text: str, what: str) -> dt.date:
-    """Parse ``YYYY-MM-DD``; raises UserError naming ``what`` (an option or a path)."""
+def parse_day(text: str | dt.date | None, what: str) -> dt.date | None:
+    """Parse ``YYYY-MM-DD`` (a date or None passes through); raises UserError naming ``what`` (an
+    option or a path)."""
+    if text is None or isinstance(text, dt.date):
+        return text
     try:
-        return dt.date.fromisoformat(text)
+        return dt.date.fromisoformat(str(text))
     except (TypeError, ValueError):
         raise UserError(f"{what}: expected a date YYYY-MM-DD, got '{text}'") from None
 

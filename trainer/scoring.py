@@ -8,7 +8,6 @@ into place only when complete.
 
 from __future__ import annotations
 
-import datetime as dt
 from pathlib import Path
 
 import pyarrow as pa
@@ -21,12 +20,6 @@ from trainer.reader import Reader, parse_day
 
 SCORE = "score"
 PROBABILITY = "probability"
-
-
-def _day(value, option: str) -> dt.date | None:
-    if value is None or isinstance(value, dt.date):
-        return value
-    return parse_day(str(value), option)
 
 
 def _plain(arr: pa.ChunkedArray) -> pa.ChunkedArray:
@@ -87,7 +80,7 @@ def score_to_parquet(model_path: str | Path | Model, data: str | Path, out: str 
         raise UserError(f"--keep: names a column twice ({', '.join(keep)})")
     data, out = Path(data), Path(out)
     _check_paths(data, out)
-    reader = Reader(model.spec, data, start=_day(start, "--start"), end=_day(end, "--end"), batch_rows=batch_rows,
+    reader = Reader(model.spec, data, start=parse_day(start, "--start"), end=parse_day(end, "--end"), batch_rows=batch_rows,
                     with_labels=False, keep=keep, missing_as_null=missing_as_null)
     with_probability = model.loss == "squared-hinge" and model.has_probability
     rows = 0

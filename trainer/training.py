@@ -34,7 +34,7 @@ from trainer.checkpoint import load_checkpoint, save_checkpoint
 from trainer.errors import Interrupted, UserError
 from trainer.evaluation import evaluate
 from trainer.metrics import fit_platt
-from trainer.model import Model, load_model
+from trainer.model import Model, jsonable, load_model
 from trainer.reader import BucketExamples, Position, Reader
 from trainer.solvers import check_choice, check_float, check_int, make_solver, SOLVER_NAMES
 from trainer.spec import Spec
@@ -42,6 +42,9 @@ from trainer.spec import Spec
 RUN_FILES = ("run.json", "checkpoint.bin", "metrics.jsonl", "progress.json", "model.json", "model.npz",
              "report.html")
 PROGRESS_POINTS_PER_PASS = 200
+#: Platt scaling of squared-hinge models is fitted on at most this many holdout rows (in file
+#: order), so memory does not grow with the holdout.
+PLATT_ROWS = 1_000_000
 
 
 @dataclass
@@ -327,7 +330,7 @@ class Trainer:
                 if st.bad_passes >= self.opt.patience and st.pass_index < self.opt.passes:
                     st.stopped_early = True
         with open(self.out / "metrics.jsonl", "a", encoding="utf-8") as fh:
-            fh.write(json.dumps(record) + "\n")
+            fh.write(json.dumps(jsonable(record), allow_nan=False) + "\n")
         self.log(self._table_row(record))
         if st.stopped_early:
             self.log(f"early stop: holdout loss has not improved for {st.bad_passes} pass(es); "
@@ -343,12 +346,16 @@ class Trainer:
             model = load_model(self.out)
         if self.opt.loss == "squared-hinge" and self.holdout is not None:
             margins, labels, weights = [], [], []
+            rows = 0
             for batch in self.holdout.batches():
                 margins.append(model.margin(batch))
                 labels.append(batch.labels)
                 weights.append(batch.weights)
+                rows += batch.n_rows
+                if rows >= PLATT_ROWS:
+                    break
             a, b = fit_platt(np.concatenate(margins), np.concatenate(labels), np.concatenate(weights))
-            calibration = {"method": "platt", "a": a, "b": b, "fitted_on": self.holdout_path}
+            calibration = {"method": "platt", "a": a, "b": b, "fitted_on": self.holdout_path, "rows": rows}
             model = Model(model.spec, model.weights, model.intercept, model.loss,
                           {**model.info, "calibration": calibration})
         model.info["summary"].update({"passes": st.pass_index, "stopped_early": st.stopped_early,
