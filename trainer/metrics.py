@@ -313,6 +313,16 @@ def _sigmoid_edges(n_bins):
     return np.concatenate(([0.0], expit(np.linspace(-lim, lim, n_bins - 1)), [1.0]))
 
 
+def _merge_ranked(out, a, b):
+    """Set ``out``'s counts, sums and rank histogram to those of ``a`` and ``b`` together; return it."""
+    out._counts = a._counts + b._counts
+    out._sums = a._sums + b._sums
+    out._auc_w = a._auc_w + b._auc_w
+    out._auc_lo = np.minimum(a._auc_lo, b._auc_lo)
+    out._auc_hi = np.maximum(a._auc_hi, b._auc_hi)
+    return out
+
+
 class BinaryMetrics:
     """Streaming, mergeable quality metrics of predicted probabilities against 0/1 labels.
 
@@ -394,15 +404,10 @@ class BinaryMetrics:
                 (self.n_bins, self.histogram_bins, self.auc_bits)
                 != (other.n_bins, other.histogram_bins, other.auc_bits)):
             raise ValueError("BinaryMetrics.merge: both accumulators need the same bin settings")
-        out = BinaryMetrics(self.n_bins, self.histogram_bins, self.auc_bits)
-        out._counts = self._counts + other._counts
-        out._sums = self._sums + other._sums
+        out = _merge_ranked(BinaryMetrics(self.n_bins, self.histogram_bins, self.auc_bits), self, other)
         out._rel_count = self._rel_count + other._rel_count
         out._rel_sums = self._rel_sums + other._rel_sums
         out._hist = self._hist + other._hist
-        out._auc_w = self._auc_w + other._auc_w
-        out._auc_lo = np.minimum(self._auc_lo, other._auc_lo)
-        out._auc_hi = np.maximum(self._auc_hi, other._auc_hi)
         return out
 
     def summary(self) -> dict:
@@ -527,13 +532,7 @@ class MarginMetrics:
         """
         if not isinstance(other, MarginMetrics) or self.auc_bits != other.auc_bits:
             raise ValueError("MarginMetrics.merge: both accumulators need the same auc_bits")
-        out = MarginMetrics(self.auc_bits)
-        out._counts = self._counts + other._counts
-        out._sums = self._sums + other._sums
-        out._auc_w = self._auc_w + other._auc_w
-        out._auc_lo = np.minimum(self._auc_lo, other._auc_lo)
-        out._auc_hi = np.maximum(self._auc_hi, other._auc_hi)
-        return out
+        return _merge_ranked(MarginMetrics(self.auc_bits), self, other)
 
     def summary(self) -> dict:
         """Metrics as a dict with stable keys.
