@@ -93,6 +93,7 @@ def test_batches_match_contract_reference(small_log, dictionary):
 
 
 def test_dictionary_and_plain_paths_identical(small_log):
+    # Reference: the plain path, itself checked against the mmh3 contract reference above.
     root, spec_path = small_log
     spec = load_spec(spec_path)
     a = list(Reader(spec, root, batch_rows=333, dictionary=True).batches())
@@ -104,6 +105,7 @@ def test_dictionary_and_plain_paths_identical(small_log):
 
 
 def test_date_filter_on_partition_key(small_log):
+    # Reference: the row counts the fixture wrote per day (700 + 800 on the second day).
     root, spec_path = small_log
     spec = load_spec(spec_path)
     reader = Reader(spec, root, start=dt.date(2026, 3, 2), end=dt.date(2026, 3, 2), batch_rows=10_000)
@@ -112,6 +114,7 @@ def test_date_filter_on_partition_key(small_log):
 
 
 def test_date_filter_on_column(tmp_path):
+    # Reference: 200 rows written per day; inclusive bounds (common practice for date ranges).
     rng = np.random.default_rng(1)
     parts = [make_table(rng, 200, dt.date(2026, 3, d)) for d in (1, 2, 3)]
     pq.write_table(pa.concat_tables(parts), tmp_path / "one.parquet", row_group_size=200)
@@ -126,6 +129,7 @@ def test_date_filter_on_column(tmp_path):
 
 @pytest.mark.parametrize("shuffle", [0, 450])
 def test_resume_from_any_batch_gives_same_stream(small_log, shuffle):
+    # Reference: the uninterrupted stream of the same reader.
     root, spec_path = small_log
     spec = load_spec(spec_path)
     reader = Reader(spec, root, batch_rows=128, shuffle_rows=shuffle, seed=3, negative_keep_rate=0.5)
@@ -139,6 +143,7 @@ def test_resume_from_any_batch_gives_same_stream(small_log, shuffle):
 
 
 def test_shuffle_is_a_seeded_permutation(small_log):
+    # Reference: the unshuffled rows (same multiset of row weights, numpy.sort).
     root, spec_path = small_log
     spec = load_spec(spec_path)
     plain = list(Reader(spec, root, batch_rows=10_000).batches())
@@ -164,6 +169,7 @@ def test_negative_sampling_keeps_positives(small_log):
 
 
 def test_keep_columns_follow_rows(small_log):
+    # Reference: the batch's own weights, which travel with each row.
     root, spec_path = small_log
     spec = load_spec(spec_path)
     r = Reader(spec, root, batch_rows=256, shuffle_rows=600, seed=2, keep=("w",))

@@ -56,6 +56,8 @@ def run_and_stop(args, ckpt: Path, sig) -> int:
 
 @pytest.mark.parametrize("sig", [signal.SIGKILL, signal.SIGINT])
 def test_resume_after_kill_is_bit_identical(log_4files, tmp_path, sig):
+    # Reference: an uninterrupted run of the same command (the tool's own resume contract; checking a
+    # resumed run against a clean one is common practice for checkpointing systems).
     data, spec = log_4files
     ref = tmp_path / "ref"
     assert main(cli_args(spec, data, ref, "--checkpoint-every", "2000")) == 0
@@ -73,6 +75,7 @@ def test_resume_after_kill_is_bit_identical(log_4files, tmp_path, sig):
 
 
 def test_resume_refusals_leave_checkpoint_untouched(log_4files, tmp_path, capsys):
+    # Common practice: refuse a mismatched or corrupt state and leave it as it was (byte comparison).
     data, spec = log_4files
     out = tmp_path / "m"
     assert main(cli_args(spec, data, out, "--passes", "1")) == 0
@@ -99,6 +102,7 @@ def test_resume_refusals_leave_checkpoint_untouched(log_4files, tmp_path, capsys
     ("--loss", "hinge", "--loss"), ("--passes", "two", "--passes"),
 ])
 def test_bad_options_exit_2_and_write_nothing(log_4files, tmp_path, capsys, option, value, needle):
+    # Common practice for command-line tools: usage errors exit 2 with one line on stderr.
     data, spec = log_4files
     out = tmp_path / "never"
     assert main(cli_args(spec, data, out) + [option, value]) == 2
@@ -108,6 +112,8 @@ def test_bad_options_exit_2_and_write_nothing(log_4files, tmp_path, capsys, opti
 
 
 def test_res_refuses_large_feature_space(log_4files, tmp_path, capsys):
+    # RES keeps a dense n x n matrix ("RES: Regularized Stochastic BFGS Algorithm", IEEE TSP 2014), so
+    # 2^16 buckets would need 32 GiB: refused, pointing to online L-BFGS.
     data, _ = log_4files
     spec = tmp_path / "big.json"
     spec.write_text(json.dumps({**SMALL_SPEC, "hashing": {"bits": 16, "seed": 42}}))
