@@ -10,9 +10,9 @@ from scipy.special import expit, log_expit
 from sklearn.metrics import log_loss
 
 from trainer.errors import UserError
-from trainer.kernels import (batch_support, curvatures_into, direction_products, line_loss, line_residuals,
-                             margins_into, predict_margin, regularized_gradient, residuals_into,
-                             scatter_compact, scatter_compact_squares, sparse_dot, two_loop)
+from trainer.kernels import (CHUNK, batch_support, chunk_pointers, combine_pass, curvatures_into, fold_diagonal, lbfgs_direction,
+                             line_loss, line_residuals, margins_into, predict_margin, regularized_gradient,
+                             residuals_into, scatter_compact, scatter_compact_squares, sparse_dot)
 from trainer.losses import (loss_code, pointwise_curvature, pointwise_derivative, pointwise_loss)
 from trainer.reader import Batch
 
@@ -158,6 +158,9 @@ def test_gauss_newton_diagonal_matches_dense_product(loss):
     slot = np.empty(batch.indices.shape[0], dtype=np.int32)
     cols = batch_support(batch.indices, mark, slot)
     assert (mark == -1).all()
+    # reference: numpy's sorted distinct values, and the slot of each entry pointing back to its bucket
+    np.testing.assert_array_equal(cols, np.unique(batch.indices))
+    np.testing.assert_array_equal(cols[slot], batch.indices)
     out = np.empty(cols.shape[0])
     scatter_compact_squares(batch.indptr, slot, batch.data, h, 0.5, out)
     X = _csr(batch, n).toarray()
@@ -168,41 +171,142 @@ def test_gauss_newton_diagonal_matches_dense_product(loss):
     assert np.all(ref[absent] == 0)
 
 
-def test_two_loop_matches_dense_bfgs_inverse_update():
-    rng = np.random.default_rng(6)
-    n, lam, damp, history = 12, 0.05, 0.01, 4
+def _pairs(rng, n, lam, history, dtype):
+    """Random curvature pairs in the solver's storage: steps S, sparse data parts of y (CSR by slot,
+    the intercept n always present) and the dense y they stand for."""
     size = n + 1
-    S = rng.normal(size=(history, size))
+    S = rng.normal(size=(history, size)).astype(dtype)
+    S64 = S.astype(np.float64)
     yidx_list, yval_list, dense_y = [], [], []
     for k in range(history):
-        idx = np.append(np.sort(rng.choice(n, 5, replace=False)), n).astype(np.int32)
-        A = rng.normal(size=(size, size))
-        val = ((A @ A.T) @ S[k])[idx] * 0.1 + 1.0 * S[k][idx]  # keeps s.y > 0
+        idx = np.append(np.sort(rng.choice(n, min(n, 40), replace=False)), n).astype(np.int32)
+        val = rng.normal(size=idx.shape[0]) * 0.1 + 2.0 * S64[k][idx]  # keeps s.y > 0
         yidx_list.append(idx)
         yval_list.append(val)
         y = np.zeros(size)
         y[idx] = val
-        y[:n] += lam * S[k][:n]
+        y[:n] += lam * S64[k][:n]
         dense_y.append(y)
     yptr = np.zeros(history + 1, dtype=np.int64)
     yptr[1:] = np.cumsum([len(a) for a in yidx_list])
-    yidx = np.concatenate(yidx_list)
-    yval = np.concatenate(yval_list)
-    rho = np.array([1.0 / (S[k] @ dense_y[k]) for k in range(history)])
+    return S, yptr, np.concatenate(yidx_list), np.concatenate(yval_list), np.array(dense_y)
+
+
+def _direction(rng, n, lam, damp, history, order, dtype=np.float64):
+    """Call lbfgs_direction on random pairs; return its outputs and the dense inputs for a reference."""
+    S, yptr, yidx, yval, Y = _pairs(rng, n, lam, history, dtype)
+    S64 = S.astype(np.float64)
+    rho = 1.0 / np.einsum("kj,kj->k", S64, Y)
     assert (rho > 0).all()
+    x = rng.normal(size=n + 1)
+    G = S64 @ Y.T
+    z = S64[:, :n] @ x[:n]
+    gcols = np.append(np.sort(rng.choice(n, min(n, 30), replace=False)), n).astype(np.int32)
+    gvals = rng.normal(size=gcols.shape[0])
+    g = np.append(lam * x[:n], 0.0)
+    g[gcols] += gvals
+    diag = rng.uniform(0.0, 2.0, n + 1)
+    diag[3] = -5.0  # a non-positive denominator maps to 0
+    scale = 0.7
+    ychunk = np.array([chunk_pointers(yidx[yptr[k]:yptr[k + 1]], n + 1) for k in range(history)])
+    d = np.empty(n + 1)
+    xd, dd, bound, p, yd, Sg = lbfgs_direction(x, gcols, gvals, chunk_pointers(gcols, n + 1), S, order,
+                                               order.shape[0], rho, G, z, yptr, yidx, yval, ychunk, lam, n, diag,
+                                               scale, damp, d)
+    # reference: numpy fancy indexing and inner products with the sparse parts of y
+    np.testing.assert_array_equal(Sg, S64[order][:, gcols])
+    np.testing.assert_allclose(yd, [(Y[k] - np.append(lam * S64[k][:n], 0.0)) @ d for k in order], rtol=1e-9,
+                               atol=1e-12)
+    den = scale * diag + damp + np.append(np.full(n, lam), 0.0)
+    h0 = np.where(den > 0, 1.0 / np.where(den > 0, den, 1.0), 0.0)
+    return d, (xd, dd, bound, p), dict(S=S64, Y=Y, rho=rho, g=g, h0=h0, x=x)
+
+
+def test_lbfgs_direction_matches_dense_bfgs_inverse_update():
+    rng = np.random.default_rng(6)
+    n, lam, damp, history = 12, 0.05, 0.01, 4
     order = np.array([2, 3, 0, 1], dtype=np.int64)  # a wrapped ring buffer, oldest first
-    diag = rng.uniform(0.0, 2.0, size)
-    q = rng.normal(size=size)
-    mine = q.copy()
-    two_loop(mine, S, order, history, rho, np.zeros(history), yptr, yidx, yval, lam, n, diag, damp)
+    d, (xd, dd, bound, p), ref = _direction(rng, n, lam, damp, history, order)
     # reference: dense BFGS inverse update H+ = (I - rho s y^T) H (I - rho y s^T) + rho s s^T
     # ("Numerical Optimization", Springer, 2006, eq. 6.17; from memory), applied oldest to newest
-    H = np.diag(1.0 / (diag + damp + np.append(np.full(n, lam), 0.0)))
-    eye = np.eye(size)
+    H = np.diag(ref["h0"])
+    eye = np.eye(n + 1)
     for k in order:
-        s, y = S[k], dense_y[k]
-        H = (eye - rho[k] * np.outer(s, y)) @ H @ (eye - rho[k] * np.outer(y, s)) + rho[k] * np.outer(s, s)
-    np.testing.assert_allclose(mine, H @ q, rtol=1e-10, atol=1e-12)
+        s, y, r = ref["S"][k], ref["Y"][k], ref["rho"][k]
+        H = (eye - r * np.outer(s, y)) @ H @ (eye - r * np.outer(y, s)) + r * np.outer(s, s)
+    np.testing.assert_allclose(d, H @ ref["g"], rtol=1e-10, atol=1e-12)
+    # reference: numpy inner products and absolute sums of the returned direction
+    x = ref["x"]
+    assert xd == pytest.approx(x[:n] @ d[:n], rel=1e-12) and dd == pytest.approx(d[:n] @ d[:n], rel=1e-12)
+    assert bound == pytest.approx(np.abs(x).sum() + np.abs(d).sum(), rel=1e-12)
+    np.testing.assert_allclose(p, ref["S"][order][:, :n] @ d[:n], rtol=1e-10)
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_lbfgs_direction_across_chunks_matches_textbook_two_loop(dtype):
+    rng = np.random.default_rng(16)
+    n, lam, damp, history = 3 * CHUNK + 777, 0.02, 0.05, 6
+    order = np.array([4, 5, 0, 1, 2], dtype=np.int64)  # five of six slots in use, oldest first
+    d, (xd, dd, bound, p), ref = _direction(rng, n, lam, damp, history, order, dtype)
+    # reference: the two-loop recursion, Algorithm 7.4 of "Numerical Optimization" (Springer, 2006; from
+    # memory), in plain numpy on dense pairs
+    q = ref["g"].copy()
+    alpha = {}
+    for k in order[::-1]:
+        alpha[k] = ref["rho"][k] * (ref["S"][k] @ q)
+        q -= alpha[k] * ref["Y"][k]
+    r = ref["h0"] * q
+    for k in order:
+        beta = ref["rho"][k] * (ref["Y"][k] @ r)
+        r += ref["S"][k] * (alpha[k] - beta)
+    np.testing.assert_allclose(d, r, rtol=1e-9, atol=1e-12 * np.abs(r).max())
+    np.testing.assert_allclose(p, ref["S"][order][:, :n] @ d[:n], rtol=1e-9)
+
+
+def test_combine_pass_without_pairs_and_finiteness_check():
+    rng = np.random.default_rng(26)
+    size = 2 * CHUNK + 5
+    x = rng.normal(size=size)
+    d = rng.normal(size=size)
+    q = d.copy()
+    none = np.zeros(0, dtype=np.int64)
+    S = np.zeros((1, size), dtype=np.float32)
+    empty = np.zeros(0, dtype=np.int32)
+    ychunk = np.zeros((1, 4), dtype=np.int64)
+
+    def combine(q):
+        return combine_pass(q, S, none, 0, np.zeros(0), x, size - 1, np.zeros(2, np.int64), empty, np.zeros(0),
+                            ychunk, np.zeros(0), np.zeros(0))
+
+    xd, dd, bound = combine(q)
+    # reference: numpy inner products and absolute sums
+    assert xd == pytest.approx(x[:-1] @ d[:-1], rel=1e-12) and dd == pytest.approx(d[:-1] @ d[:-1], rel=1e-12)
+    assert bound == pytest.approx(np.abs(x).sum() + np.abs(d).sum(), rel=1e-12)
+    np.testing.assert_array_equal(q, d)
+    for bad in (np.nan, np.inf):
+        q = d.copy()
+        q[-1] = bad  # the unregularized intercept is checked too
+        assert not np.isfinite(combine(q)[2])
+
+
+def test_fold_diagonal_is_the_exponential_average():
+    rng = np.random.default_rng(36)
+    size = 50
+    lazy = np.zeros(size)
+    scale = 1.0
+    ref = np.zeros(size)
+    for t, beta in enumerate([0.0, 0.5, 0.9, 1e-80, 1e-80, 0.0, 0.7]):  # 1e-80 twice forces a rescale
+        cols = rng.choice(size - 1, 10, replace=False).astype(np.int32)
+        curv = rng.random(10)
+        last = rng.random()
+        scale = fold_diagonal(lazy, scale, beta, cols, curv, last)
+        # reference: the running average written out densely, beta * D + (1 - beta) * c (common practice)
+        c = np.zeros(size)
+        c[cols] = curv
+        c[-1] = last
+        ref = beta * ref + (1.0 - beta) * c
+        np.testing.assert_allclose(scale * lazy, ref, rtol=1e-12, atol=1e-300)
+        assert scale >= 1e-150
 
 
 def test_line_kernels_match_numpy():
@@ -221,13 +325,6 @@ def test_line_kernels_match_numpy():
     np.testing.assert_allclose(r, batch.weights * (expit(z0 - 0.3 * u) - batch.labels), rtol=1e-12, atol=1e-15)
     assert total == pytest.approx(r.sum(), rel=1e-12)
     x = rng.normal(size=18)
-    d = rng.normal(size=18)
-    xd, dd, bound = direction_products(x, d, 17)
-    # reference: numpy inner products and maxima
-    assert xd == pytest.approx(x[:17] @ d[:17], rel=1e-12) and dd == pytest.approx(d[:17] @ d[:17], rel=1e-12)
-    assert bound == np.abs(x).max() + np.abs(d).max()
-    d[3] = np.nan
-    assert np.isnan(direction_products(x, d, 17)[2])
     cols = np.array([4, 0, 9], dtype=np.int32)
     vals = rng.normal(size=3)
     # reference: numpy fancy indexing and an inner product

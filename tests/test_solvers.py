@@ -199,6 +199,29 @@ def test_runs_are_bit_identical_and_resume_exactly(name, loss):
     assert np.array_equal(a.state()["x"], resumed.state()["x"])
 
 
+@pytest.mark.parametrize("pair_dtype, rtol", [("float64", 1e-9), ("float32", 1e-5)])
+def test_olbfgs_inner_products_stay_equal_to_their_definition(pair_dtype, rtol):
+    n, batches = _small_hashed_problem()
+    solver = make_solver("olbfgs", n, "logistic", 1e-3, history=4, pair_dtype=pair_dtype)
+    for b in batches * 3:  # the ring buffer of 4 pairs wraps several times
+        solver.step(b)
+        st = solver.state()
+        m, head = int(st["count"]), int(st["head"])
+        slots = [(head - 1 - t) % 4 for t in range(m)]
+        S = st["S"].astype(np.float64)
+        Y = np.zeros_like(S)
+        for k in slots:
+            lo, hi = st["y_indptr"][k], st["y_indptr"][k + 1]
+            Y[k, st["y_index"][lo:hi]] = st["y_value"][lo:hi]
+            Y[k, :n] += 1e-3 * S[k, :n]
+        # reference: s_i.y_k and s_k.w recomputed densely with numpy from the stored pairs and weights
+        for i in slots:
+            assert st["s_dot_w"][i] == pytest.approx(S[i, :n] @ st["x"][:n], rel=rtol, abs=1e-12)
+            for k in slots:
+                assert st["gram"][i, k] == pytest.approx(S[i] @ Y[k], rel=rtol, abs=1e-12)
+            assert st["rho"][i] == pytest.approx(1.0 / (S[i] @ Y[i]), rel=rtol)
+
+
 def test_step_returns_loss_before_update():
     n, batches = _small_hashed_problem()
     solver = make_solver("olbfgs", n, "logistic", 1e-3)

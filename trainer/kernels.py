@@ -5,11 +5,13 @@ int32, ``data`` float64) and never allocate per row. Dense kernels take float64 
 quasi-Newton layout used by the solvers: n bucket weights followed by the intercept at position n
 (``n_reg`` = n coordinates are L2-regularized, the intercept is not).
 
-The two-loop recursion is the one of "Updating Quasi-Newton Matrices with Limited Storage"
-(Mathematics of Computation, 1980), written for curvature pairs whose gradient difference is stored as
-y = y_data + lambda * s, where y_data is sparse (only the buckets of the batch that produced it) and
-the regularizer part is recovered from the dense step s. Each recursion pass reads every stored s once,
-fusing the update of one pair with the inner product of the next.
+The limited-memory BFGS direction (:func:`lbfgs_direction`) has the coefficients of the two-loop
+recursion of "Updating Quasi-Newton Matrices with Limited Storage" (Mathematics of Computation, 1980),
+for curvature pairs whose gradient difference is stored as y = y_data + lambda * s, where y_data is
+sparse (only the buckets of the batch that produced it) and the regularizer part is recovered from the
+dense step s. Its inner products come from a small matrix of s_i.y_k kept up to date pair by pair
+(:func:`record_pair`), so the dense work is two passes over memory shared by all cores, each reading
+every stored s once.
 """
 
 from __future__ import annotations
@@ -78,13 +80,10 @@ def curvatures_into(code, labels, weights, z, h):
     return total
 
 
-@njit(cache=True)
-def batch_support(indices, mark, slot):
-    """Distinct buckets of a batch, in order of first appearance.
-
-    ``mark`` is an int32 scratch array of length n filled with -1; it is restored to -1 on return.
-    Writes ``slot[k]`` = position of ``indices[k]`` in the returned int32 array of distinct buckets.
-    """
+@njit(cache=True, nogil=True)
+def _distinct(indices, mark, slot):
+    """Distinct buckets in order of first appearance; slot[k] = position of indices[k] among them.
+    ``mark`` (int32, length n, all -1) is restored to -1 on return."""
     cols = np.empty(indices.shape[0], dtype=np.int32)
     m = 0
     for k in range(indices.shape[0]):
@@ -98,7 +97,31 @@ def batch_support(indices, mark, slot):
         slot[k] = p
     for p in range(m):
         mark[cols[p]] = -1
-    return cols[:m].copy()
+    return cols[:m]
+
+
+@njit(cache=True, nogil=True)
+def _renumber(slot, by_value):
+    """slot[k] <- rank of slot[k] in the permutation ``by_value`` (position p goes to r where
+    by_value[r] = p)."""
+    rank = np.empty(by_value.shape[0], dtype=np.int32)
+    for r in range(by_value.shape[0]):
+        rank[by_value[r]] = r
+    for k in range(slot.shape[0]):
+        slot[k] = rank[slot[k]]
+
+
+def batch_support(indices: np.ndarray, mark: np.ndarray, slot: np.ndarray) -> np.ndarray:
+    """Distinct buckets of a batch, in ascending order (so the sparse vectors built on them can be
+    walked chunk by chunk next to the dense passes).
+
+    ``mark`` is an int32 scratch array of length n filled with -1; it is restored to -1 on return.
+    Writes ``slot[k]`` = position of ``indices[k]`` in the returned int32 array of distinct buckets.
+    """
+    cols = _distinct(indices, mark, slot)
+    by_value = np.argsort(cols)
+    _renumber(slot, by_value)
+    return cols[by_value]
 
 
 @njit(cache=True)
@@ -148,15 +171,6 @@ def scatter_compact_squares(indptr, slot, data, h, scale, out):
 
 
 @njit(cache=True)
-def dot(a, b):
-    """Inner product of two equally long float64 vectors (sequential sum, bit-reproducible)."""
-    acc = 0.0
-    for j in range(a.shape[0]):
-        acc += a[j] * b[j]
-    return acc
-
-
-@njit(cache=True)
 def regularized_gradient(w, lam, cols, gsp, gb, out):
     """Full gradient in the quasi-Newton layout: out[:n] = lam * w, then out[cols] += gsp, out[n] = gb."""
     n = w.shape[0]
@@ -167,146 +181,281 @@ def regularized_gradient(w, lam, cols, gsp, gb, out):
     out[n] = gb
 
 
-#: Dense reductions are summed over this many fixed chunks, whatever the number of threads, so a
-#: result never depends on how the chunks were shared out: same inputs, same bits.
-REDUCTION_CHUNKS = 64
+#: Dense passes work on fixed chunks of this many coordinates (a chunk of every stored step fits in
+#: the per-core cache, so a pass reads each step from memory once) and add the chunks' partial sums
+#: in chunk order, whatever the number of threads: same inputs, same bits.
+CHUNK = 4096
+
+#: Inner products over a chunk may be summed in any fixed order (SIMD lanes); nothing may assume
+#: finite values, so NaN and infinity still propagate to the divergence checks.
+VECTOR_MATH = {"reassoc", "contract"}
 
 
-@njit(cache=True, parallel=True)
-def axpy_dot(q, c, s, nxt, n_axpy, n_dot):
-    """q[:n_axpy] += c * s[:n_axpy], then return nxt[:n_dot] . q[:n_dot] (after the update).
+@njit(cache=True, nogil=True, fastmath=VECTOR_MATH)
+def _axpy(out, a, v):
+    """out += a * v over equally long 1-D arrays (``v`` float32 or float64). Loops run from 0 over
+    slices, which lets the compiler use SIMD (an offset index would need a sign check per element)."""
+    for j in range(v.shape[0]):
+        out[j] += a * v[j]
 
-    One pass over memory, shared between the cores by ``prange`` over ``REDUCTION_CHUNKS`` fixed
-    chunks whose partial sums are added in chunk order (bit-reproducible).
+
+@njit(cache=True, nogil=True, fastmath=VECTOR_MATH)
+def _dot(u, v):
+    """sum_j u[j] * v[j] over equally long 1-D arrays."""
+    acc = 0.0
+    for j in range(u.shape[0]):
+        acc += u[j] * v[j]
+    return acc
+
+
+@njit(cache=True, nogil=True, fastmath=VECTOR_MATH)
+def _scale(v, a):
+    """v *= a."""
+    for j in range(v.shape[0]):
+        v[j] *= a
+
+
+@njit(cache=True, nogil=True, fastmath=VECTOR_MATH)
+def _abs_sum(v):
+    """sum_j |v[j]| (NaN or infinite when an entry is)."""
+    acc = 0.0
+    for j in range(v.shape[0]):
+        acc += abs(v[j])
+    return acc
+
+
+@njit(cache=True, nogil=True, fastmath=VECTOR_MATH)
+def _precondition(t, diag, diag_scale, shift):
+    """t_j <- t_j / (diag_scale * diag_j + shift), 0 where that denominator is not positive."""
+    for j in range(t.shape[0]):
+        den = diag_scale * diag[j] + shift
+        t[j] = t[j] / den if den > 0.0 else 0.0
+
+
+@njit(cache=True, nogil=True)
+def chunk_pointers(idx, size):
+    """For ascending indices ``idx`` into a vector of ``size`` coordinates: out[c] = number of indices
+    below c * CHUNK, for c = 0 .. number of chunks (so chunk c holds idx[out[c]:out[c + 1]])."""
+    chunks = (size + CHUNK - 1) // CHUNK
+    out = np.empty(chunks + 1, dtype=np.int64)
+    p = 0
+    for c in range(chunks + 1):
+        bound = c * CHUNK
+        while p < idx.shape[0] and idx[p] < bound:
+            p += 1
+        out[c] = p
+    return out
+
+
+@njit(cache=True, nogil=True)
+def _sparse_add(t, lo, idx, val, a, first, last):
+    """t[idx[p] - lo] += a * val[p] for p in [first, last)."""
+    for p in range(first, last):
+        t[idx[p] - lo] += a * val[p]
+
+
+@njit(cache=True, nogil=True)
+def _sparse_dot(t, lo, idx, val, first, last):
+    """sum_{p in [first, last)} val[p] * t[idx[p] - lo]."""
+    acc = 0.0
+    for p in range(first, last):
+        acc += val[p] * t[idx[p] - lo]
+    return acc
+
+
+@njit(cache=True, parallel=True, nogil=True)
+def precondition_pass(x, S, order, m, alpha, lam, n_reg, diag, diag_scale, damp, gcols, gvals, gptr, yptr,
+                      yidx, yval, ychunk, q, e, b):
+    """Dense middle of the recursion, one pass over memory on all cores, chunk by chunk.
+
+    Forms q = g - sum_t alpha_t y_{order[t]} (g = lam * x on the first ``n_reg`` coordinates plus the
+    sparse ``gvals`` on ``gcols``; y_k = y_sparse_k + lam * s_k there), writes H0 q into ``q`` with H0_jj =
+    1 / (diag_scale * diag_j + damp (+ lam for j < n_reg)), 0 where that denominator is not positive,
+    and the inner products e_t = sum_{j < n_reg} s_{order[t], j} (H0 q)_j and b_t = y_sparse_{order[t]} .
+    (H0 q). Sparse vectors are ascending; ``gptr`` (for g) and ``ychunk[k]`` (for pair k, offsets within
+    its own entries from ``yptr[k]``) are their :func:`chunk_pointers`.
     """
     size = q.shape[0]
-    step = (size + REDUCTION_CHUNKS - 1) // REDUCTION_CHUNKS
-    common = min(n_axpy, n_dot)
-    partial = np.zeros(REDUCTION_CHUNKS)
-    for k in prange(REDUCTION_CHUNKS):
-        lo = k * step
-        hi = min(size, lo + step)
-        acc = 0.0
-        for j in range(lo, min(hi, common)):
-            qj = q[j] + c * s[j]
-            q[j] = qj
-            acc += nxt[j] * qj
-        for j in range(max(lo, common), hi):
-            if j < n_axpy:
-                q[j] += c * s[j]
-            if j < n_dot:
-                acc += nxt[j] * q[j]
-        partial[k] = acc
-    total = 0.0
-    for k in range(REDUCTION_CHUNKS):
-        total += partial[k]
-    return total
+    chunks = (size + CHUNK - 1) // CHUNK
+    part = np.zeros((chunks, 2 * max(m, 1)))
+    for c in prange(chunks):
+        lo = c * CHUNK
+        hi = min(size, lo + CHUNK)
+        top = max(lo, min(hi, n_reg))
+        tmp = np.zeros(hi - lo)
+        reg = tmp[:top - lo]
+        reg[:] = x[lo:top]
+        for i in range(m):
+            _axpy(reg, -alpha[i], S[order[i], lo:top])
+        _scale(reg, lam)
+        _sparse_add(tmp, lo, gcols, gvals, 1.0, gptr[c], gptr[c + 1])
+        for i in range(m):
+            k = order[i]
+            _sparse_add(tmp, lo, yidx, yval, -alpha[i], yptr[k] + ychunk[k, c], yptr[k] + ychunk[k, c + 1])
+        _precondition(reg, diag[lo:top], diag_scale, damp + lam)
+        _precondition(tmp[top - lo:], diag[top:hi], diag_scale, damp)
+        q[lo:hi] = tmp
+        for i in range(m):
+            k = order[i]
+            part[c, i] = _dot(S[k, lo:top], reg)
+            part[c, m + i] = _sparse_dot(tmp, lo, yidx, yval, yptr[k] + ychunk[k, c], yptr[k] + ychunk[k, c + 1])
+    for i in range(m):
+        te = 0.0
+        tb = 0.0
+        for c in range(chunks):
+            te += part[c, i]
+            tb += part[c, m + i]
+        e[i] = te
+        b[i] = tb
 
 
-@njit(cache=True, parallel=True)
-def scale_by_diagonal(q, diag, damp, lam, n_reg):
-    """q_j /= diag_j + damp (+ lam for j < n_reg); 0 where that denominator is not positive."""
-    for j in prange(q.shape[0]):
-        den = diag[j] + damp
-        if j < n_reg:
-            den += lam
-        q[j] = q[j] / den if den > 0.0 else 0.0
+@njit(cache=True, parallel=True, nogil=True)
+def combine_pass(q, S, order, m, coef, x, n_reg, yptr, yidx, yval, ychunk, p, yd):
+    """Last dense pass: d = q + sum_t coef_t s_{order[t]} written into ``q``, with the products the
+    line search and the next curvature pair need.
 
-
-@njit(cache=True)
-def two_loop(q, S, order, m, rho, alpha, yptr, yidx, yval, lam, n_reg, diag, damp):
-    """Overwrite ``q`` with H q, H the limited-memory BFGS inverse-Hessian approximation.
-
-    Pairs are the rows ``S[order[t]]`` (t = 0 oldest .. m-1 newest) with y_k = y_sparse_k + lam *
-    s_k[:n_reg], y_sparse_k held in CSR form by slot (``yptr``, ``yidx``, ``yval``); ``rho[k]`` =
-    1/(s_k.y_k); ``alpha`` is scratch indexed by slot. The initial matrix is diagonal with entries
-    1 / (diag_j + lam + damp) for the n_reg regularized coordinates and 1 / (diag_j + damp) for the rest
-    (0 where that denominator is not positive). Two-loop recursion of "Updating Quasi-Newton Matrices
-    with Limited Storage" (Mathematics of Computation, 1980); the dense passes run on all cores
-    (:func:`axpy_dot`), each fusing one pair's update with the next pair's inner product.
+    Writes p_t = sum_{j < n_reg} s_{order[t], j} d_j and yd_t = y_sparse_{order[t]} . d (pairs as in
+    :func:`precondition_pass`) and returns (x.d and d.d over the first ``n_reg`` coordinates,
+    sum_j |x_j| + sum_j |d_j| over all coordinates). The last value is NaN or infinite when any entry
+    is, and bounds |x_j + e d_j| <= (1 + e) * it for 0 < e <= 1 and e * it for e > 1, so the new
+    weights are known finite without writing them.
     """
     size = q.shape[0]
-    if m > 0:
-        newest = S[order[m - 1]]
-        acc = axpy_dot(q, 0.0, newest, newest, 0, size)
-        for t in range(m - 1, -1, -1):
-            k = order[t]
-            a = rho[k] * acc
-            alpha[k] = a
-            sk = S[k]
-            nxt = S[order[t - 1]] if t > 0 else sk
-            acc = axpy_dot(q, -a * lam, sk, nxt, n_reg, size if t > 0 else 0)
-            for p in range(yptr[k], yptr[k + 1]):
-                i = yidx[p]
-                v = a * yval[p]
-                if t > 0:
-                    acc -= nxt[i] * v
-                q[i] -= v
-    scale_by_diagonal(q, diag, damp, lam, n_reg)
-    if m > 0:
-        k = order[0]
-        acc = lam * axpy_dot(q, 0.0, S[k], S[k], 0, n_reg)
-        for p in range(yptr[k], yptr[k + 1]):
-            acc += yval[p] * q[yidx[p]]
-        for t in range(m):
-            k = order[t]
-            c = alpha[k] - rho[k] * acc
-            sk = S[k]
-            if t < m - 1:
-                kn = order[t + 1]
-                acc = lam * axpy_dot(q, c, sk, S[kn], size, n_reg)
-                for p in range(yptr[kn], yptr[kn + 1]):
-                    acc += yval[p] * q[yidx[p]]
-            else:
-                axpy_dot(q, c, sk, sk, size, 0)
-
-
-@njit(cache=True)
-def ema_diagonal(old, beta, cols, curv, curv_last, out):
-    """out = beta * old, then out[cols] += (1 - beta) * curv and out[-1] += (1 - beta) * curv_last.
-
-    The running (exponentially averaged) Gauss-Newton diagonal; ``old`` is not modified.
-    """
-    for j in range(old.shape[0]):
-        out[j] = beta * old[j]
-    for p in range(cols.shape[0]):
-        out[cols[p]] += (1.0 - beta) * curv[p]
-    out[old.shape[0] - 1] += (1.0 - beta) * curv_last
-
-
-@njit(cache=True)
-def direction_products(x, d, n_reg):
-    """One read-only pass over the weights ``x`` and a direction ``d`` (equal length).
-
-    Returns (x.d and d.d over the first ``n_reg`` coordinates, max |x_j| + max |d_j| over all
-    coordinates, NaN when any entry is NaN). The last value bounds |x_j + e d_j| <= (1 + e) * it for
-    0 < e <= 1, and e * it for e > 1, so the new weights are known finite without writing them.
-    """
+    chunks = (size + CHUNK - 1) // CHUNK
+    width = 2 * max(m, 1)
+    part = np.zeros((chunks, width + 3))
+    for c in prange(chunks):
+        lo = c * CHUNK
+        hi = min(size, lo + CHUNK)
+        top = max(lo, min(hi, n_reg))
+        tmp = q[lo:hi]
+        for i in range(m):
+            _axpy(tmp, coef[i], S[order[i], lo:hi])
+        xs = x[lo:hi]
+        reg = tmp[:top - lo]
+        for i in range(m):
+            k = order[i]
+            part[c, i] = _dot(S[k, lo:top], reg)
+            part[c, m + i] = _sparse_dot(tmp, lo, yidx, yval, yptr[k] + ychunk[k, c], yptr[k] + ychunk[k, c + 1])
+        part[c, width] = _dot(xs[:top - lo], reg)
+        part[c, width + 1] = _dot(reg, reg)
+        part[c, width + 2] = _abs_sum(xs) + _abs_sum(tmp)
+    for i in range(m):
+        tp = 0.0
+        ty = 0.0
+        for c in range(chunks):
+            tp += part[c, i]
+            ty += part[c, m + i]
+        p[i] = tp
+        yd[i] = ty
     xd = 0.0
     dd = 0.0
-    mx = 0.0
-    md = 0.0
-    for j in range(n_reg):
-        xj = x[j]
-        dj = d[j]
-        xd += xj * dj
-        dd += dj * dj
-        ax = abs(xj)
-        ad = abs(dj)
-        if not ax <= mx:
-            mx = ax
-        if not ad <= md:
-            md = ad
-    check = xd * 0.0 + dd * 0.0
-    for j in range(n_reg, x.shape[0]):
-        ax = abs(x[j])
-        ad = abs(d[j])
-        check += ax * 0.0 + ad * 0.0
-        if not ax <= mx:
-            mx = ax
-        if not ad <= md:
-            md = ad
-    return xd, dd, mx + md + check
+    bound = 0.0
+    for c in range(chunks):
+        xd += part[c, width]
+        dd += part[c, width + 1]
+        bound += part[c, width + 2]
+    return xd, dd, bound
+
+
+@njit(cache=True, nogil=True)
+def lbfgs_direction(x, gcols, gvals, gptr, S, order, m, rho, G, z, yptr, yidx, yval, ychunk, lam, n_reg, diag,
+                    diag_scale, damp, q):
+    """Write d = H g into ``q``, H the limited-memory BFGS inverse-Hessian approximation; return
+    (x.d, d.d, bound) as :func:`combine_pass` does, then p, yd (its inner products with the stored
+    pairs) and Sg[t, :] = s_{order[t]} at ``gcols`` (for :func:`record_pair`).
+
+    The gradient is g = lam * x[:n_reg] (zero at the other coordinates) plus the sparse part ``gvals``
+    on the ascending ``gcols`` (chunk pointers ``gptr``). Pairs are the rows ``S[order[t]]`` (t = 0
+    oldest .. m-1 newest) with y_k = y_sparse_k + lam * s_k[:n_reg], y_sparse_k held in CSR form by
+    slot (``yptr``, ascending ``yidx``, ``yval``, chunk pointers ``ychunk[k]``), rho[k] = 1 /
+    (s_k.y_k). ``G[i, k]`` = s_i.y_k and ``z[k]`` = s_k.x[:n_reg] are kept up to date by
+    :func:`record_pair`. The initial matrix is the diagonal of :func:`precondition_pass`.
+
+    Same coefficients as the two-loop recursion of "Updating Quasi-Newton Matrices with Limited
+    Storage" (Mathematics of Computation, 1980), but its inner products come from the small matrix G,
+    as in the vector-free L-BFGS of "Large-scale L-BFGS using MapReduce" (NeurIPS 2014): with y
+    sparse plus lam * s, the dense work is two passes over the stored steps instead of 2m.
+    """
+    alpha = np.empty(m)
+    coef = np.empty(m)
+    e = np.empty(m)
+    b = np.empty(m)
+    p = np.empty(m)
+    yd = np.empty(m)
+    Sg = np.empty((m, gcols.shape[0]))
+    for i in range(m - 1, -1, -1):
+        k = order[i]
+        row = S[k]
+        a = lam * z[k]
+        for t in range(gcols.shape[0]):
+            v = row[gcols[t]]
+            Sg[i, t] = v
+            a += v * gvals[t]
+        for i2 in range(i + 1, m):
+            a -= alpha[i2] * G[k, order[i2]]
+        alpha[i] = rho[k] * a
+    precondition_pass(x, S, order, m, alpha, lam, n_reg, diag, diag_scale, damp, gcols, gvals, gptr, yptr, yidx,
+                      yval, ychunk, q, e, b)
+    for i in range(m):
+        k = order[i]
+        acc = lam * e[i] + b[i]
+        for i2 in range(i):
+            acc += coef[i2] * G[order[i2], k]
+        coef[i] = alpha[i] - rho[k] * acc
+    xd, dd, bound = combine_pass(q, S, order, m, coef, x, n_reg, yptr, yidx, yval, ychunk, p, yd)
+    return xd, dd, bound, p, yd, Sg
+
+
+@njit(cache=True, nogil=True)
+def record_pair(order, m, h, accept, Sg, ysp, p, yd, step, lam, sy, xd, dd, G, z):
+    """Keep ``G`` (s_i.y_k) and ``z`` (s_k.w) of :func:`lbfgs_direction` current after the weights
+    moved by s = step * d.
+
+    ``order``/``m``/``Sg``/``p``/``yd``/``xd``/``dd`` are those of the direction, ``ysp`` the sparse part
+    of the new y on the direction's ``gcols`` and ``sy`` = s.y. When ``accept``, the new pair goes to
+    slot ``h`` (the oldest pair when the memory is full): s_k.y_new = Sg_k . ysp + lam * step * p_k and
+    s_new.y_k = step * (yd_k + lam * p_k).
+    """
+    for i in range(m):
+        k = order[i]
+        if accept and k == h:
+            continue
+        ss = step * p[i]
+        z[k] += ss
+        if accept:
+            acc = lam * ss
+            for t in range(ysp.shape[0]):
+                acc += Sg[i, t] * ysp[t]
+            G[k, h] = acc
+            G[h, k] = step * yd[i] + lam * ss
+    if accept:
+        z[h] = step * xd + step * step * dd
+        G[h, h] = sy
+
+
+@njit(cache=True, nogil=True)
+def fold_diagonal(diag, scale, beta, cols, curv, curv_last):
+    """Running Gauss-Newton diagonal D = scale * diag, updated to beta * D + (1 - beta) * c where c is
+    ``curv`` on ``cols`` and ``curv_last`` at the last coordinate; returns the new scale.
+
+    The factor beta goes into the scale, so only the batch's buckets are written (``diag`` is
+    rescaled in place only when the scale drops below 1e-150, or reset when beta is 0).
+    """
+    if beta == 0.0:
+        diag[:] = 0.0
+        scale = 1.0
+    else:
+        scale *= beta
+        if scale < 1e-150:
+            for j in range(diag.shape[0]):
+                diag[j] *= scale
+            scale = 1.0
+    f = (1.0 - beta) / scale
+    for t in range(cols.shape[0]):
+        diag[cols[t]] += f * curv[t]
+    diag[diag.shape[0] - 1] += f * curv_last
+    return scale
 
 
 @njit(cache=True)

@@ -63,9 +63,9 @@ import time
 import numpy as np
 
 from trainer.errors import UserError
-from trainer.kernels import (commit_step, curvatures_into, direction_products, ema_diagonal, line_loss,
-                             line_residuals, margins_into, pair_products, regularized_gradient,
-                             scatter_compact, scatter_compact_squares, sparse_dot, two_loop)
+from trainer.kernels import (CHUNK, chunk_pointers, commit_step, curvatures_into, fold_diagonal, lbfgs_direction,
+                             line_loss, line_residuals, margins_into, pair_products, record_pair, scatter_compact,
+                             scatter_compact_squares, sparse_dot)
 from trainer.solvers import LinearSolver, check_choice, check_float, check_int, schedule
 
 
@@ -105,13 +105,15 @@ class OnlineLBFGS(LinearSolver):
         self._rho = np.zeros(self.history, dtype=np.float64)
         self._y_idx = [np.zeros(0, dtype=np.int32) for _ in range(self.history)]
         self._y_val = [np.zeros(0, dtype=np.float64) for _ in range(self.history)]
+        self._y_chunk = np.zeros((self.history, (size + CHUNK - 1) // CHUNK + 1), dtype=np.int64)
+        self._G = np.zeros((self.history, self.history), dtype=np.float64)
+        self._z = np.zeros(self.history, dtype=np.float64)
         self._count = 0
         self._head = 0
         self._rows = 0
         self._diag = np.zeros(size, dtype=np.float64)
-        self._diag_next = np.zeros(size, dtype=np.float64)
+        self._diag_scale = 1.0
         self._q = np.empty(size, dtype=np.float64)
-        self._alpha = np.zeros(self.history, dtype=np.float64)
 
     def step(self, batch) -> float:
         """One oLBFGS update from ``batch``; returns the weighted mean data loss before the update.
@@ -124,67 +126,72 @@ class OnlineLBFGS(LinearSolver):
         started = clock()
         n = self.n
         g0 = self._gradient(batch)
-        q = self._q
-        regularized_gradient(self._x[:n], self.l2, g0.cols, g0.gsp, g0.gb, q)
-        gq_sparse_cols, gq_sparse_vals, gb = g0.cols, g0.gsp, g0.gb
+        gcols = np.append(g0.cols, np.int32(n))
+        gvals = np.append(g0.gsp, g0.gb)
+        gptr = chunk_pointers(gcols, n + 1)
 
         h = np.empty(batch.n_rows, dtype=np.float64)
         hb = curvatures_into(self.code, batch.labels, batch.weights, g0.z, h) / g0.weight_sum
         curv = np.empty(g0.cols.shape[0], dtype=np.float64)
         scatter_compact_squares(batch.indptr, g0.slot, batch.data, h, 1.0 / g0.weight_sum, curv)
         beta = 1.0 - 1.0 / min(self.t + 1.0, self.curvature_window)
-        diag = self._diag_next
-        ema_diagonal(self._diag, beta, g0.cols, curv, hb, diag)
         rows = self._rows + batch.n_rows
         if self.t == 0:
-            precond, seen = diag, rows
+            diag = np.zeros_like(self._diag)
+            scale = fold_diagonal(diag, 1.0, beta, g0.cols, curv, hb)
+            seen = rows
         else:
-            precond, seen = self._diag, self._rows
-        damp = self.prior_rows * precond[n] / seen
+            diag, scale, seen = self._diag, self._diag_scale, self._rows
+        damp = self.prior_rows * scale * diag[n] / seen
         gradient_done = clock()
 
+        q = self._q
         order = self._order()
+        m = order.shape[0]
         yptr, yidx, yval = self._pairs_csr()
-        two_loop(q, self._S, order, order.shape[0], self._rho, self._alpha, yptr, yidx, yval, self.l2, n,
-                 precond, damp)
-        xq, qq_reg, bound = direction_products(self._x, q, n)
+        xq, qq_reg, bound, p, yd, Sg = lbfgs_direction(self._x, gcols, gvals, gptr, self._S, order, m, self._rho,
+                                                       self._G, self._z, yptr, yidx, yval, self._y_chunk, self.l2,
+                                                       n, diag, scale, damp, q)
         if not math.isfinite(bound):
             self._diverged("the search direction")
         direction_done = clock()
 
-        eps = self._line_search(batch, g0, q, xq, qq_reg, bound,
-                                sparse_dot(gq_sparse_cols, gq_sparse_vals, q, gb, q[n]))
+        gq = sparse_dot(g0.cols, g0.gsp, q, g0.gb, q[n]) + self.l2 * xq
+        eps = self._line_search(batch, g0, q, xq, qq_reg, bound, gq)
         searched = clock()
         if eps == 0.0:
-            self._diag, self._diag_next = diag, self._diag
+            self._fold(beta, g0.cols, curv, hb)
             self._finish(rows, started, gradient_done, direction_done, searched, searched)
             return g0.loss
         r1 = np.empty(batch.n_rows, dtype=np.float64)
         line_residuals(self.code, batch.labels, batch.weights, g0.z, self._u, -eps, r1)
         dr = r1 - g0.r
-        ysp = np.empty(g0.cols.shape[0] + 1, dtype=np.float64)
+        ysp = np.empty(gcols.shape[0], dtype=np.float64)
         scatter_compact(batch.indptr, g0.slot, batch.data, dr, 1.0 / g0.weight_sum, ysp[:-1])
         ysp[-1] = float(dr.sum()) / g0.weight_sum
         if not np.isfinite(ysp).all():
             self._diverged("the gradient at the new weights")
-        ycols = np.empty(ysp.shape[0], dtype=np.int32)
-        ycols[:-1] = g0.cols
-        ycols[-1] = n
-        sy, yy, ss = pair_products(q, -eps, qq_reg, ycols, ysp, self.l2, n)
+        sy, yy, ss = pair_products(q, -eps, qq_reg, gcols, ysp, self.l2, n)
         paired = clock()
 
         k = self._head
         accept = yy > 0.0 and sy > 1e-10 * math.sqrt(ss * yy)
         commit_step(self._x, q, -eps, self._S[k], accept)
-        self._diag, self._diag_next = diag, self._diag
+        record_pair(order, m, k, accept, Sg, ysp, p, yd, -eps, self.l2, sy, xq, qq_reg, self._G, self._z)
+        self._fold(beta, g0.cols, curv, hb)
         if accept:
             self._rho[k] = 1.0 / sy
-            self._y_idx[k] = ycols
+            self._y_idx[k] = gcols
             self._y_val[k] = ysp
+            self._y_chunk[k] = gptr
             self._head = (k + 1) % self.history
             self._count = min(self._count + 1, self.history)
         self._finish(rows, started, gradient_done, direction_done, paired, clock())
         return g0.loss
+
+    def _fold(self, beta: float, cols, curv, curv_last: float) -> None:
+        """Fold this batch's Gauss-Newton diagonal into the running one (after the step used the old one)."""
+        self._diag_scale = fold_diagonal(self._diag, self._diag_scale, beta, cols, curv, curv_last)
 
     def _line_search(self, batch, g0, q, xq: float, qq_reg: float, bound: float, gq: float) -> float:
         """Backtracking Armijo search on the batch objective along -q; returns the accepted step
@@ -243,8 +250,8 @@ class OnlineLBFGS(LinearSolver):
     def _extra_state(self) -> dict:
         yptr, yidx, yval = self._pairs_csr()
         return {"S": self._S.copy(), "rho": self._rho.copy(), "y_indptr": yptr, "y_index": yidx,
-                "y_value": yval, "count": self._count, "head": self._head, "rows": self._rows,
-                "diag": self._diag.copy()}
+                "y_value": yval, "gram": self._G.copy(), "s_dot_w": self._z.copy(), "count": self._count,
+                "head": self._head, "rows": self._rows, "diag": self._diag.copy(), "diag_scale": self._diag_scale}
 
     def _load_extra(self, state: dict) -> None:
         S = np.asarray(state["S"])
@@ -257,7 +264,12 @@ class OnlineLBFGS(LinearSolver):
         yval = np.asarray(state["y_value"], dtype=np.float64)
         self._y_idx = [yidx[yptr[k]:yptr[k + 1]].copy() for k in range(self.history)]
         self._y_val = [yval[yptr[k]:yptr[k + 1]].copy() for k in range(self.history)]
+        for k in range(self.history):
+            self._y_chunk[k] = chunk_pointers(self._y_idx[k], self.n + 1)
         self._count = int(state["count"])
         self._head = int(state["head"])
+        self._G[:] = state["gram"]
+        self._z[:] = state["s_dot_w"]
         self._rows = int(state["rows"])
         self._diag[:] = state["diag"]
+        self._diag_scale = float(state["diag_scale"])
