@@ -148,24 +148,24 @@ def scatter_compact_squares(indptr, slot, data, h, scale, out):
     contributes h_i * 2^2, the exact diagonal of X^T diag(h) X. ``out`` is overwritten.
     """
     out[:] = 0.0
+    row_of = np.full(out.shape[0], -1, dtype=np.int64)
+    within = np.zeros(out.shape[0])
     n_rows = indptr.shape[0] - 1
     for i in range(n_rows):
+        for k in range(indptr[i], indptr[i + 1]):
+            p = slot[k]
+            if row_of[p] != i:
+                row_of[p] = i
+                within[p] = data[k]
+            else:
+                within[p] += data[k]
         hi = h[i]
-        start = indptr[i]
-        stop = indptr[i + 1]
-        for k in range(start, stop):
-            seen = False
-            for k2 in range(start, k):
-                if slot[k2] == slot[k]:
-                    seen = True
-                    break
-            if seen:
-                continue
-            v = data[k]
-            for k2 in range(k + 1, stop):
-                if slot[k2] == slot[k]:
-                    v += data[k2]
-            out[slot[k]] += hi * v * v
+        for k in range(indptr[i], indptr[i + 1]):
+            p = slot[k]
+            if row_of[p] == i:
+                row_of[p] = -1 - i
+                v = within[p]
+                out[p] += hi * v * v
     for p in range(out.shape[0]):
         out[p] *= scale
 
