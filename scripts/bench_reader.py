@@ -15,6 +15,7 @@ from pathlib import Path
 
 import pyarrow.parquet as pq
 
+from trainer.cli import configure_process
 from trainer.reader import Reader
 from trainer.spec import load_spec
 
@@ -38,6 +39,7 @@ def main() -> None:
     ap.add_argument("--batch-rows", type=int, default=4096)
     ap.add_argument("--repeat", type=int, default=3)
     a = ap.parse_args()
+    configure_process()
     if a.data is None:
         data = HERE.parent / "bench_data" / f"bench20-{a.rows}.parquet"
         if not data.exists():

@@ -42,6 +42,7 @@ sys.path.insert(0, str(HERE))
 import loggen  # noqa: E402
 
 from trainer import api  # noqa: E402
+from trainer.cli import configure_process  # noqa: E402
 from trainer.reader import Reader  # noqa: E402
 from trainer.solvers import make_solver  # noqa: E402
 from trainer.spec import load_spec  # noqa: E402
@@ -202,6 +203,7 @@ def main() -> None:
     ap.add_argument("--memory", action="store_true", help="also measure peak RSS on 1x and 4x the log")
     ap.add_argument("--skip-peer", action="store_true")
     a = ap.parse_args()
+    configure_process()
     opt = TrainOptions()
     folder = make_log(a.rows_per_day, a.train_days + 1)
     spec_path = folder / "spec.json"

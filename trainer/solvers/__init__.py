@@ -11,7 +11,7 @@ with l the logistic or squared-hinge loss of :mod:`trainer.losses`. Every solver
   :class:`trainer.errors.Diverged` without changing any state when the loss, the gradient or the new
   weights would be non-finite.
 * ``weights`` (read-only float64 view, length n_features) and ``intercept`` (float).
-* ``state() -> dict`` of plain numpy arrays and scalars holding the complete state, and
+* ``state(copy=True) -> dict`` of plain numpy arrays and scalars holding the complete state, and
   ``load_state(state)``, after which later steps are bit-for-bit those of an uninterrupted run.
 
 Methods (``make_solver`` names): ``"olbfgs"`` online limited-memory BFGS (default), ``"res"``
@@ -45,7 +45,7 @@ class Solver(Protocol):
 
     def step(self, batch) -> float: ...
 
-    def state(self) -> dict: ...
+    def state(self, copy: bool = True) -> dict: ...
 
     def load_state(self, state: dict) -> None: ...
 
@@ -185,12 +185,18 @@ class LinearSolver:
         """Method options that shape the trajectory; a checkpoint must have been written with the same."""
         return {}
 
-    def state(self) -> dict:
-        """Complete solver state as plain numpy arrays and scalars (see the package docstring)."""
+    def state(self, copy: bool = True) -> dict:
+        """Complete solver state as plain numpy arrays and scalars (see the package docstring).
+
+        With ``copy=False`` the arrays may be views of the live state, valid until the next ``step``:
+        enough to write a checkpoint without doubling the memory of the curvature pairs.
+        """
         st = {"method": self.method, "loss": self.loss_name, "n_features": self.n, "l2": self.l2,
-              "t": self.t, "x": self._x.copy()}
+              "t": self.t, "x": self._x}
         st.update(self._options())
         st.update(self._extra_state())
+        if copy:
+            st = {k: v.copy() if isinstance(v, np.ndarray) else v for k, v in st.items()}
         return st
 
     def load_state(self, state: dict) -> None:

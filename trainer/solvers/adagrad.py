@@ -58,7 +58,7 @@ class AdaGrad(LinearSolver):
         return g.loss
 
     def _extra_state(self) -> dict:
-        return {"accumulators": self._acc.copy()}
+        return {"accumulators": self._acc}
 
     def _load_extra(self, state: dict) -> None:
         self._acc[:] = state["accumulators"]

@@ -249,9 +249,9 @@ class OnlineLBFGS(LinearSolver):
 
     def _extra_state(self) -> dict:
         yptr, yidx, yval = self._pairs_csr()
-        return {"S": self._S.copy(), "rho": self._rho.copy(), "y_indptr": yptr, "y_index": yidx,
-                "y_value": yval, "gram": self._G.copy(), "s_dot_w": self._z.copy(), "count": self._count,
-                "head": self._head, "rows": self._rows, "diag": self._diag.copy(), "diag_scale": self._diag_scale}
+        return {"S": self._S, "rho": self._rho, "y_indptr": yptr, "y_index": yidx,
+                "y_value": yval, "gram": self._G, "s_dot_w": self._z, "count": self._count,
+                "head": self._head, "rows": self._rows, "diag": self._diag, "diag_scale": self._diag_scale}
 
     def _load_extra(self, state: dict) -> None:
         S = np.asarray(state["S"])

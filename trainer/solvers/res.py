@@ -133,7 +133,7 @@ class RES(LinearSolver):
         return g0.loss
 
     def _extra_state(self) -> dict:
-        return {"B": self._B.copy(), "started": int(self._started)}
+        return {"B": self._B, "started": int(self._started)}
 
     def _load_extra(self, state: dict) -> None:
         B = np.asarray(state["B"], dtype=np.float64)
