@@ -22,7 +22,7 @@ from numba import njit, prange
 from trainer.losses import d2loss, dloss, loss
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def margins_into(indptr, indices, data, w, b, out):
     """Write z_i = b + sum_k data[k] * w[indices[k]] over row i's entries into ``out`` (length n_rows)."""
     n_rows = indptr.shape[0] - 1
@@ -50,7 +50,7 @@ def predict_margin(batch, w: np.ndarray, b: float) -> np.ndarray:
     return out
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def residuals_into(code, labels, weights, z, r):
     """Write r_i = c_i * l'(y_i, z_i) and return (sum_i c_i l(y_i, z_i), sum_i c_i, sum_i r_i).
 
@@ -69,7 +69,7 @@ def residuals_into(code, labels, weights, z, r):
     return loss_sum, weight_sum, r_sum
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def curvatures_into(code, labels, weights, z, h):
     """Write h_i = c_i * l''(y_i, z_i) (Gauss-Newton row curvature) and return sum_i h_i."""
     total = 0.0
@@ -124,7 +124,7 @@ def batch_support(indices: np.ndarray, mark: np.ndarray, slot: np.ndarray) -> np
     return cols[by_value]
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def scatter_compact(indptr, slot, data, r, scale, out):
     """Compact gradient scatter: out[p] = scale * sum over entries k with slot[k] = p of r_row(k) * data[k].
 
@@ -140,7 +140,7 @@ def scatter_compact(indptr, slot, data, r, scale, out):
         out[p] *= scale
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def scatter_compact_squares(indptr, slot, data, h, scale, out):
     """Gauss-Newton diagonal of a batch: out[p] = scale * sum_i h_i x_ij^2 for the p-th distinct bucket j.
 
@@ -170,7 +170,7 @@ def scatter_compact_squares(indptr, slot, data, h, scale, out):
         out[p] *= scale
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def regularized_gradient(w, lam, cols, gsp, gb, out):
     """Full gradient in the quasi-Newton layout: out[:n] = lam * w, then out[cols] += gsp, out[n] = gb."""
     n = w.shape[0]
@@ -458,7 +458,7 @@ def fold_diagonal(diag, scale, beta, cols, curv, curv_last):
     return scale
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def sparse_dot(cols, vals, d, last, d_last):
     """sum_p vals[p] * d[cols[p]] + last * d_last: a gradient held on the batch's buckets (plus the
     intercept entry ``last``) against a dense direction."""
@@ -468,7 +468,7 @@ def sparse_dot(cols, vals, d, last, d_last):
     return acc
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def line_loss(code, labels, weights, z0, u, eps):
     """sum_i c_i l(y_i, z0_i + eps * u_i): the batch's weighted data loss along the line x + eps d,
     with u = X d + d_b the margins' rate of change (one sparse product per step, none per trial)."""
@@ -478,7 +478,7 @@ def line_loss(code, labels, weights, z0, u, eps):
     return total
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def line_residuals(code, labels, weights, z0, u, eps, r):
     """Write r_i = c_i l'(y_i, z0_i + eps * u_i) (residuals at an accepted point of the line) and
     return their sum."""
@@ -490,7 +490,7 @@ def line_residuals(code, labels, weights, z0, u, eps, r):
     return total
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def commit_step(x, d, eps, s_out, store):
     """x += eps * d in place; when ``store``, also s_out = eps * d (the step of a new curvature pair,
     rounded to s_out's dtype: float32 storage halves the memory traffic of :func:`two_loop`)."""
@@ -501,7 +501,7 @@ def commit_step(x, d, eps, s_out, store):
             s_out[j] = sj
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def shifted_margins_into(indptr, indices, data, x, d, eps, n, out):
     """Margins at the trial point x + eps * d (bucket weights x[:n], intercept x[n]) without forming it.
 
@@ -518,7 +518,7 @@ def shifted_margins_into(indptr, indices, data, x, d, eps, n, out):
         out[i] = acc
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def pair_products(d, eps, dd_reg, yidx, yval, lam, n_reg):
     """For s = eps * d and y = y_sparse + lam * s[:n_reg] (y_sparse on the distinct indices ``yidx``),
     return (s.y, y.y, s.s); ``dd_reg`` is sum_{j < n_reg} d_j^2 from :func:`check_step`."""
@@ -542,7 +542,7 @@ def pair_products(d, eps, dd_reg, yidx, yval, lam, n_reg):
     return sy, yy, ss
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def sgd_candidate(x, n, eps, lam, cols, gsp, gb, new_vals):
     """Stochastic gradient step values on the batch's buckets, before committing.
 
@@ -564,7 +564,7 @@ def sgd_candidate(x, n, eps, lam, cols, gsp, gb, new_vals):
     return ok
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def sgd_commit(x, n, eps, lam, cols, new_vals):
     """Apply a checked :func:`sgd_candidate`: shrink every bucket weight, then set the batch's ones."""
     shrink = 1.0 - eps * lam
@@ -576,7 +576,7 @@ def sgd_commit(x, n, eps, lam, cols, new_vals):
     x[n] = new_vals[cols.shape[0]]
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def adagrad_candidate(x, acc, n, eta, lam, delta, cols, gsp, gb, new_x, new_acc):
     """AdaGrad composite mirror-descent values on the batch's buckets and the intercept.
 
@@ -606,7 +606,7 @@ def adagrad_candidate(x, acc, n, eta, lam, delta, cols, gsp, gb, new_x, new_acc)
     return ok
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def adagrad_commit(x, acc, n, eta, lam, delta, cols, new_x, new_acc):
     """Apply a checked :func:`adagrad_candidate`: shrink bucket weights outside the batch by
     H_j / (H_j + eta lam), then set the batch's weights, accumulators and the intercept."""
