@@ -1,12 +1,9 @@
 """The reader's batches against a row-by-row reference written from the README's hashing contract
-with the mmh3 library, plus streaming, resume, shuffling, bad-input behaviour and prefetching on a
-background thread."""
+with the mmh3 library, plus streaming, resume, shuffling and bad-input behaviour."""
 
 import datetime as dt
 import json
 import math
-import threading
-from contextlib import closing
 
 import mmh3
 import numpy as np
@@ -16,7 +13,6 @@ import pytest
 import scipy.sparse as sp
 
 from trainer.errors import UserError
-from trainer.prefetch import prefetch
 from trainer.reader import Reader
 from trainer.spec import load_spec
 
@@ -194,122 +190,3 @@ def test_readme_worked_example(tmp_path):
     assert mmh3.hash(b"campaign\x1fspring-sale", 0, signed=False) == 0xF121FF00
     assert batch.indices[0] == 0xF121FF00 & 0x3FFFF == 130816
     assert batch.indices[2] == 0xA8078C35 & 0x3FFFF == 232501
-
-
-# ----------------------------------------------------------------------------------------------
-# prefetching: the reader on a background thread
-
-
-def prefetch_threads():
-    return [t for t in threading.enumerate() if t.name == "hashcurve-prefetch"]
-
-
-def assert_same_batches(got, want):
-    assert len(got) == len(want)
-    for x, y in zip(got, want):
-        for k in ("indptr", "indices", "data", "labels", "weights"):
-            np.testing.assert_array_equal(getattr(x, k), getattr(y, k))
-        assert x.n_rows == y.n_rows and x.position == y.position
-        assert (x.columns is None and y.columns is None) or x.columns.equals(y.columns)
-
-
-@pytest.mark.parametrize("depth", [1, 2])
-@pytest.mark.parametrize("shuffle", [0, 450])
-def test_prefetch_yields_the_same_batches(small_log, depth, shuffle):
-    # Reference: the same reader iterated without prefetching (arrays, positions, kept columns).
-    root, spec_path = small_log
-    spec = load_spec(spec_path)
-    reader = Reader(spec, root, batch_rows=128, shuffle_rows=shuffle, seed=3, negative_keep_rate=0.5, keep=("w",))
-    want = list(reader.batches(pass_index=1))
-    with closing(prefetch(reader.batches(pass_index=1), depth)) as batches:
-        got = list(batches)
-    assert_same_batches(got, want)
-    resumed = list(prefetch(reader.batches(pass_index=1, start=want[5].position), depth))
-    assert_same_batches(resumed, want[6:])
-    assert not prefetch_threads()
-
-
-def test_prefetch_raises_the_readers_error_after_the_earlier_batches(small_log, tmp_path):
-    # Reference: the same reader iterated without prefetching: the batches before the bad file, then
-    # the same exception type and message.
-    spec = load_spec(small_log[1])
-    rng = np.random.default_rng(0)
-    folder = tmp_path / "two"
-    folder.mkdir()
-    pq.write_table(make_table(rng, 600), folder / "a.parquet")
-    bad = make_table(rng, 100)
-    labels = [0, 1] * 5 + [None] + [0] * 89
-    pq.write_table(bad.set_column(bad.schema.get_field_index("clicked"), "clicked", pa.array(labels, pa.int64())),
-                   folder / "b.parquet")
-    reader = Reader(spec, folder, batch_rows=256)
-
-    def until_error(batches):
-        got = []
-        with pytest.raises(UserError) as info:
-            for b in batches:
-                got.append(b)
-        return got, info.value
-
-    want, want_exc = until_error(reader.batches())
-    got, got_exc = until_error(prefetch(reader.batches()))
-    assert len(want) == 2  # the 512 rows of a.parquet that filled whole batches before b.parquet
-    assert_same_batches(got, want)
-    assert type(got_exc) is type(want_exc) and str(got_exc) == str(want_exc)
-    assert "b.parquet: column 'clicked' has 1 null or unaccepted label values" in str(got_exc)
-    assert not prefetch_threads()
-
-
-@pytest.mark.parametrize("how", ["break", "close", "consumer error", "interrupt"])
-def test_prefetch_stops_its_thread_when_the_consumer_stops_early(small_log, how):
-    # Reference: threading.enumerate() before the loop; the thread is joined before cleanup returns,
-    # also when the producer waits for room (depth 1, many batches ahead).
-    root, spec_path = small_log
-    spec = load_spec(spec_path)
-    before = set(threading.enumerate())
-    reader = Reader(spec, root, batch_rows=16)
-    if how == "close":
-        batches = prefetch(reader.batches())
-        first = next(batches)
-        assert first.n_rows == 16 and len(prefetch_threads()) == 1
-        batches.close()
-    else:
-        raised = {"break": None, "consumer error": ValueError, "interrupt": KeyboardInterrupt}[how]
-        taken = 0
-        try:
-            with closing(prefetch(reader.batches())) as batches:
-                for _ in batches:
-                    taken += 1
-                    if taken == 3:
-                        if raised is None:
-                            break
-                        raise raised("stop")
-        except (ValueError, KeyboardInterrupt):
-            assert raised is not None
-        assert taken == 3
-    assert not prefetch_threads()
-    assert set(threading.enumerate()) == before
-
-
-@pytest.mark.parametrize("depth", [1, 2])
-def test_prefetch_stays_depth_items_ahead_and_closes_its_source(depth):
-    # Reference: counting what an endless source handed out; the producer asks for an item only when
-    # fewer than `depth` wait, so it can be at most `depth` items ahead of the consumer.
-    handed_out = []
-    closed = threading.Event()
-
-    def endless():
-        try:
-            while True:
-                handed_out.append(len(handed_out))
-                yield handed_out[-1]
-        finally:
-            closed.set()
-
-    items = prefetch(endless(), depth)
-    assert [next(items) for _ in range(3)] == [0, 1, 2]
-    items.close()
-    assert 3 <= len(handed_out) <= 3 + depth
-    assert closed.is_set()  # the source generator was closed, on the producer thread, before close() returned
-    assert not prefetch_threads()
-    with pytest.raises(ValueError, match="depth"):
-        prefetch([], 0)

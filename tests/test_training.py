@@ -1,13 +1,11 @@
-"""Training workflow: exact resume after SIGKILL and SIGINT (real subprocesses), the same weights with
-and without prefetching, refusals that leave files untouched, negative downsampling calibration,
-early stopping and bad options (exit 2)."""
+"""Training workflow: exact resume after SIGKILL and SIGINT (real subprocesses), refusals that leave
+files untouched, negative downsampling calibration, early stopping and bad options (exit 2)."""
 
 import json
 import os
 import signal
 import subprocess
 import sys
-import threading
 import time
 from pathlib import Path
 
@@ -16,7 +14,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from trainer import api, training
+from trainer import api
 from trainer.cli import main
 from trainer.model import load_model
 
@@ -74,19 +72,6 @@ def test_resume_after_kill_is_bit_identical(log_4files, tmp_path, sig):
     assert np.array_equal(w_ref, w_cut) and b_ref == b_cut  # bit for bit (the resume contract)
     lines = (cut / "metrics.jsonl").read_text().splitlines()
     assert [json.loads(x)["pass"] for x in lines] == [1, 2]
-
-
-def test_prefetching_does_not_change_the_weights(log_4files, tmp_path, monkeypatch):
-    # Reference: the same run with the training batches read on the main thread (prefetch replaced by
-    # the plain iterator); weights bit for bit, and no reading thread left behind.
-    data, spec = log_4files
-    options = dict(passes=2, batch_rows=500, shuffle_buffer=3000, seed=4, negative_keep_rate=0.7, holdout=data)
-    with_prefetch = api.train(spec, data, tmp_path / "a", **options)
-    assert not [t for t in threading.enumerate() if t.name == "hashcurve-prefetch"]
-    monkeypatch.setattr(training, "prefetch", lambda batches: batches)
-    plain = api.train(spec, data, tmp_path / "b", **options)
-    assert np.array_equal(with_prefetch.weights, plain.weights) and with_prefetch.intercept == plain.intercept
-    assert with_prefetch.info["examples"] == plain.info["examples"]
 
 
 def test_resume_refusals_leave_checkpoint_untouched(log_4files, tmp_path, capsys):

@@ -2,14 +2,11 @@
 
 from __future__ import annotations
 
-from contextlib import closing
-
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
 from trainer.metrics import BinaryMetrics, MarginMetrics
-from trainer.prefetch import prefetch
 from trainer.reader import Reader
 
 MAX_TRACKED_SEGMENTS = 100_000
@@ -75,26 +72,24 @@ def evaluate(model, reader: Reader, *, by: str | None = None, segments: int = 20
     AUC and error rate on margins) and ``squared_hinge_loss`` (weighted mean of
     max(0, 1 - s m)^2, s = 2y - 1), and report only those when uncalibrated. With ``by``, the reader
     must keep that column, and ``segments`` lists the largest ``segments`` values (rows, observed
-    rate, mean prediction, calibration ratio, log-loss), the rest pooled. The next batch is read on
-    a background thread (``trainer.prefetch``) while one is scored. Raises what the reader raises.
+    rate, mean prediction, calibration ratio, log-loss), the rest pooled.
     """
     probs_metrics = BinaryMetrics() if model.has_probability else None
     margin_metrics = MarginMetrics() if model.loss == "squared-hinge" else None
     seg = SegmentSums() if by else None
     hinge = np.zeros(2)
-    with closing(prefetch(reader.batches())) as batches:
-        for batch in batches:
-            margins = model.margin(batch)
-            if margin_metrics is not None:
-                margin_metrics.update(batch.labels, margins, batch.weights)
-                slack = np.maximum(0.0, 1.0 - (2.0 * batch.labels - 1.0) * margins)
-                hinge += (float(batch.weights @ slack**2), float(batch.weights.sum()))
-            if probs_metrics is not None:
-                probs = model.probability_from_margin(margins)
-                probs_metrics.update(batch.labels, probs, batch.weights,
-                                     margins=margins if model.loss == "logistic" else None)
-                if seg is not None:
-                    seg.update(batch.columns.column(by).combine_chunks(), batch.labels, probs, batch.weights)
+    for batch in reader.batches():
+        margins = model.margin(batch)
+        if margin_metrics is not None:
+            margin_metrics.update(batch.labels, margins, batch.weights)
+            slack = np.maximum(0.0, 1.0 - (2.0 * batch.labels - 1.0) * margins)
+            hinge += (float(batch.weights @ slack**2), float(batch.weights.sum()))
+        if probs_metrics is not None:
+            probs = model.probability_from_margin(margins)
+            probs_metrics.update(batch.labels, probs, batch.weights,
+                                 margins=margins if model.loss == "logistic" else None)
+            if seg is not None:
+                seg.update(batch.columns.column(by).combine_chunks(), batch.labels, probs, batch.weights)
     out = probs_metrics.summary() if probs_metrics is not None else {}
     if margin_metrics is not None:
         out["margin"] = margin_metrics.summary()

@@ -3,8 +3,7 @@
 MurmurHash3 is Austin Appleby's public-domain hash ("MurmurHash3", SMHasher project, 2011); this is
 the x86 32-bit variant, byte-for-byte equal to the reference ``MurmurHash3_x86_32``. Tokens follow the
 hashing contract in README.md: ``utf8(column) 0x1F utf8(value)`` for categorical values,
-``token(a) 0x1E token(b)`` for crosses; bucket = hash mod 2^bits. The functions release the GIL
-(``nogil=True``) so the reader can hash on a background thread.
+``token(a) 0x1E token(b)`` for crosses; bucket = hash mod 2^bits.
 """
 
 from __future__ import annotations
@@ -15,12 +14,12 @@ import numpy as np
 FIELD_SEP = 0x1F
 CROSS_SEP = 0x1E
 
-@nb.njit(cache=True, nogil=True, inline="always")
+@nb.njit(cache=True, inline="always")
 def _rotl(x, r):
     return np.uint32((x << np.uint32(r)) | (x >> np.uint32(32 - r)))
 
 
-@nb.njit(cache=True, nogil=True)
+@nb.njit(cache=True)
 def murmur3_32(buf, start, end, seed):
     """Hash ``buf[start:end]`` (uint8 array) with MurmurHash3_x86_32 and ``seed``; return uint32."""
     h = np.uint32(seed)
@@ -66,7 +65,7 @@ def hash_bytes(data: bytes, seed: int = 0) -> int:
     return int(murmur3_32(buf, 0, buf.size, np.uint32(seed)))
 
 
-@nb.njit(cache=True, nogil=True)
+@nb.njit(cache=True)
 def hash_tokens(prefix, buf, offsets, seed, mask):
     """Bucket of every token ``prefix + buf[offsets[i]:offsets[i+1]]``.
 
@@ -90,7 +89,7 @@ def hash_tokens(prefix, buf, offsets, seed, mask):
     return out
 
 
-@nb.njit(cache=True, nogil=True)
+@nb.njit(cache=True)
 def cross_tokens(a_ptr, a_ids, a_prefix, a_buf, a_off, b_ptr, b_ids, b_prefix, b_buf, b_off):
     """Join two token streams row by row into cross tokens ``token(a) 0x1E token(b)``.
 

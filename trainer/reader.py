@@ -8,16 +8,11 @@ chunk and window sizes, never by the log.
 
 Every batch carries the ``Position`` from which reading resumes exactly: rows are hashed one by one,
 so the stream of rows, and hence every batch, is the same whatever the chunking.
-
-The numba functions here and in ``trainer.hashing`` are compiled with ``nogil=True``, and pyarrow
-decodes and computes without the GIL, so a reader iterated on a background thread
-(``trainer.prefetch``) runs beside the solver instead of taking turns with it.
 """
 
 from __future__ import annotations
 
 import datetime as dt
-import threading
 import urllib.parse
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -299,7 +294,7 @@ def _numeric_tokens(arr: pa.Array, feat: Feature, prefix: np.ndarray, where: str
                    np.zeros(2, dtype=np.int64), values=values)
 
 
-@nb.njit(cache=True, nogil=True)
+@nb.njit(cache=True)
 def _scatter(ptr, ids, buckets, values, cursor, out_idx, out_val):
     """Append each row's entries (bucket, value) at that row's cursor in the output CSR."""
     has_values = values.size > 0
@@ -312,7 +307,7 @@ def _scatter(ptr, ids, buckets, values, cursor, out_idx, out_val):
         cursor[r] = c
 
 
-@nb.njit(cache=True, nogil=True)
+@nb.njit(cache=True)
 def _take_rows(indptr, indices, data, rows):
     """Gather CSR rows ``rows`` (int64) into a new CSR (indptr, indices, data)."""
     n = rows.size
@@ -332,7 +327,7 @@ def _take_rows(indptr, indices, data, rows):
     return out_ptr, out_idx, out_val
 
 
-@nb.njit(cache=True, nogil=True)
+@nb.njit(cache=True)
 def _keep_uniform(file_idx, raw, seed, pass_index):
     """A uniform number in [0, 1) per row from (seed, pass, file, row) by the SplitMix64 finalizer
     ("Fast splittable pseudorandom number generators", OOPSLA 2014): the same row always draws the
@@ -351,11 +346,7 @@ def _keep_uniform(file_idx, raw, seed, pass_index):
 class BucketExamples:
     """A few readable token values per bucket, from the first ``max_rows`` rows hashed, so reports can
     say which field values a weight came from: at most ``per_bucket`` values per bucket and
-    ``max_values`` in all (frequent values come first, as they fill the first chunks).
-
-    Rows may be hashed on a background thread (``trainer.prefetch``) while the training loop saves a
-    checkpoint: read the state through ``snapshot()``, which takes it under the same lock as
-    ``add_rows()``."""
+    ``max_values`` in all (frequent values come first, as they fill the first chunks)."""
 
     def __init__(self, n_buckets: int, per_bucket: int = 2, max_rows: int = 131_072,
                  values: dict[str, list[str]] | None = None, max_values: int = 100_000):
@@ -363,27 +354,11 @@ class BucketExamples:
         self.total = 0
         self.values: dict[str, list[str]] = values or {}
         self.count = np.zeros(n_buckets, dtype=np.uint8)
-        self._lock = threading.Lock()
         for b, v in self.values.items():
             self.count[int(b)] = len(v)
             self.total += len(v)
 
-    def add_rows(self, parts: list["_Tokens"], n_rows: int) -> None:
-        """Record values of one chunk of ``n_rows`` rows, given as token tables with their buckets,
-        while rows are left to sample."""
-        with self._lock:
-            if self.rows_left <= 0:
-                return
-            for tok in parts:
-                self._add(tok, tok.buckets)
-            self.rows_left -= n_rows
-
-    def snapshot(self) -> tuple[dict[str, list[str]], int]:
-        """``(values, rows_left)``, copied at one instant."""
-        with self._lock:
-            return {b: list(v) for b, v in self.values.items()}, self.rows_left
-
-    def _add(self, tok: "_Tokens", buckets: np.ndarray) -> None:
+    def add(self, tok: "_Tokens", buckets: np.ndarray) -> None:
         """Record values of the tokens ``tok`` uses whose buckets have room."""
         ids = np.unique(tok.ids)
         b = buckets[ids]
@@ -468,11 +443,14 @@ class Featurizer:
         data = np.empty(indptr[-1], dtype=np.float64)
         cursor = indptr[:-1].copy()
         empty = np.zeros(0, dtype=np.float64)
+        sample = self.examples is not None and self.examples.rows_left > 0
         for name, t in zip(names, parts):
             _scatter(t.ptr, t.ids, self._hash(t, name), empty if t.values is None else t.values,
                      cursor, indices, data)
-        if self.examples is not None:
-            self.examples.add_rows(parts, n)
+            if sample:
+                self.examples.add(t, t.buckets)
+        if sample:
+            self.examples.rows_left -= n
         return indptr, indices, data
 
 

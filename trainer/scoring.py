@@ -1,15 +1,13 @@
 """Streaming Parquet -> Parquet scoring with a trained or exported model.
 
 Rows are read in file order (no shuffle) by :class:`trainer.reader.Reader`, hashed batch by batch,
-scored by :class:`trainer.model.Model` and appended to a ``pyarrow.parquet.ParquetWriter``; the next
-batch is read on a background thread (``trainer.prefetch``) meanwhile. Memory is bounded by two
-batches. The output is written to a temporary file in the destination folder and renamed
+scored by :class:`trainer.model.Model` and appended to a ``pyarrow.parquet.ParquetWriter``; memory is
+bounded by one batch. The output is written to a temporary file in the destination folder and renamed
 into place only when complete.
 """
 
 from __future__ import annotations
 
-from contextlib import closing
 from pathlib import Path
 
 import pyarrow as pa
@@ -18,7 +16,6 @@ import pyarrow.parquet as pq
 from trainer.atomic import atomic_path
 from trainer.errors import UserError
 from trainer.model import Model, load_model
-from trainer.prefetch import prefetch
 from trainer.reader import Reader, parse_day
 
 SCORE = "score"
@@ -91,28 +88,26 @@ def score_to_parquet(model_path: str | Path | Model, data: str | Path, out: str 
         with atomic_path(out) as tmp:
             writer = None
             try:
-                with closing(prefetch(reader.batches())) as batches:
-                    for batch in batches:
-                        z = model.margin(batch)
-                        cols = {c: _plain(batch.columns.column(c)) for c in keep}
-                        cols[SCORE] = pa.array(model.probability_from_margin(z) if model.loss == "logistic" else z,
-                                               pa.float64())
-                        if with_probability:
-                            cols[PROBABILITY] = pa.array(model.probability_from_margin(z), pa.float64())
-                        table = pa.table(cols)
-                        if writer is None:
-                            schema = table.schema.with_metadata({"hashcurve.loss": model.loss,
-                                                                 "hashcurve.score": "probability"
-                                                                 if model.loss == "logistic" else "margin"})
-                            writer = pq.ParquetWriter(tmp, schema)
-                        try:
-                            table = table.cast(writer.schema)
-                        except (pa.ArrowInvalid, pa.ArrowNotImplementedError) as exc:
-                            raise UserError(f"{data}: a kept column changes type between files "
-                                            f"({str(exc).splitlines()[0]}); --keep columns must share one "
-                                            "type") from None
-                        writer.write_table(table)
-                        rows += batch.n_rows
+                for batch in reader.batches():
+                    z = model.margin(batch)
+                    cols = {c: _plain(batch.columns.column(c)) for c in keep}
+                    cols[SCORE] = pa.array(model.probability_from_margin(z) if model.loss == "logistic" else z,
+                                           pa.float64())
+                    if with_probability:
+                        cols[PROBABILITY] = pa.array(model.probability_from_margin(z), pa.float64())
+                    table = pa.table(cols)
+                    if writer is None:
+                        schema = table.schema.with_metadata({"hashcurve.loss": model.loss,
+                                                             "hashcurve.score": "probability"
+                                                             if model.loss == "logistic" else "margin"})
+                        writer = pq.ParquetWriter(tmp, schema)
+                    try:
+                        table = table.cast(writer.schema)
+                    except (pa.ArrowInvalid, pa.ArrowNotImplementedError) as exc:
+                        raise UserError(f"{data}: a kept column changes type between files "
+                                        f"({str(exc).splitlines()[0]}); --keep columns must share one type") from None
+                    writer.write_table(table)
+                    rows += batch.n_rows
             finally:
                 if writer is not None:
                     writer.close()

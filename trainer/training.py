@@ -11,10 +11,6 @@ One training run owns one model folder:
 
 Progressive validation ("online" or "test-then-train" evaluation, common practice): each batch's
 loss is measured before the solver learns from it.
-
-The next batch is read and hashed on a background thread (``trainer.prefetch``) while the solver
-steps. Checkpoints record the position after the last batch the solver consumed, so a batch read
-ahead and dropped on an interrupt is read again on resume.
 """
 
 from __future__ import annotations
@@ -26,7 +22,6 @@ import math
 import signal
 import sys
 import time
-from contextlib import closing
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable
@@ -40,7 +35,6 @@ from trainer.errors import Interrupted, UserError
 from trainer.evaluation import evaluate
 from trainer.metrics import fit_platt
 from trainer.model import Model, jsonable, load_model
-from trainer.prefetch import prefetch
 from trainer.reader import BucketExamples, Position, Reader
 from trainer.solvers import check_choice, check_float, check_int, make_solver, SOLVER_NAMES
 from trainer.spec import Spec
@@ -233,9 +227,9 @@ class Trainer:
         arrays = {f"solver.{k}": np.asarray(v) for k, v in self.solver.state(copy=False).items()}
         s = dataclasses.asdict(self.state)
         s["position"] = list(dataclasses.astuple(self.state.position)) if self.state.position else None
-        values, rows_left = self.reader.examples.snapshot()
+        ex = self.reader.examples
         save_checkpoint(self.ckpt, arrays, {"fingerprint": self._fingerprint(), "state": s,
-                                            "examples": {"values": values, "rows_left": rows_left}})
+                                            "examples": {"values": ex.values, "rows_left": ex.rows_left}})
         write_atomic(self.out / "progress.json", [json.dumps(self.state.progress).encode()])
 
     # -- the model --------------------------------------------------------------------------------
@@ -255,7 +249,7 @@ class Trainer:
                             "linear counting on the occupied buckets (ACM TODS 1990)",
                             "steps": self.state.steps, "data": self.data, "holdout_data": self.holdout_path,
                             "stopped_early": self.state.stopped_early, "best_pass": self.state.best_pass},
-                "holdout": holdout, "calibration": calibration, "examples": self.reader.examples.snapshot()[0]}
+                "holdout": holdout, "calibration": calibration, "examples": self.reader.examples.values}
         return Model(self.spec, weights, intercept, self.opt.loss, info)
 
     # -- the loop ---------------------------------------------------------------------------------
@@ -286,35 +280,34 @@ class Trainer:
                    disable=not (self.progress_bar and sys.stderr.isatty()),
                    mininterval=0.5, leave=False, dynamic_ncols=True)
         shown = time.monotonic()
-        with closing(prefetch(self.reader.batches(st.pass_index, st.position))) as batches:
-            for batch in batches:
-                loss = self.solver.step(batch)
-                w = float(batch.weights.sum())
-                st.pv_loss += loss * w
-                st.pv_weight += w
-                window_loss += loss * w
-                window_w += w
-                st.rows_in_pass += batch.n_rows
-                st.rows_total += batch.n_rows
-                st.steps += 1
-                st.position = batch.position
-                since_ckpt += batch.n_rows
-                if window_w and (st.rows_in_pass // point_rows) != ((st.rows_in_pass - batch.n_rows) // point_rows):
-                    st.progress.append({"rows": st.rows_total, "loss": window_loss / window_w})
-                    window_loss = window_w = 0.0
-                bar.update(batch.n_rows)
-                if time.monotonic() - shown > 0.5:
-                    bar.set_postfix_str(f"progressive loss {st.pv_loss / st.pv_weight:.5f}")
-                    shown = time.monotonic()
-                if since_ckpt >= opt.checkpoint_every:
-                    self._save_checkpoint()
-                    since_ckpt = 0
-                if stop.signal is not None:
-                    bar.close()
-                    self._save_checkpoint()
-                    name = signal.Signals(stop.signal).name
-                    raise Interrupted(f"{name}: stopped in pass {st.pass_index + 1} after {st.rows_in_pass:,} rows; "
-                                      f"checkpoint saved in {self.ckpt}; continue with the same command plus --resume")
+        for batch in self.reader.batches(st.pass_index, st.position):
+            loss = self.solver.step(batch)
+            w = float(batch.weights.sum())
+            st.pv_loss += loss * w
+            st.pv_weight += w
+            window_loss += loss * w
+            window_w += w
+            st.rows_in_pass += batch.n_rows
+            st.rows_total += batch.n_rows
+            st.steps += 1
+            st.position = batch.position
+            since_ckpt += batch.n_rows
+            if window_w and (st.rows_in_pass // point_rows) != ((st.rows_in_pass - batch.n_rows) // point_rows):
+                st.progress.append({"rows": st.rows_total, "loss": window_loss / window_w})
+                window_loss = window_w = 0.0
+            bar.update(batch.n_rows)
+            if time.monotonic() - shown > 0.5:
+                bar.set_postfix_str(f"progressive loss {st.pv_loss / st.pv_weight:.5f}")
+                shown = time.monotonic()
+            if since_ckpt >= opt.checkpoint_every:
+                self._save_checkpoint()
+                since_ckpt = 0
+            if stop.signal is not None:
+                bar.close()
+                self._save_checkpoint()
+                name = signal.Signals(stop.signal).name
+                raise Interrupted(f"{name}: stopped in pass {st.pass_index + 1} after {st.rows_in_pass:,} rows; "
+                                  f"checkpoint saved in {self.ckpt}; continue with the same command plus --resume")
         bar.close()
 
     def _finish_pass(self, train_seconds: float) -> None:
@@ -354,14 +347,13 @@ class Trainer:
         if self.opt.loss == "squared-hinge" and self.holdout is not None:
             margins, labels, weights = [], [], []
             rows = 0
-            with closing(prefetch(self.holdout.batches())) as batches:
-                for batch in batches:
-                    margins.append(model.margin(batch))
-                    labels.append(batch.labels)
-                    weights.append(batch.weights)
-                    rows += batch.n_rows
-                    if rows >= PLATT_ROWS:
-                        break
+            for batch in self.holdout.batches():
+                margins.append(model.margin(batch))
+                labels.append(batch.labels)
+                weights.append(batch.weights)
+                rows += batch.n_rows
+                if rows >= PLATT_ROWS:
+                    break
             a, b = fit_platt(np.concatenate(margins), np.concatenate(labels), np.concatenate(weights))
             calibration = {"method": "platt", "a": a, "b": b, "fitted_on": self.holdout_path, "rows": rows}
             model = Model(model.spec, model.weights, model.intercept, model.loss,
