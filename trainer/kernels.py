@@ -493,7 +493,7 @@ def line_residuals(code, labels, weights, z0, u, eps, r):
 @njit(cache=True, nogil=True)
 def commit_step(x, d, eps, s_out, store):
     """x += eps * d in place; when ``store``, also s_out = eps * d (the step of a new curvature pair,
-    rounded to s_out's dtype: float32 storage halves the memory traffic of :func:`two_loop`)."""
+    rounded to s_out's dtype: float32 storage halves the memory traffic of :func:`lbfgs_direction`)."""
     for j in range(x.shape[0]):
         sj = eps * d[j]
         x[j] = x[j] + sj

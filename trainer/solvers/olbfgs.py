@@ -7,8 +7,11 @@ Each step, on one batch:
 
 1. the stochastic gradient g of F at x_t = (w_t, b_t) (the intercept is coordinate n of x, not
    regularized);
-2. the direction d = H_t g by the two-loop recursion ("Updating Quasi-Newton Matrices with Limited
-   Storage", Mathematics of Computation, 1980) over the last ``history`` curvature pairs;
+2. the direction d = H_t g over the last ``history`` curvature pairs, with the coefficients of the
+   two-loop recursion ("Updating Quasi-Newton Matrices with Limited Storage", Mathematics of
+   Computation, 1980) taken from a small matrix of s_i.y_k products kept pair by pair (the
+   vector-free form of "Large-scale L-BFGS using MapReduce", NeurIPS 2014): two dense passes over
+   the stored steps per step, split in chunks over all cores (``trainer.kernels.lbfgs_direction``);
 3. x_{t+1} = x_t - eps d, where eps starts at the schedule eps_t = step0 * t0 / (t0 + t) and is
    halved until the Armijo condition F_B(x - eps d) <= F_B(x) - armijo * eps * g.d holds on the
    batch objective F_B (backtracking line search of "Painless Stochastic Gradient: Interpolation,
@@ -17,8 +20,8 @@ Each step, on one batch:
    with no decrease within 30 halvings gives a null step; no finite trial point raises ``Diverged``;
 4. the pair s = x_{t+1} - x_t, y = grad f(x_{t+1}; batch) - grad f(x_t; batch), measured on the SAME
    batch. Since y = X^T (r_1 - r_0) / C + l2 * s, only the data part (the batch's buckets and the
-   intercept) is stored; the l2 * s part is rebuilt from s inside the recursion. Pairs whose s.y is not
-   safely positive are skipped.
+   intercept) is stored; the l2 * s part is rebuilt from s inside the dense passes. Pairs whose s.y is
+   not safely positive are skipped.
 
 Initial matrix: diagonal, H0_jj = 1 / (D_j + l2 + prior_rows * D_b / R), where D is a running, then
 exponentially averaged (over about ``curvature_window`` steps) estimate of the batch Gauss-Newton
@@ -44,8 +47,8 @@ the holdout log-loss gap to the full-batch optimum after one pass):
   log-loss 11.8 / 5.1 / 12.9 over three passes; with it 0.1860 / 0.1605 / 0.1588 at l2 = 1e-4,
   LL* = 0.1575), and step0 = 0.3, t0 = 20 chosen on that demo among step0 in {0.2, 0.3, 0.5, 1},
   t0 in {10, 20, 100, 1000};
-* float32 storage of the steps s (``pair_dtype``): halves the memory traffic of the two-loop
-  recursion, which reads every stored s twice per step;
+* float32 storage of the steps s (``pair_dtype``): halves the memory traffic of the dense
+  passes, which read every stored s twice per step;
 * earlier notes without the line search: step0 = 0.2, t0 = 10: with F one-hot fields per row the diagonal preconditioner overestimates the
   safe step about F-fold along the direction shared by all fields, so step0 >= 0.5 overshoots in the
   first steps (+5% or worse), and a slower decay (step0 * t0 >= 3) keeps too much noise at the end of
@@ -78,8 +81,8 @@ class OnlineLBFGS(LinearSolver):
     ``armijo`` (sufficient-decrease constant, (0, 0.5], default 0.1), ``pair_dtype`` ("float32"
     or "float64", storage of the curvature steps, default "float32"). ``seconds`` accumulates the
     wall time of each phase (gradient, direction, line_search, update); it is not part of state().
-    Memory: history * (n_features + 1) float32 values and 4 * (n_features + 1) float64 values plus the sparse
-    gradient differences of the stored pairs.
+    Memory: history * (n_features + 1) float32 values and 3 * (n_features + 1) float64 values (one more
+    during the first step) plus the sparse gradient differences of the stored pairs.
     Raises ``UserError`` naming the option for a value out of range.
     """
 
@@ -219,8 +222,8 @@ class OnlineLBFGS(LinearSolver):
 
     def _finish(self, rows, started, gradient_done, direction_done, searched, done) -> None:
         """Count the step and add its phase times to ``seconds`` (sparse gradient and curvature
-        work, the dense two-loop recursion, the line search with the new curvature pair, the dense
-        weight update)."""
+        work, the dense passes of the direction, the line search with the new curvature pair, the
+        dense weight update)."""
         self.t += 1
         self._rows = rows
         sec = self.seconds
