@@ -13,7 +13,7 @@ import pytest
 import scipy.sparse as sp
 
 from trainer.errors import UserError
-from trainer.reader import Reader
+from trainer.reader import BucketExamples, Reader, _token_texts, _Tokens
 from trainer.spec import load_spec
 
 from conftest import SMALL_SPEC, make_table
@@ -90,6 +90,33 @@ def test_batches_match_contract_reference(small_log, dictionary):
     np.testing.assert_array_equal(labels, [r["clicked"] for r in rows])
     np.testing.assert_allclose(np.concatenate([b.weights for b in batches]), [r["w"] for r in rows])
     assert all(b.n_rows == 500 for b in batches[:-1])
+
+
+@pytest.mark.parametrize("dictionary", [True, False])
+def test_bucket_examples_are_tokens_of_their_bucket(small_log, dictionary):
+    # Reference: the README's hashing contract with mmh3 (token bytes -> bucket), and the tokens that
+    # reference_row builds from the rows themselves.
+    root, spec_path = small_log
+    spec = load_spec(spec_path)
+    examples = BucketExamples(spec.n_buckets)
+    list(Reader(spec, root, batch_rows=500, dictionary=dictionary, examples=examples).batches())
+    seed, mask = SMALL_SPEC["hashing"]["seed"], (1 << SMALL_SPEC["hashing"]["bits"]) - 1
+    assert examples.total == sum(len(v) for v in examples.values.values()) > 100
+    for bucket, texts in examples.values.items():
+        assert 1 <= len(texts) <= 2 and len(set(texts)) == len(texts)
+        for text in texts:
+            token = text.replace(" & ", "\x1e").replace("=", "\x1f").encode("utf-8")
+            assert mmh3.hash(token, seed, signed=False) & mask == int(bucket), text
+    assert "shop=é-ß-☃" in sum(examples.values.values(), [])
+    np.testing.assert_array_equal(np.flatnonzero(examples.count), sorted(int(b) for b in examples.values))
+
+
+def test_example_texts_replace_bytes_that_are_not_utf8():
+    # Reference: Python's bytes.decode(errors="replace") (from memory: U+FFFD for each bad byte).
+    buf = np.frombuffer(b"ok\xffx\x1eb\x1fz", dtype=np.uint8)
+    tok = _Tokens(ptr=np.array([0, 2]), ids=np.array([0, 1]), prefix=np.frombuffer(b"c\x1f", dtype=np.uint8),
+                  buf=buf, off=np.array([0, 2, 8]))
+    assert _token_texts(tok, np.array([1, 0])) == ["c=\ufffdx & b=z", "c=ok"]
 
 
 def test_dictionary_and_plain_paths_identical(small_log):

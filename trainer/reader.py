@@ -366,14 +366,39 @@ class BucketExamples:
         ids, b = ids[room], b[room]
         _, first = np.unique(b, return_index=True)
         first = first[: max(self.max_values - self.total, 0)]
-        for k, bucket in zip(ids[first].tolist(), b[first].tolist()):
-            raw = tok.prefix.tobytes() + tok.buf[tok.off[k]:tok.off[k + 1]].tobytes()
-            text = raw.decode("utf-8", errors="replace").replace("\x1f", "=").replace("\x1e", " & ")
+        ids, b = ids[first], b[first]
+        added = []
+        for text, bucket in zip(_token_texts(tok, ids), b.tolist()):
             seen = self.values.setdefault(str(bucket), [])
             if text not in seen:
                 seen.append(text)
-                self.count[bucket] += 1
-                self.total += 1
+                added.append(bucket)
+        self.count[np.asarray(added, dtype=np.int64)] += 1
+        self.total += len(added)
+
+
+def _readable(text: str) -> str:
+    """A token as reports show it: field = value, crossed parts joined by ' & '."""
+    return text.replace("\x1f", "=").replace("\x1e", " & ")
+
+
+def _token_texts(tok: "_Tokens", ids: np.ndarray) -> list[str]:
+    """Readable texts of tokens ``ids`` of a token table (prefix + bytes), decoded in one Arrow call;
+    bytes that are not UTF-8 are decoded one by one with replacement characters."""
+    starts, lengths = tok.off[ids], tok.off[ids + 1] - tok.off[ids]
+    offsets = np.zeros(len(ids) + 1, dtype=np.int64)
+    np.cumsum(lengths, out=offsets[1:])
+    gather = np.repeat(starts - offsets[:-1], lengths) + np.arange(offsets[-1])
+    data = tok.buf[gather]
+    prefix = _readable(tok.prefix.tobytes().decode("utf-8", errors="replace"))
+    arr = pa.LargeStringArray.from_buffers(len(ids), pa.py_buffer(offsets), pa.py_buffer(data))
+    try:
+        arr.validate(full=True)
+    except pa.ArrowInvalid:
+        return [prefix + _readable(data[offsets[i]:offsets[i + 1]].tobytes().decode("utf-8", errors="replace"))
+                for i in range(len(ids))]
+    arr = pc.replace_substring(pc.replace_substring(arr, "\x1f", "="), "\x1e", " & ")
+    return [prefix + t for t in arr.to_pylist()]
 
 
 class Featurizer:
