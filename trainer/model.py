@@ -56,6 +56,8 @@ def jsonable(obj):
     """A copy of ``obj`` that strict JSON can hold: numpy scalars and arrays become Python numbers
     and lists, tuples become lists, paths and dates become text, non-finite floats (undefined
     metrics) become None."""
+    if isinstance(obj, str):
+        return obj
     if isinstance(obj, dict):
         return {str(k): jsonable(v) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):
