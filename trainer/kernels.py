@@ -263,6 +263,28 @@ def _sparse_dot(t, lo, idx, val, first, last):
     return acc
 
 
+@njit(cache=True, nogil=True)
+def _pair_products(out, S, order, m, t, lo, top, c, yptr, yidx, yval, ychunk):
+    """For chunk ``c`` of a vector whose values on [lo, lo + len(t)) are ``t``: out[i] = s_{order[i]} . t
+    over the regularized part [lo, top) and out[m + i] = y_sparse_{order[i]} . t (the pair's entries
+    in the chunk, from its chunk pointers)."""
+    for i in range(m):
+        k = order[i]
+        out[i] = _dot(S[k, lo:top], t[:top - lo])
+        out[m + i] = _sparse_dot(t, lo, yidx, yval, yptr[k] + ychunk[k, c], yptr[k] + ychunk[k, c + 1])
+
+
+@njit(cache=True, nogil=True)
+def _chunk_totals(part):
+    """Column sums of per-chunk partial sums, added in chunk order (the same bits for any thread
+    count)."""
+    totals = np.zeros(part.shape[1])
+    for c in range(part.shape[0]):
+        for col in range(part.shape[1]):
+            totals[col] += part[c, col]
+    return totals
+
+
 @njit(cache=True, parallel=True, nogil=True)
 def precondition_pass(x, S, order, m, alpha, lam, n_reg, diag, diag_scale, damp, gcols, gvals, gptr, yptr,
                       yidx, yval, ychunk, q, e, b):
@@ -295,18 +317,10 @@ def precondition_pass(x, S, order, m, alpha, lam, n_reg, diag, diag_scale, damp,
         _precondition(reg, diag[lo:top], diag_scale, damp + lam)
         _precondition(tmp[top - lo:], diag[top:hi], diag_scale, damp)
         q[lo:hi] = tmp
-        for i in range(m):
-            k = order[i]
-            part[c, i] = _dot(S[k, lo:top], reg)
-            part[c, m + i] = _sparse_dot(tmp, lo, yidx, yval, yptr[k] + ychunk[k, c], yptr[k] + ychunk[k, c + 1])
-    for i in range(m):
-        te = 0.0
-        tb = 0.0
-        for c in range(chunks):
-            te += part[c, i]
-            tb += part[c, m + i]
-        e[i] = te
-        b[i] = tb
+        _pair_products(part[c], S, order, m, tmp, lo, top, c, yptr, yidx, yval, ychunk)
+    totals = _chunk_totals(part)
+    e[:] = totals[:m]
+    b[:] = totals[m:2 * m]
 
 
 @njit(cache=True, parallel=True, nogil=True)
@@ -333,29 +347,14 @@ def combine_pass(q, S, order, m, coef, x, n_reg, yptr, yidx, yval, ychunk, p, yd
             _axpy(tmp, coef[i], S[order[i], lo:hi])
         xs = x[lo:hi]
         reg = tmp[:top - lo]
-        for i in range(m):
-            k = order[i]
-            part[c, i] = _dot(S[k, lo:top], reg)
-            part[c, m + i] = _sparse_dot(tmp, lo, yidx, yval, yptr[k] + ychunk[k, c], yptr[k] + ychunk[k, c + 1])
+        _pair_products(part[c], S, order, m, tmp, lo, top, c, yptr, yidx, yval, ychunk)
         part[c, width] = _dot(xs[:top - lo], reg)
         part[c, width + 1] = _dot(reg, reg)
         part[c, width + 2] = _abs_sum(xs) + _abs_sum(tmp)
-    for i in range(m):
-        tp = 0.0
-        ty = 0.0
-        for c in range(chunks):
-            tp += part[c, i]
-            ty += part[c, m + i]
-        p[i] = tp
-        yd[i] = ty
-    xd = 0.0
-    dd = 0.0
-    bound = 0.0
-    for c in range(chunks):
-        xd += part[c, width]
-        dd += part[c, width + 1]
-        bound += part[c, width + 2]
-    return xd, dd, bound
+    totals = _chunk_totals(part)
+    p[:] = totals[:m]
+    yd[:] = totals[m:2 * m]
+    return totals[width], totals[width + 1], totals[width + 2]
 
 
 @njit(cache=True, nogil=True)
