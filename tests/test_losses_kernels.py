@@ -328,4 +328,6 @@ def test_line_kernels_match_numpy():
     cols = np.array([4, 0, 9], dtype=np.int32)
     vals = rng.normal(size=3)
     # reference: numpy fancy indexing and an inner product
-    assert sparse_dot(cols, vals, x, 0.5, x[17]) == pytest.approx(vals @ x[cols] + 0.5 * x[17], rel=1e-12)
+    assert sparse_dot(x, 0, np.append(cols, 17), np.append(vals, 0.5), 0, 4) == pytest.approx(
+        vals @ x[cols] + 0.5 * x[17], rel=1e-12)
+    assert sparse_dot(x[4:], 4, cols[[0, 2]], vals[[0, 2]], 0, 2) == pytest.approx(vals[[0, 2]] @ x[[4, 9]], rel=1e-12)

@@ -255,8 +255,9 @@ def _sparse_add(t, lo, idx, val, a, first, last):
 
 
 @njit(cache=True, nogil=True)
-def _sparse_dot(t, lo, idx, val, first, last):
-    """sum_{p in [first, last)} val[p] * t[idx[p] - lo]."""
+def sparse_dot(t, lo, idx, val, first, last):
+    """sum_{p in [first, last)} val[p] * t[idx[p] - lo]: a sparse vector (indices ``idx``, values
+    ``val``) against the values ``t`` of coordinates lo, lo + 1, ..."""
     acc = 0.0
     for p in range(first, last):
         acc += val[p] * t[idx[p] - lo]
@@ -271,7 +272,7 @@ def _pair_products(out, S, order, m, t, lo, top, c, yptr, yidx, yval, ychunk):
     for i in range(m):
         k = order[i]
         out[i] = _dot(S[k, lo:top], t[:top - lo])
-        out[m + i] = _sparse_dot(t, lo, yidx, yval, yptr[k] + ychunk[k, c], yptr[k] + ychunk[k, c + 1])
+        out[m + i] = sparse_dot(t, lo, yidx, yval, yptr[k] + ychunk[k, c], yptr[k] + ychunk[k, c + 1])
 
 
 @njit(cache=True, nogil=True)
@@ -455,16 +456,6 @@ def fold_diagonal(diag, scale, beta, cols, curv, curv_last):
         diag[cols[t]] += f * curv[t]
     diag[diag.shape[0] - 1] += f * curv_last
     return scale
-
-
-@njit(cache=True, nogil=True)
-def sparse_dot(cols, vals, d, last, d_last):
-    """sum_p vals[p] * d[cols[p]] + last * d_last: a gradient held on the batch's buckets (plus the
-    intercept entry ``last``) against a dense direction."""
-    acc = last * d_last
-    for p in range(cols.shape[0]):
-        acc += vals[p] * d[cols[p]]
-    return acc
 
 
 @njit(cache=True, nogil=True)

@@ -159,7 +159,7 @@ class OnlineLBFGS(LinearSolver):
             self._diverged("the search direction")
         direction_done = clock()
 
-        gq = sparse_dot(g0.cols, g0.gsp, q, g0.gb, q[n]) + self.l2 * xq
+        gq = sparse_dot(q, 0, gcols, gvals, 0, gcols.shape[0]) + self.l2 * xq
         eps = self._line_search(batch, g0, q, xq, qq_reg, bound, gq)
         searched = clock()
         if eps == 0.0:
