@@ -201,8 +201,9 @@ def _axpy(out, a, v):
 
 @njit(cache=True, nogil=True, fastmath=VECTOR_MATH)
 def _dot(u, v):
-    """sum_j u[j] * v[j] over equally long 1-D arrays."""
-    acc = 0.0
+    """sum_j u[j] * v[j] over equally long 1-D arrays, accumulated in ``u``'s dtype (float32 lanes are
+    twice as many per instruction as float64 ones)."""
+    acc = u.dtype.type(0)
     for j in range(u.shape[0]):
         acc += u[j] * v[j]
     return acc
@@ -296,21 +297,24 @@ def precondition_pass(x, S, order, m, alpha, lam, n_reg, diag, diag_scale, damp,
     1 / (diag_scale * diag_j + damp (+ lam for j < n_reg)), 0 where that denominator is not positive,
     and the inner products e_t = sum_{j < n_reg} s_{order[t], j} (H0 q)_j and b_t = y_sparse_{order[t]} .
     (H0 q). Sparse vectors are ascending; ``gptr`` (for g) and ``ychunk[k]`` (for pair k, offsets within
-    its own entries from ``yptr[k]``) are their :func:`chunk_pointers`.
+    its own entries from ``yptr[k]``) are their :func:`chunk_pointers`. The dense work is done in
+    ``q``'s dtype (the pairs' storage precision), sums over chunks in float64.
     """
     size = q.shape[0]
     chunks = (size + CHUNK - 1) // CHUNK
     part = np.zeros((chunks, 2 * max(m, 1)))
+    minus_alpha = (-alpha).astype(q.dtype)
+    lam_w = q.dtype.type(lam)
     for c in prange(chunks):
         lo = c * CHUNK
         hi = min(size, lo + CHUNK)
         top = max(lo, min(hi, n_reg))
-        tmp = np.zeros(hi - lo)
+        tmp = np.zeros(hi - lo, dtype=q.dtype)
         reg = tmp[:top - lo]
         reg[:] = x[lo:top]
         for i in range(m):
-            _axpy(reg, -alpha[i], S[order[i], lo:top])
-        _scale(reg, lam)
+            _axpy(reg, minus_alpha[i], S[order[i], lo:top])
+        _scale(reg, lam_w)
         _sparse_add(tmp, lo, gcols, gvals, 1.0, gptr[c], gptr[c + 1])
         for i in range(m):
             k = order[i]
@@ -339,13 +343,14 @@ def combine_pass(q, S, order, m, coef, x, n_reg, yptr, yidx, yval, ychunk, p, yd
     chunks = (size + CHUNK - 1) // CHUNK
     width = 2 * max(m, 1)
     part = np.zeros((chunks, width + 3))
+    coef_w = coef.astype(q.dtype)
     for c in prange(chunks):
         lo = c * CHUNK
         hi = min(size, lo + CHUNK)
         top = max(lo, min(hi, n_reg))
         tmp = q[lo:hi]
         for i in range(m):
-            _axpy(tmp, coef[i], S[order[i], lo:hi])
+            _axpy(tmp, coef_w[i], S[order[i], lo:hi])
         xs = x[lo:hi]
         reg = tmp[:top - lo]
         _pair_products(part[c], S, order, m, tmp, lo, top, c, yptr, yidx, yval, ychunk)
