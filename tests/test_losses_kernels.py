@@ -38,9 +38,9 @@ def _csr(batch, n):
 def _objective(loss, batch, n, lam):
     """F(x) and its gradient through the project's kernels, x = (w, b)."""
     code = loss_code(loss)
-    mark = np.full(n, -1, dtype=np.int32)
+    bits = np.zeros((n + 63) // 64, dtype=np.uint64)
     slot = np.empty(batch.indices.shape[0], dtype=np.int32)
-    cols = batch_support(batch.indices, mark, slot)
+    cols = batch_support(batch.indices, bits, slot)
 
     def f(x):
         z = np.empty(batch.n_rows)
@@ -154,10 +154,10 @@ def test_gauss_newton_diagonal_matches_dense_product(loss):
     z = rng.normal(size=batch.n_rows)
     h = np.empty(batch.n_rows)
     curvatures_into(loss_code(loss), batch.labels, batch.weights, z, h)
-    mark = np.full(n, -1, dtype=np.int32)
+    bits = np.zeros((n + 63) // 64, dtype=np.uint64)
     slot = np.empty(batch.indices.shape[0], dtype=np.int32)
-    cols = batch_support(batch.indices, mark, slot)
-    assert (mark == -1).all()
+    cols = batch_support(batch.indices, bits, slot)
+    assert not bits.any()
     # reference: numpy's sorted distinct values, and the slot of each entry pointing back to its bucket
     np.testing.assert_array_equal(cols, np.unique(batch.indices))
     np.testing.assert_array_equal(cols[slot], batch.indices)
@@ -169,6 +169,21 @@ def test_gauss_newton_diagonal_matches_dense_product(loss):
     np.testing.assert_allclose(out, ref[cols], rtol=1e-12, atol=1e-14)
     absent = np.setdiff1d(np.arange(n), cols)
     assert np.all(ref[absent] == 0)
+
+
+def test_batch_support_matches_numpy_unique_across_bitmap_words():
+    rng = np.random.default_rng(15)
+    n = 5 * 64 + 7
+    edges = np.array([0, 63, 64, 127, 128, n - 1, 63, 0], dtype=np.int32)  # word edges, repeated
+    indices = np.concatenate([edges, rng.integers(0, n, 500).astype(np.int32)])
+    bits = np.zeros((n + 63) // 64, dtype=np.uint64)
+    slot = np.empty(indices.shape[0], dtype=np.int32)
+    cols = batch_support(indices, bits, slot)
+    # reference: numpy.unique's sorted distinct values and inverse indices
+    ref, inverse = np.unique(indices, return_inverse=True)
+    np.testing.assert_array_equal(cols, ref)
+    np.testing.assert_array_equal(slot, inverse)
+    assert not bits.any()  # the scratch bitmap is handed back cleared
 
 
 def _pairs(rng, n, lam, history, dtype):

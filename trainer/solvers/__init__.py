@@ -141,7 +141,7 @@ class LinearSolver:
         self.code = loss_code(loss)
         self.l2 = check_float("--l2", l2, 0.0, 1e6)
         self._x = np.zeros(self.n + 1, dtype=np.float64)
-        self._mark = np.full(self.n, -1, dtype=np.int32)
+        self._bits = np.zeros((self.n + 63) // 64, dtype=np.uint64)
         self.t = 0
 
     @property
@@ -166,7 +166,7 @@ class LinearSolver:
         """Evaluate the batch at the current weights; raise ``Diverged`` when the result is non-finite."""
         self._check_batch(batch)
         slot = np.empty(batch.indices.shape[0], dtype=np.int32)
-        cols = batch_support(batch.indices, self._mark, slot)
+        cols = batch_support(batch.indices, self._bits, slot)
         g = BatchGradient(batch, cols, slot)
         if not g.evaluate(self.code, self._x[: self.n], self._x[self.n]):
             self._diverged("the loss or its gradient")
