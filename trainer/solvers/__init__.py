@@ -115,7 +115,7 @@ class BatchGradient:
     def evaluate(self, code: int, w: np.ndarray, b: float) -> bool:
         """Fill every attribute at weights (w, b); return True when loss and gradient are finite."""
         bt = self.batch
-        margins_into(bt.indptr, bt.indices, bt.data, w, b, self.z)
+        margins_into(bt.indptr, self.slot, bt.data, w[self.cols], b, self.z)
         loss_sum, weight_sum, r_sum = residuals_into(code, bt.labels, bt.weights, self.z, self.r)
         self.weight_sum = weight_sum
         self.loss = loss_sum / weight_sum

@@ -206,7 +206,7 @@ class OnlineLBFGS(LinearSolver):
         the L2 term changes by l2/2 (eps^2 q.q - 2 eps w.q): no dense work per trial.
         Raises ``Diverged`` when no trial point has a finite objective."""
         self._u = u = np.empty(batch.n_rows, dtype=np.float64)
-        margins_into(batch.indptr, batch.indices, batch.data, q, q[self.n], u)
+        margins_into(batch.indptr, g0.slot, batch.data, q[g0.cols], float(q[self.n]), u)
         eps = schedule(self.step0, self.t0, self.t)
         if not (gq > 0.0 and math.isfinite(gq)):
             return 0.0
