@@ -371,6 +371,40 @@ def combine_pass(q, S, order, m, coef, x, n_reg, yptr, yidx, yval, ychunk, p, yd
 
 
 @njit(cache=True, nogil=True)
+def _first_loop(gcols, gvals, S, order, m, rho, G, z, lam):
+    """First loop of the recursion from the small matrices: alpha_t = rho (s.g - sum_{t' > t} alpha_t'
+    G), newest pair first, with s.g = s at ``gcols`` . ``gvals`` + lam * z. Returns alpha and Sg (the
+    stored steps at ``gcols``, reused by :func:`record_pair`)."""
+    alpha = np.empty(m)
+    Sg = np.empty((m, gcols.shape[0]))
+    for i in range(m - 1, -1, -1):
+        k = order[i]
+        row = S[k]
+        a = lam * z[k]
+        for t in range(gcols.shape[0]):
+            v = row[gcols[t]]
+            Sg[i, t] = v
+            a += v * gvals[t]
+        for i2 in range(i + 1, m):
+            a -= alpha[i2] * G[k, order[i2]]
+        alpha[i] = rho[k] * a
+    return alpha, Sg
+
+
+@njit(cache=True, nogil=True)
+def _second_loop(order, m, rho, G, alpha, lam, e, b):
+    """Second loop of the recursion, oldest pair first: coef_t = alpha_t - rho (y.H0q + sum_{t' < t}
+    coef_t' G), with y.H0q = lam * e_t + b_t from :func:`precondition_pass`."""
+    coef = np.empty(m)
+    for i in range(m):
+        k = order[i]
+        acc = lam * e[i] + b[i]
+        for i2 in range(i):
+            acc += coef[i2] * G[order[i2], k]
+        coef[i] = alpha[i] - rho[k] * acc
+    return coef
+
+
 def lbfgs_direction(x, gcols, gvals, gptr, S, order, m, rho, G, z, yptr, yidx, yval, ychunk, lam, n_reg, diag,
                     diag_scale, damp, q):
     """Write d = H g into ``q``, H the limited-memory BFGS inverse-Hessian approximation; return
@@ -388,33 +422,19 @@ def lbfgs_direction(x, gcols, gvals, gptr, S, order, m, rho, G, z, yptr, yidx, y
     Storage" (Mathematics of Computation, 1980), but its inner products come from the small matrix G,
     as in the vector-free L-BFGS of "Large-scale L-BFGS using MapReduce" (NeurIPS 2014): with y
     sparse plus lam * s, the dense work is two passes over the stored steps instead of 2m.
+
+    A plain Python function on purpose: the parallel passes are only ever called from Python, never
+    from another compiled function, because a compiled caller that embeds a parallel callee taken
+    from numba's on-disk cache can crash the process (seen with numba 0.68).
     """
-    alpha = np.empty(m)
-    coef = np.empty(m)
+    alpha, Sg = _first_loop(gcols, gvals, S, order, m, rho, G, z, lam)
     e = np.empty(m)
     b = np.empty(m)
-    p = np.empty(m)
-    yd = np.empty(m)
-    Sg = np.empty((m, gcols.shape[0]))
-    for i in range(m - 1, -1, -1):
-        k = order[i]
-        row = S[k]
-        a = lam * z[k]
-        for t in range(gcols.shape[0]):
-            v = row[gcols[t]]
-            Sg[i, t] = v
-            a += v * gvals[t]
-        for i2 in range(i + 1, m):
-            a -= alpha[i2] * G[k, order[i2]]
-        alpha[i] = rho[k] * a
     precondition_pass(x, S, order, m, alpha, lam, n_reg, diag, diag_scale, damp, gcols, gvals, gptr, yptr, yidx,
                       yval, ychunk, q, e, b)
-    for i in range(m):
-        k = order[i]
-        acc = lam * e[i] + b[i]
-        for i2 in range(i):
-            acc += coef[i2] * G[order[i2], k]
-        coef[i] = alpha[i] - rho[k] * acc
+    coef = _second_loop(order, m, rho, G, alpha, lam, e, b)
+    p = np.empty(m)
+    yd = np.empty(m)
     xd, dd, bound = combine_pass(q, S, order, m, coef, x, n_reg, yptr, yidx, yval, ychunk, p, yd)
     return xd, dd, bound, p, yd, Sg
 
