@@ -207,7 +207,7 @@ def _axpy(out, a, v):
 
 
 @njit(cache=True, nogil=True, fastmath=VECTOR_MATH)
-def _dot(u, v):
+def dot(u, v):
     """sum_j u[j] * v[j] over equally long 1-D arrays, accumulated in ``u``'s dtype (float32 lanes are
     twice as many per instruction as float64 ones)."""
     acc = u.dtype.type(0)
@@ -279,7 +279,7 @@ def _pair_products(out, S, order, m, t, lo, top, c, yptr, yidx, yval, ychunk):
     in the chunk, from its chunk pointers)."""
     for i in range(m):
         k = order[i]
-        out[i] = _dot(S[k, lo:top], t[:top - lo])
+        out[i] = dot(S[k, lo:top], t[:top - lo])
         out[m + i] = sparse_dot(t, lo, yidx, yval, yptr[k] + ychunk[k, c], yptr[k] + ychunk[k, c + 1])
 
 
@@ -361,8 +361,8 @@ def combine_pass(q, S, order, m, coef, x, n_reg, yptr, yidx, yval, ychunk, p, yd
         xs = x[lo:hi]
         reg = tmp[:top - lo]
         _pair_products(part[c], S, order, m, tmp, lo, top, c, yptr, yidx, yval, ychunk)
-        part[c, width] = _dot(xs[:top - lo], reg)
-        part[c, width + 1] = _dot(reg, reg)
+        part[c, width] = dot(xs[:top - lo], reg)
+        part[c, width + 1] = dot(reg, reg)
         part[c, width + 2] = _abs_sum(xs) + _abs_sum(tmp)
     totals = _chunk_totals(part)
     p[:] = totals[:m]
@@ -541,24 +541,24 @@ def shifted_margins_into(indptr, indices, data, x, d, eps, n, out):
 
 
 @njit(cache=True, nogil=True)
-def pair_products(d, eps, dd_reg, yidx, yval, lam, n_reg):
+def pair_products(dc, eps, dd_reg, yidx, yval, lam, n_reg):
     """For s = eps * d and y = y_sparse + lam * s[:n_reg] (y_sparse on the distinct indices ``yidx``),
-    return (s.y, y.y, s.s); ``dd_reg`` is sum_{j < n_reg} d_j^2 from :func:`check_step`."""
+    return (s.y, y.y, s.s). ``dc[k]`` is d at ``yidx[k]``, ``dd_reg`` is sum_{j < n_reg} d_j^2 (from
+    :func:`combine_pass`); the unregularized coordinates j >= n_reg must be among ``yidx``."""
     ss_reg = eps * eps * dd_reg
     ss = ss_reg
-    for j in range(n_reg, d.shape[0]):
-        ss += eps * eps * d[j] * d[j]
     sy_sparse = 0.0
     yy_sparse = 0.0
     cross = 0.0
     for k in range(yidx.shape[0]):
-        j = yidx[k]
         v = yval[k]
-        sj = eps * d[j]
+        sj = eps * dc[k]
         sy_sparse += sj * v
         yy_sparse += v * v
-        if j < n_reg:
+        if yidx[k] < n_reg:
             cross += sj * v
+        else:
+            ss += sj * sj
     sy = sy_sparse + lam * ss_reg
     yy = yy_sparse + 2.0 * lam * cross + lam * lam * ss_reg
     return sy, yy, ss

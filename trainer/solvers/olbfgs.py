@@ -69,9 +69,9 @@ import time
 import numpy as np
 
 from trainer.errors import UserError
-from trainer.kernels import (CHUNK, chunk_pointers, commit_step, curvatures_into, fold_diagonal, lbfgs_direction,
+from trainer.kernels import (CHUNK, chunk_pointers, commit_step, curvatures_into, dot, fold_diagonal, lbfgs_direction,
                              line_loss, line_residuals, margins_into, pair_products, record_pair, scatter_compact,
-                             scatter_compact_squares, sparse_dot)
+                             scatter_compact_squares)
 from trainer.solvers import LinearSolver, check_choice, check_float, check_int, schedule
 
 
@@ -163,8 +163,9 @@ class OnlineLBFGS(LinearSolver):
             self._diverged("the search direction")
         direction_done = clock()
 
-        gq = sparse_dot(q, 0, gcols, gvals, 0, gcols.shape[0]) + self.l2 * xq
-        eps = self._line_search(batch, g0, q, xq, qq_reg, bound, gq)
+        qc = q[gcols]
+        gq = dot(gvals, qc) + self.l2 * xq
+        eps = self._line_search(batch, g0, qc, xq, qq_reg, bound, gq)
         searched = clock()
         if eps == 0.0:
             self._fold(beta, g0.cols, curv, hb)
@@ -178,7 +179,7 @@ class OnlineLBFGS(LinearSolver):
         ysp[-1] = float(dr.sum()) / g0.weight_sum
         if not np.isfinite(ysp).all():
             self._diverged("the gradient at the new weights")
-        sy, yy, ss = pair_products(q, -eps, qq_reg, gcols, ysp, self.l2, n)
+        sy, yy, ss = pair_products(qc, -eps, qq_reg, gcols, ysp, self.l2, n)
         paired = clock()
 
         k = self._head
@@ -200,13 +201,14 @@ class OnlineLBFGS(LinearSolver):
         """Fold this batch's Gauss-Newton diagonal into the running one (after the step used the old one)."""
         self._diag_scale = fold_diagonal(self._diag, self._diag_scale, beta, cols, curv, curv_last)
 
-    def _line_search(self, batch, g0, q, xq: float, qq_reg: float, bound: float, gq: float) -> float:
-        """Backtracking Armijo search on the batch objective along -q; returns the accepted step
-        (0.0 for a null step). The margins along the line are z0 - eps * u with u = X_B q + q_b,
-        the L2 term changes by l2/2 (eps^2 q.q - 2 eps w.q): no dense work per trial.
+    def _line_search(self, batch, g0, qc, xq: float, qq_reg: float, bound: float, gq: float) -> float:
+        """Backtracking Armijo search on the batch objective along -q (``qc``: q at the batch's buckets,
+        then the intercept); returns the accepted step (0.0 for a null step). The margins along the line
+        are z0 - eps * u with u = X_B q + q_b, the L2 term changes by l2/2 (eps^2 q.q - 2 eps w.q): no
+        dense work per trial.
         Raises ``Diverged`` when no trial point has a finite objective."""
         self._u = u = np.empty(batch.n_rows, dtype=np.float64)
-        margins_into(batch.indptr, g0.slot, batch.data, q[g0.cols], float(q[self.n]), u)
+        margins_into(batch.indptr, g0.slot, batch.data, qc, float(qc[-1]), u)
         eps = schedule(self.step0, self.t0, self.t)
         if not (gq > 0.0 and math.isfinite(gq)):
             return 0.0
