@@ -370,25 +370,35 @@ def combine_pass(q, S, order, m, coef, x, n_reg, yptr, yidx, yval, ychunk, p, yd
     return totals[width], totals[width + 1], totals[width + 2]
 
 
-@njit(cache=True, nogil=True)
-def _first_loop(gcols, gvals, S, order, m, rho, G, z, lam):
-    """First loop of the recursion from the small matrices: alpha_t = rho (s.g - sum_{t' > t} alpha_t'
-    G), newest pair first, with s.g = s at ``gcols`` . ``gvals`` + lam * z. Returns alpha and Sg (the
-    stored steps at ``gcols``, reused by :func:`record_pair`)."""
-    alpha = np.empty(m)
+@njit(cache=True, parallel=True, nogil=True)
+def gather_steps(S, order, m, gcols, gvals):
+    """Sg[t, :] = s_{order[t]} at ``gcols`` and sg[t] = Sg[t] . ``gvals``, the stored steps split over
+    all cores (random reads from memory: two cores keep twice as many in flight)."""
     Sg = np.empty((m, gcols.shape[0]))
-    for i in range(m - 1, -1, -1):
-        k = order[i]
-        row = S[k]
-        a = lam * z[k]
+    sg = np.empty(m)
+    for i in prange(m):
+        row = S[order[i]]
+        acc = 0.0
         for t in range(gcols.shape[0]):
             v = row[gcols[t]]
             Sg[i, t] = v
-            a += v * gvals[t]
+            acc += v * gvals[t]
+        sg[i] = acc
+    return Sg, sg
+
+
+@njit(cache=True, nogil=True)
+def _first_loop(sg, order, m, rho, G, z, lam):
+    """First loop of the recursion from the small matrices: alpha_t = rho (s.g - sum_{t' > t} alpha_t'
+    G), newest pair first, with s.g = ``sg`` + lam * z (``sg`` from :func:`gather_steps`)."""
+    alpha = np.empty(m)
+    for i in range(m - 1, -1, -1):
+        k = order[i]
+        a = lam * z[k] + sg[i]
         for i2 in range(i + 1, m):
             a -= alpha[i2] * G[k, order[i2]]
         alpha[i] = rho[k] * a
-    return alpha, Sg
+    return alpha
 
 
 @njit(cache=True, nogil=True)
@@ -423,11 +433,12 @@ def lbfgs_direction(x, gcols, gvals, gptr, S, order, m, rho, G, z, yptr, yidx, y
     as in the vector-free L-BFGS of "Large-scale L-BFGS using MapReduce" (NeurIPS 2014): with y
     sparse plus lam * s, the dense work is two passes over the stored steps instead of 2m.
 
-    A plain Python function on purpose: the parallel passes are only ever called from Python, never
+    A plain Python function on purpose: the parallel kernels are only ever called from Python, never
     from another compiled function, because a compiled caller that embeds a parallel callee taken
     from numba's on-disk cache can crash the process (seen with numba 0.68).
     """
-    alpha, Sg = _first_loop(gcols, gvals, S, order, m, rho, G, z, lam)
+    Sg, sg = gather_steps(S, order, m, gcols, gvals)
+    alpha = _first_loop(sg, order, m, rho, G, z, lam)
     e = np.empty(m)
     b = np.empty(m)
     precondition_pass(x, S, order, m, alpha, lam, n_reg, diag, diag_scale, damp, gcols, gvals, gptr, yptr, yidx,
