@@ -360,7 +360,9 @@ class BucketExamples:
 
     def add(self, tok: "_Tokens", buckets: np.ndarray) -> None:
         """Record values of the tokens ``tok`` uses whose buckets have room."""
-        ids = np.unique(tok.ids)
+        used = np.zeros(tok.off.shape[0] - 1, dtype=bool)
+        used[tok.ids] = True
+        ids = np.flatnonzero(used)
         b = buckets[ids]
         room = self.count[b] < self.per_bucket
         ids, b = ids[room], b[room]
@@ -368,11 +370,17 @@ class BucketExamples:
         first = first[: max(self.max_values - self.total, 0)]
         ids, b = ids[first], b[first]
         added = []
+        values = self.values
         for text, bucket in zip(_token_texts(tok, ids), b.tolist()):
-            seen = self.values.setdefault(str(bucket), [])
-            if text not in seen:
+            key = str(bucket)
+            seen = values.get(key)
+            if seen is None:
+                values[key] = [text]
+            elif text not in seen:
                 seen.append(text)
-                added.append(bucket)
+            else:
+                continue
+            added.append(bucket)
         self.count[np.asarray(added, dtype=np.int64)] += 1
         self.total += len(added)
 
