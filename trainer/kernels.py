@@ -17,7 +17,6 @@ every stored s once.
 from __future__ import annotations
 
 import numpy as np
-from llvmlite import ir
 from numba import njit, prange, types
 from numba.extending import intrinsic
 
@@ -94,7 +93,7 @@ def _popcount(typingctx, word):
 def _lowest_bit(typingctx, word):
     """Position of the lowest set bit of a nonzero uint64."""
     def codegen(context, builder, signature, args):
-        return builder.cttz(args[0], ir.Constant(ir.IntType(1), 1))
+        return builder.cttz(args[0], context.get_constant(types.boolean, True))
     return types.uint64(types.uint64), codegen
 
 
