@@ -534,23 +534,6 @@ def commit_step(x, d, eps, s_out, store):
 
 
 @njit(cache=True, nogil=True)
-def shifted_margins_into(indptr, indices, data, x, d, eps, n, out):
-    """Margins at the trial point x + eps * d (bucket weights x[:n], intercept x[n]) without forming it.
-
-    Each weight is evaluated as x[j] + eps * d[j], the same expression :func:`commit_step` stores, so the
-    margins equal those at the committed weights bit for bit.
-    """
-    n_rows = indptr.shape[0] - 1
-    b = x[n] + eps * d[n]
-    for i in range(n_rows):
-        acc = b
-        for k in range(indptr[i], indptr[i + 1]):
-            j = indices[k]
-            acc += data[k] * (x[j] + eps * d[j])
-        out[i] = acc
-
-
-@njit(cache=True, nogil=True)
 def pair_products(dc, eps, dd_reg, yidx, yval, lam, n_reg):
     """For s = eps * d and y = y_sparse + lam * s[:n_reg] (y_sparse on the distinct indices ``yidx``),
     return (s.y, y.y, s.s). ``dc[k]`` is d at ``yidx[k]``, ``dd_reg`` is sum_{j < n_reg} d_j^2 (from

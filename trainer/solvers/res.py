@@ -24,8 +24,8 @@ import scipy.linalg
 import scipy.linalg.blas
 
 from trainer.errors import UserError
-from trainer.kernels import (curvatures_into, regularized_gradient, residuals_into, scatter_compact,
-                             scatter_compact_squares, shifted_margins_into)
+from trainer.kernels import (curvatures_into, margins_into, regularized_gradient, residuals_into, scatter_compact,
+                             scatter_compact_squares)
 from trainer.solvers import LinearSolver, check_float, schedule
 
 MAX_FEATURES = 4096
@@ -98,7 +98,7 @@ class RES(LinearSolver):
         if not ok:
             self._diverged("the new weights")
         z1 = np.empty(batch.n_rows, dtype=np.float64)
-        shifted_margins_into(batch.indptr, batch.indices, batch.data, self._x, d, eps, n, z1)
+        margins_into(batch.indptr, g0.slot, batch.data, self._x[g0.cols] + s[g0.cols], self._x[n] + s[n], z1)
         r1 = np.empty(batch.n_rows, dtype=np.float64)
         residuals_into(self.code, batch.labels, batch.weights, z1, r1)
         dr = r1 - g0.r
