@@ -1,9 +1,10 @@
 """Numba kernels: every loop that sees a row, a nonzero or a full weight vector.
 
 Sparse kernels take the CSR arrays of a :class:`trainer.reader.Batch` (``indptr`` int64, ``indices``
-int32, ``data`` float64) and never allocate per row. Dense kernels take float64 vectors of the
-quasi-Newton layout used by the solvers: n bucket weights followed by the intercept at position n
-(``n_reg`` = n coordinates are L2-regularized, the intercept is not).
+int32, ``data`` float64) and never allocate per row. Dense kernels take vectors of the quasi-Newton
+layout used by the solvers: n bucket weights followed by the intercept at position n (``n_reg`` = n
+coordinates are L2-regularized, the intercept is not); weights are float64, the stored steps and the
+direction of the limited-memory BFGS passes are in the pairs' storage dtype (float32 by default).
 
 The limited-memory BFGS direction (:func:`lbfgs_direction`) has the coefficients of the two-loop
 recursion of "Updating Quasi-Newton Matrices with Limited Storage" (Mathematics of Computation, 1980),
