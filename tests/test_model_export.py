@@ -184,7 +184,7 @@ def test_inspect_reports_size_weights_and_examples(tmp_path):
     w = make_model(SPEC).weights
     top, bottom = int(np.argmax(w)), int(np.argmin(w))
     m = Model(SPEC, w, -0.5, "logistic", {"summary": {"rows": 100, "distinct_tokens": 900}, "options": {"l2": 0.001},
-                                          "examples": {top: ["shop\x1fshop-3\x1ehour\x1f7"], bottom: ["tags\x1ft2"]}})
+                                          "examples": {top: ["shop=shop-3 & hour=7"], bottom: ["tags=t2"]}})
     m.save(tmp_path / "m")
     export_model(tmp_path / "m", tmp_path / "e")
     for folder, files in ((tmp_path / "m", ["model.json", "model.npz"]), (tmp_path / "e", ["model.json", "weights.parquet"])):
@@ -192,12 +192,12 @@ def test_inspect_reports_size_weights_and_examples(tmp_path):
         assert d["bytes"] == sum((folder / f).stat().st_size for f in files)  # reference: os.stat
         assert d["buckets"] == 4096 and d["nonzero"] == int(np.count_nonzero(m.weights))
         assert d["top_positive"][0] == {"bucket": top, "weight": float(m.weights[top]),
-                                        "examples": ["shop\x1fshop-3\x1ehour\x1f7"]}
+                                        "examples": ["shop=shop-3 & hour=7"]}
         assert [r["bucket"] for r in d["top_negative"]] == np.argsort(m.weights)[:3].tolist()  # numpy argsort
         # reference: 1 - ((m-1)/m)^(D-1) evaluated directly in float64 (birthday problem, common practice)
         assert d["collision"]["expected_share_colliding"] == pytest.approx(1 - (4095 / 4096) ** 899, rel=1e-12)
         text = format_inspect(d)
-        assert "shop=shop-3 x hour=7" in text and "tags=t2" in text and "l2=0.001" in text
+        assert "shop=shop-3 & hour=7" in text and "tags=t2" in text and "l2=0.001" in text
     plain = make_model(SPEC, seed=4)
     plain.save(tmp_path / "p")
     d = inspect_model(tmp_path / "p")

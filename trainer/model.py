@@ -540,10 +540,6 @@ def inspect_model(path: str | Path, top: int = 10) -> dict:
     })
 
 
-def _readable_token(token: str) -> str:
-    return token.replace("\x1e", " x ").replace("\x1f", "=")
-
-
 def _fmt(v) -> str:
     if v is None:
         return "-"
@@ -554,7 +550,7 @@ def _fmt(v) -> str:
 
 def format_inspect(d: dict) -> str:
     """Render an :func:`inspect_model` dict as compact plain text (one fact per line, weights as a
-    small table, tokens shown with ``=`` for the field separator and `` x `` between cross parts).
+    small table with up to three example tokens each, as the reader recorded them).
     Returns the text (ending in a newline); raises KeyError when ``d`` lacks a key of inspect_model."""
     lines = [f"model      {d['path']} ({d['form']} form, {d['bytes']:,} bytes on disk)",
              f"loss       {d['loss']}; probabilities: "
@@ -573,7 +569,7 @@ def format_inspect(d: dict) -> str:
         if not rows:
             lines.append("  (none)")
         for r in rows:
-            ex = ", ".join(_readable_token(t) for t in r["examples"][:3]) or "(no example recorded)"
+            ex = ", ".join(r["examples"][:3]) or "(no example recorded)"
             lines.append(f"  {r['weight']:+11.5f}  bucket {r['bucket']:>10}  {ex}")
     if d["options"]:
         lines.append("options    " + ", ".join(f"{k}={_fmt(v)}" for k, v in sorted(d["options"].items())))
