@@ -7,6 +7,9 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
+import scipy.optimize
+import scipy.sparse as sp
+from scipy.special import expit, log_expit
 
 SMALL_SPEC = {
     "label": {"column": "clicked"},
@@ -72,6 +75,50 @@ def small_log(tmp_path):
     spec_path = tmp_path / "spec.json"
     spec_path.write_text(json.dumps(SMALL_SPEC))
     return root, spec_path
+
+
+def assert_one_line(code, err, needle):
+    """The project's rule for bad input: exit code 2 and one line of error text that names ``needle``
+    (the file, column or option), no traceback."""
+    assert code == 2
+    assert len(err.splitlines()) == 1 and "Traceback" not in err
+    assert needle in err, err
+
+
+def batch_csr(batch, n: int) -> sp.csr_matrix:
+    """A hashed batch (trainer.reader.Batch) as a scipy.sparse CSR matrix of n columns, the tests'
+    reference path for products with the weights. scipy sums duplicate entries: the meaning of
+    colliding tokens (README.md, 'Hashing contract')."""
+    return sp.csr_matrix((batch.data, batch.indices, batch.indptr), shape=(batch.n_rows, n))
+
+
+def reference_objective(loss, X, y, c, lam):
+    """F(w, b) = sum c_i l(y_i, x_i.w + b) / sum c_i + lam/2 ||w||^2 and its gradient, written with
+    scipy/numpy only (no project code); ``loss`` "logistic" or "squared-hinge"."""
+    n = X.shape[1]
+    s = 2 * y - 1
+    C = c.sum()
+
+    def fg(x):
+        z = X @ x[:n] + x[n]
+        if loss == "logistic":
+            values, dz = -log_expit(s * z), -s * expit(-s * z)
+        else:
+            u = np.maximum(0.0, 1.0 - s * z)
+            values, dz = u * u, -2.0 * s * u
+        g = np.empty(n + 1)
+        g[:n] = X.T @ (c * dz) / C + lam * x[:n]
+        g[n] = (c * dz).sum() / C
+        return (c @ values) / C + 0.5 * lam * x[:n] @ x[:n], g
+
+    return fg
+
+
+def reference_optimum(fg, size: int):
+    """The minimizer of ``fg`` (value and gradient) from zero by scipy.optimize.minimize L-BFGS-B with
+    tight tolerances: the full-batch reference the online solvers are measured against."""
+    return scipy.optimize.minimize(fg, np.zeros(size), jac=True, method="L-BFGS-B",
+                                   options={"maxiter": 10000, "ftol": 1e-15, "gtol": 1e-12})
 
 
 def make_model(spec, loss: str = "logistic", calibration: dict | None = None, seed: int = 0, info: dict | None = None):

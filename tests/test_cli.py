@@ -6,19 +6,13 @@ import json
 
 from trainer.cli import main
 
-from conftest import SMALL_SPEC
+from conftest import SMALL_SPEC, assert_one_line
 
 
 def run(capsys, *argv):
     code = main(list(argv))
     err = capsys.readouterr().err.strip()
     return code, err
-
-
-def assert_one_line(code, err, needle):
-    assert code == 2
-    assert len(err.splitlines()) == 1 and "Traceback" not in err
-    assert needle in err, err
 
 
 def test_missing_data_folder(small_log, tmp_path, capsys):

@@ -16,7 +16,7 @@ from trainer.spec import load_spec
 from conftest import make_model
 
 
-def test_segments_match_sklearn_per_group(small_log, tmp_path):
+def test_segments_match_sklearn_per_group(small_log):
     root, spec_path = small_log
     spec = load_spec(spec_path)
     model = make_model(spec, seed=3)
@@ -74,4 +74,7 @@ def test_squared_hinge_training_gets_platt_probabilities(tmp_path):
     margins = scored.column("score").to_numpy()
     np.testing.assert_allclose(summary["margin"]["auc"], roc_auc_score(y[30_000:], margins),
                                atol=summary["margin"]["auc_error_bound"] + 1e-12)
-    assert abs(summary["calibration_ratio"] - 1) < 0.05  # Platt fitted on this slice: close to calibrated
+    # Platt scaling was fitted on this slice: the likelihood equation of its offset b makes the mean
+    # probability equal the mean (smoothed) target there ("Probabilistic Outputs for Support Vector
+    # Machines and Comparisons to Regularized Likelihood Methods", 1999; from memory)
+    assert abs(summary["calibration_ratio"] - 1) < 0.05

@@ -24,6 +24,7 @@ import loggen  # noqa: E402
 import make_demo_logs  # noqa: E402
 from loggen import Categorical, Interaction, LogConfig, Multi, Numeric  # noqa: E402
 
+from conftest import assert_one_line  # noqa: E402
 from trainer.errors import UserError  # noqa: E402
 from trainer.spec import parse_spec  # noqa: E402
 
@@ -241,9 +242,10 @@ def test_bad_config_raises_user_error(bad, needle):
 def test_cli_errors_are_one_line(grocery_dir, tmp_path, capsys):
     # Reference: project rule, exit code 2 and a one-line message naming the option (common practice).
     out, _ = grocery_dir
-    assert loggen.main(["--config", "grocery-push", "--rows", "100", "--days", "2", "--out", str(out)]) == 2
+    code = loggen.main(["--config", "grocery-push", "--rows", "100", "--days", "2", "--out", str(out)])
     err = capsys.readouterr().err.strip()
-    assert "\n" not in err and "--out" in err and "--overwrite" in err
+    assert_one_line(code, err, "--out")
+    assert "--overwrite" in err
     assert loggen.main(["--config", "bench20", "--rows", "3", "--days", "5",
                         "--out", str(tmp_path / "b.parquet")]) == 2
     assert "--rows" in capsys.readouterr().err

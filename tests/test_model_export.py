@@ -1,5 +1,6 @@
 """Model object, saving, export/import, tamper checks, schema validation and inspect."""
 
+import hashlib
 import json
 import math
 from pathlib import Path
@@ -8,14 +9,13 @@ import jsonschema
 import numpy as np
 import pyarrow.parquet as pq
 import pytest
-import scipy.sparse as sp
 
 from trainer.errors import UserError
 from trainer.model import Model, collision_share, export_model, format_inspect, inspect_model, load_model
 from trainer.reader import Reader
 from trainer.spec import load_spec, parse_spec
 
-from conftest import SMALL_SPEC, make_model
+from conftest import SMALL_SPEC, batch_csr, make_model
 
 SCHEMA = json.loads((Path(__file__).parent.parent / "schemas" / "model.schema.json").read_text())
 SPEC = parse_spec(SMALL_SPEC)
@@ -89,6 +89,8 @@ def test_tampered_export_refused(tmp_path):
     w = t.column("weight").to_numpy().copy()
     w[0] += 1e-9
     pq.write_table(t.set_column(1, "weight", [w]), out / "weights.parquet")
+    recorded = json.loads((out / "model.json").read_text())["weights_sha256"]
+    assert hashlib.sha256((out / "weights.parquet").read_bytes()).hexdigest() != recorded
     with pytest.raises(UserError, match="weights.parquet: checksum does not match"):
         load_model(out)
 
@@ -132,8 +134,7 @@ def test_non_empty_out_dir_needs_force_and_nothing_is_written(tmp_path):
 def test_margin_and_probability_against_scipy(small_log):
     batch = first_batch(small_log)
     m = make_model(SPEC)
-    x = sp.csr_matrix((batch.data, batch.indices, batch.indptr), shape=(batch.n_rows, SPEC.n_buckets))
-    z = x @ m.weights + m.intercept  # reference: scipy.sparse CSR matrix-vector product
+    z = batch_csr(batch, SPEC.n_buckets) @ m.weights + m.intercept  # reference: scipy.sparse CSR product
     assert np.allclose(m.margin(batch), z, rtol=0, atol=1e-12)
     assert np.allclose(m.predict(batch), 1.0 / (1.0 + np.exp(-z)), rtol=1e-13, atol=0)  # logistic function
 

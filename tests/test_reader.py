@@ -16,7 +16,7 @@ from trainer.errors import UserError
 from trainer.reader import BucketExamples, Reader, _token_texts, _Tokens
 from trainer.spec import load_spec
 
-from conftest import SMALL_SPEC, make_table
+from conftest import SMALL_SPEC, batch_csr, make_table
 
 
 def canonical(v):
@@ -63,7 +63,7 @@ def reference_row(row: dict, spec: dict) -> dict[int, float]:
 
 
 def to_dense_rows(batches, n_buckets):
-    mats = [sp.csr_matrix((b.data, b.indices, b.indptr), shape=(b.n_rows, n_buckets)) for b in batches]
+    mats = [batch_csr(b, n_buckets) for b in batches]
     return sp.vstack(mats).toarray()
 
 

@@ -50,6 +50,7 @@ def test_reference_matches_package_scoring(small_log, tmp_path):
     score_to_parquet(export, root, tmp_path / "s.parquet", batch_rows=333)
     got = pq.read_table(tmp_path / "s.parquet").column("score").to_numpy()
     files = sorted(p for p in root.rglob("*.parquet"))  # the reader's file order: sorted paths
+    # reference: reference/score_reference.py, the standalone scorer written from the contract text
     want = np.concatenate([ref.score(export, f) for f in files])
     assert got.size == want.size == 2900  # conftest: 700 + 700 + 800 + 700 rows
     assert np.max(np.abs(got - want)) <= 1e-9
@@ -62,11 +63,12 @@ def test_reference_matches_squared_hinge_with_calibration(small_log, tmp_path):
     files = sorted(root.rglob("*.parquet"))[:2]
     score_to_parquet(export, files[0], tmp_path / "s.parquet")
     out = pq.read_table(tmp_path / "s.parquet")
+    # reference: reference/score_reference.py (margins, then Platt's sigmoid)
     assert np.max(np.abs(out.column("score").to_numpy() - ref.score(export, files[0]))) <= 1e-9
     assert np.max(np.abs(out.column("probability").to_numpy() - ref.probability(export, files[0]))) <= 1e-9
 
 
-def test_hand_derived_buckets_equal_the_readers(tmp_path):
+def test_hand_derived_buckets_equal_the_readers():
     # reference: tokens written byte by byte from the contract text (reference/README.md steps 3-7),
     # hashed with the mmh3 library; seed 42, bits 12 as in SMALL_SPEC
     table = pa.table({
@@ -119,6 +121,7 @@ def test_reference_refuses_tampered_export_and_cli_prints_scores(tmp_path, capsy
                              "amount": [1.5, None], "age_days": [None, 40.0]}), data)
     assert ref.main([str(export), str(data), "--limit", "1"]) == 0
     printed = capsys.readouterr().out.split()
+    # reference: the same scorer's Python function on the same file
     assert len(printed) == 1 and float(printed[0]) == ref.score(export, data)[0]
     raw = bytearray((export / "weights.parquet").read_bytes())
     raw[len(raw) // 2] ^= 0x01

@@ -4,14 +4,13 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
-import scipy.sparse as sp
 
 from trainer.errors import UserError
 from trainer.reader import Reader
 from trainer.scoring import score_to_parquet
 from trainer.spec import parse_spec
 
-from conftest import SMALL_SPEC, make_model, make_table
+from conftest import SMALL_SPEC, batch_csr, make_model, make_table
 
 SPEC = parse_spec(SMALL_SPEC)
 CAL = {"method": "platt", "a": 0.8, "b": -1.1}
@@ -34,8 +33,7 @@ def reference_margins(model, data):
     checked against mmh3 in test_reader.py and test_reference_scorer.py)."""
     out = []
     for b in Reader(model.spec, data, with_labels=False, batch_rows=4096).batches():
-        x = sp.csr_matrix((b.data, b.indices, b.indptr), shape=(b.n_rows, model.spec.n_buckets))
-        out.append(x @ model.weights + model.intercept)
+        out.append(batch_csr(b, model.spec.n_buckets) @ model.weights + model.intercept)
     return np.concatenate(out)
 
 
@@ -60,7 +58,7 @@ def test_squared_hinge_margin_and_probability_columns(tmp_path):
     score_to_parquet(plain, data, tmp_path / "m.parquet")
     out = pq.read_table(tmp_path / "m.parquet")
     assert out.column_names == ["score"]
-    z = reference_margins(plain, data)
+    z = reference_margins(plain, data)  # reference: scipy.sparse CSR product of the hashed rows
     assert np.allclose(out.column("score").to_numpy(), z, rtol=0, atol=1e-12)
     cal = make_model(SPEC, loss="squared-hinge", calibration=CAL, seed=1)
     score_to_parquet(cal, data, tmp_path / "c.parquet", keep=("id",))
