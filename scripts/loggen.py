@@ -31,7 +31,6 @@ from __future__ import annotations
 import argparse
 import datetime as dt
 import json
-import os
 import shutil
 import sys
 from dataclasses import dataclass
@@ -45,6 +44,7 @@ from scipy.special import expit
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
+from trainer.atomic import atomic_path, write_atomic  # noqa: E402
 from trainer.errors import UserError  # noqa: E402
 
 TIME_COLUMN = "event_day"
@@ -470,21 +470,10 @@ def _split_rows(rows: int, days: int) -> list[int]:
     return [base + (1 if d < extra else 0) for d in range(days)]
 
 
-def write_text_atomic(path: Path, text: str) -> None:
-    """Write ``text`` (UTF-8) to ``path`` by writing ``path.tmp``, fsync, then renaming over ``path``."""
-    tmp = path.with_name(path.name + ".tmp")
-    with open(tmp, "w", encoding="utf-8") as fh:
-        fh.write(text)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
-
-
 def _write_part(truth: Truth, path: Path, days: list[int], rows_per_day: list[int], chunk_rows: int,
                 with_truth: bool, with_time: bool, stats: dict) -> None:
-    tmp = path.with_name(path.name + ".tmp")
     schema = arrow_schema(truth.config, with_truth, with_time)
-    with pq.ParquetWriter(tmp, schema) as writer:
+    with atomic_path(path) as tmp, pq.ParquetWriter(tmp, schema) as writer:
         for day, n_day in zip(days, rows_per_day):
             for chunk, start in enumerate(range(0, n_day, chunk_rows)):
                 n = min(chunk_rows, n_day - start)
@@ -495,7 +484,6 @@ def _write_part(truth: Truth, path: Path, days: list[int], rows_per_day: list[in
                 if not with_truth:
                     table = table.drop_columns([TRUTH_COLUMN])
                 writer.write_table(table, row_group_size=chunk_rows)
-    os.replace(tmp, path)
 
 
 def write_logs(config: LogConfig, out: str | Path, rows: int, days: int = 1, seed: int = 7,
@@ -546,7 +534,7 @@ def write_logs(config: LogConfig, out: str | Path, rows: int, days: int = 1, see
             path = part_dir / "part-0.parquet"
             _write_part(truth, path, [d], [per_day[d]], chunk_rows, with_truth, False, stats)
             files.append(path)
-    write_text_atomic(spec_path, json.dumps(make_spec(config, bits), indent=2) + "\n")
+    write_atomic(spec_path, [(json.dumps(make_spec(config, bits), indent=2) + "\n").encode("utf-8")])
     return WrittenLogs(data_path, spec_path, dates, per_day, stats["positives"],
                        [s / n for s, n in zip(stats["psum"], per_day)], sum(f.stat().st_size for f in files))
 

@@ -16,6 +16,8 @@ from pathlib import Path
 import loggen
 from loggen import GROCERY_PUSH, Categorical, Multi, UserError
 
+from trainer.atomic import write_atomic
+
 DESCRIPTIONS = {
     "campaign": "promotional campaign the notification belongs to",
     "promo_type": "kind of offer in the notification",
@@ -151,7 +153,7 @@ def main(argv: list[str] | None = None) -> int:
         print(f"make_demo_logs.py: error: {exc}", file=sys.stderr)
         return 2
     total_mb = written.bytes / 1e6
-    loggen.write_text_atomic(Path(args.out) / "README.md", readme_text(written, args, total_mb))
+    write_atomic(Path(args.out) / "README.md", [readme_text(written, args, total_mb).encode("utf-8")])
     rate = sum(written.positives) / sum(written.rows)
     print(f"wrote {sum(written.rows)} rows over {args.days} days to {written.data_path} "
           f"({total_mb:.1f} MB, order rate {rate:.4f}), {written.spec_path}, README.md")
