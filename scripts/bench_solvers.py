@@ -13,20 +13,23 @@ full-batch optimum)::
     python scripts/bench_solvers.py --rows 1000000 --bits 18 --l2 1e-5 --passes 3
 
 The optimum depends on --rows, --holdout, --bits, --fields, --l2 and --seed only, so
-``--optimum-cache`` lets several runs with different ``--option`` values share it.
+``--optimum-cache`` lets several runs with different ``--option`` values share it; the cache records
+those settings and is refused when they differ.
 """
 
 from __future__ import annotations
 
 import argparse
+import json
 import time
 from pathlib import Path
 
 import numpy as np
-import scipy.optimize
 import scipy.sparse as sp
-from scipy.special import expit, log_expit
+from scipy.special import expit
 
+from bench_train import reference_optimum
+from loggen import sample_ranks, zipf_probs
 from trainer.kernels import predict_margin
 from trainer.losses import pointwise_loss
 from trainer.reader import Batch
@@ -41,9 +44,7 @@ def make_problem(rows: int, bits: int, fields: int, seed: int):
     cols = np.empty((rows, fields), dtype=np.int32)
     margin = np.full(rows, -4.2)
     for f, vocab in enumerate(np.geomspace(3, 1e5, fields).astype(np.int64)):
-        p = 1.0 / np.arange(1, vocab + 1) ** 1.1
-        cdf = np.cumsum(p / p.sum())
-        values = np.minimum(np.searchsorted(cdf, rng.random(rows)), vocab - 1)
+        values = sample_ranks(rng, np.cumsum(zipf_probs(int(vocab), 1.1)), rows)
         effect = truth.normal(0.0, 0.4, vocab)
         bucket = truth.integers(0, n, vocab)
         cols[:, f] = bucket[values]
@@ -60,25 +61,6 @@ def as_batch(cols: np.ndarray, labels: np.ndarray) -> Batch:
 
 def holdout_log_loss(batch: Batch, w: np.ndarray, b: float) -> float:
     return float(pointwise_loss("logistic", batch.labels, predict_margin(batch, w, b)).mean())
-
-
-def full_batch_optimum(n: int, cols: np.ndarray, labels: np.ndarray, l2: float) -> np.ndarray:
-    rows, fields = cols.shape
-    X = sp.csr_matrix((np.ones(rows * fields), cols.ravel(), np.arange(rows + 1) * fields), shape=(rows, n))
-    XT = X.T.tocsr()
-    s = 2 * labels - 1
-
-    def fg(x):
-        z = X @ x[:n] + x[n]
-        r = expit(z) - labels
-        g = np.empty(n + 1)
-        g[:n] = XT @ r / rows + l2 * x[:n]
-        g[n] = r.mean()
-        return float(-log_expit(s * z).mean() + 0.5 * l2 * x[:n] @ x[:n]), g
-
-    res = scipy.optimize.minimize(fg, np.zeros(n + 1), jac=True, method="L-BFGS-B",
-                                  options={"maxiter": 5000, "maxfun": 10000, "ftol": 1e-15, "gtol": 1e-10})
-    return res.x
 
 
 def main() -> None:
@@ -117,13 +99,19 @@ def main() -> None:
           f"base rate {labels.mean():.4f}, l2 {args.l2:g}, batch {args.batch}")
     t = time.perf_counter()
     cache = Path(args.optimum_cache) if args.optimum_cache else None
+    settings = json.dumps({k: getattr(args, k) for k in ("rows", "holdout", "bits", "fields", "l2", "seed")})
     if cache is not None and cache.exists():
-        x = np.load(cache)["x"]
+        with np.load(cache) as stored:
+            if str(stored["settings"]) != settings:
+                ap.error(f"--optimum-cache {cache}: computed for {stored['settings']}, not {settings}")
+            w, b = stored["w"], float(stored["b"])
     else:
-        x = full_batch_optimum(n, train_cols, train_labels, args.l2)
+        whole = as_batch(train_cols, train_labels)
+        X = sp.csr_matrix((whole.data, whole.indices, whole.indptr), shape=(whole.n_rows, n))
+        w, b = reference_optimum(X, train_labels, args.l2)[:2]
         if cache is not None:
-            np.savez(cache, x=x)
-    best = holdout_log_loss(holdout, x[:n], x[n])
+            np.savez(cache, w=w, b=b, settings=settings)
+    best = holdout_log_loss(holdout, w, b)
     print(f"full-batch optimum: holdout log-loss {best:.5f} ({time.perf_counter() - t:.0f} s)")
 
     first_time = None
