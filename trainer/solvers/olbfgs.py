@@ -108,7 +108,6 @@ class OnlineLBFGS(LinearSolver):
         self.seconds = {"gradient": 0.0, "direction": 0.0, "line_search": 0.0, "update": 0.0}
         size = self.n + 1
         self._S = np.zeros((self.history, size), dtype=np.dtype(self.pair_dtype))
-        self._u = np.zeros(0, dtype=np.float64)
         self._rho = np.zeros(self.history, dtype=np.float64)
         self._y_idx = [np.zeros(0, dtype=np.int32) for _ in range(self.history)]
         self._y_val = [np.zeros(0, dtype=np.float64) for _ in range(self.history)]
@@ -164,15 +163,17 @@ class OnlineLBFGS(LinearSolver):
         direction_done = clock()
 
         qc = q[gcols]
+        u = np.empty(batch.n_rows, dtype=np.float64)
+        margins_into(batch.indptr, g0.slot, batch.data, qc, float(qc[-1]), u)
         gq = dot(gvals, qc) + self.l2 * xq
-        eps = self._line_search(batch, g0, qc, xq, qq_reg, bound, gq)
+        eps = self._line_search(batch, g0, u, xq, qq_reg, bound, gq)
         searched = clock()
         if eps == 0.0:
             self._fold(beta, g0.cols, curv, hb)
             self._finish(rows, started, gradient_done, direction_done, searched, searched)
             return g0.loss
         r1 = np.empty(batch.n_rows, dtype=np.float64)
-        line_residuals(self.code, batch.labels, batch.weights, g0.z, self._u, -eps, r1)
+        line_residuals(self.code, batch.labels, batch.weights, g0.z, u, -eps, r1)
         dr = r1 - g0.r
         ysp = np.empty(gcols.shape[0], dtype=np.float64)
         scatter_compact(batch.indptr, g0.slot, batch.data, dr, 1.0 / g0.weight_sum, ysp[:-1])
@@ -201,14 +202,11 @@ class OnlineLBFGS(LinearSolver):
         """Fold this batch's Gauss-Newton diagonal into the running one (after the step used the old one)."""
         self._diag_scale = fold_diagonal(self._diag, self._diag_scale, beta, cols, curv, curv_last)
 
-    def _line_search(self, batch, g0, qc, xq: float, qq_reg: float, bound: float, gq: float) -> float:
-        """Backtracking Armijo search on the batch objective along -q (``qc``: q at the batch's buckets,
-        then the intercept); returns the accepted step (0.0 for a null step). The margins along the line
-        are z0 - eps * u with u = X_B q + q_b, the L2 term changes by l2/2 (eps^2 q.q - 2 eps w.q): no
-        dense work per trial.
+    def _line_search(self, batch, g0, u, xq: float, qq_reg: float, bound: float, gq: float) -> float:
+        """Backtracking Armijo search on the batch objective along -q; returns the accepted step (0.0
+        for a null step). The margins along the line are z0 - eps * u with u = X_B q + q_b, the L2 term
+        changes by l2/2 (eps^2 q.q - 2 eps w.q): no dense work per trial.
         Raises ``Diverged`` when no trial point has a finite objective."""
-        self._u = u = np.empty(batch.n_rows, dtype=np.float64)
-        margins_into(batch.indptr, g0.slot, batch.data, qc, float(qc[-1]), u)
         eps = schedule(self.step0, self.t0, self.t)
         if not (gq > 0.0 and math.isfinite(gq)):
             return 0.0
