@@ -423,8 +423,9 @@ def lbfgs_direction(x, gcols, gvals, gptr, S, order, m, rho, G, z, yptr, yidx, y
 
     The gradient is g = lam * x[:n_reg] (zero at the other coordinates) plus the sparse part ``gvals``
     on the ascending ``gcols`` (chunk pointers ``gptr``). Pairs are the rows ``S[order[t]]`` (t = 0
-    oldest .. m-1 newest) with y_k = y_sparse_k + lam * s_k[:n_reg], y_sparse_k held in CSR form by
-    slot (``yptr``, ascending ``yidx``, ``yval``, chunk pointers ``ychunk[k]``), rho[k] = 1 /
+    oldest .. m-1 newest) with y_k = y_sparse_k + lam * s_k[:n_reg], y_sparse_k held by slot: its
+    ascending entries start at ``yptr[k]`` in ``yidx``/``yval`` and its chunk pointers ``ychunk[k]``
+    (offsets from ``yptr[k]``) delimit them, so slots may be padded rows of one array; rho[k] = 1 /
     (s_k.y_k). ``G[i, k]`` = s_i.y_k and ``z[k]`` = s_k.x[:n_reg] are kept up to date by
     :func:`record_pair`. The initial matrix is the diagonal of :func:`precondition_pass`.
 

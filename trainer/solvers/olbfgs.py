@@ -109,8 +109,9 @@ class OnlineLBFGS(LinearSolver):
         size = self.n + 1
         self._S = np.zeros((self.history, size), dtype=np.dtype(self.pair_dtype))
         self._rho = np.zeros(self.history, dtype=np.float64)
-        self._y_idx = [np.zeros(0, dtype=np.int32) for _ in range(self.history)]
-        self._y_val = [np.zeros(0, dtype=np.float64) for _ in range(self.history)]
+        self._y_idx = np.zeros((self.history, 0), dtype=np.int32)  # sparse y parts, one padded row per slot
+        self._y_val = np.zeros((self.history, 0), dtype=np.float64)
+        self._y_len = np.zeros(self.history, dtype=np.int64)
         self._y_chunk = np.zeros((self.history, (size + CHUNK - 1) // CHUNK + 1), dtype=np.int64)
         self._G = np.zeros((self.history, self.history), dtype=np.float64)
         self._z = np.zeros(self.history, dtype=np.float64)
@@ -154,7 +155,7 @@ class OnlineLBFGS(LinearSolver):
         q = self._q
         order = self._order()
         m = order.shape[0]
-        yptr, yidx, yval = self._pairs_csr()
+        yptr, yidx, yval = self._pairs()
         xq, qq_reg, bound, p, yd, Sg = lbfgs_direction(self._x, gcols, gvals, gptr, self._S, order, m, self._rho,
                                                        self._G, self._z, yptr, yidx, yval, self._y_chunk, self.l2,
                                                        n, diag, scale, damp, q)
@@ -190,9 +191,7 @@ class OnlineLBFGS(LinearSolver):
         self._fold(beta, g0.cols, curv, hb)
         if accept:
             self._rho[k] = 1.0 / sy
-            self._y_idx[k] = gcols
-            self._y_val[k] = ysp
-            self._y_chunk[k] = gptr
+            self._store_y(k, gcols, ysp, gptr)
             self._head = (k + 1) % self.history
             self._count = min(self._count + 1, self.history)
         self._finish(rows, started, gradient_done, direction_done, paired, clock())
@@ -242,12 +241,24 @@ class OnlineLBFGS(LinearSolver):
         start = (self._head - m) % self.history
         return (start + np.arange(m, dtype=np.int64)) % self.history
 
-    def _pairs_csr(self):
-        """Sparse data parts of y for every slot, as one CSR (indptr by slot, indices, values)."""
-        lens = np.array([a.shape[0] for a in self._y_idx], dtype=np.int64)
-        yptr = np.zeros(self.history + 1, dtype=np.int64)
-        np.cumsum(lens, out=yptr[1:])
-        return yptr, np.concatenate(self._y_idx), np.concatenate(self._y_val)
+    def _pairs(self):
+        """Sparse data parts of y for every slot without copying: (start of each slot's entries,
+        indices, values); slot k's entries are counted by its chunk pointers ``_y_chunk[k]``."""
+        width = self._y_idx.shape[1]
+        return np.arange(self.history, dtype=np.int64) * width, self._y_idx.ravel(), self._y_val.ravel()
+
+    def _store_y(self, k: int, idx, val, chunks) -> None:
+        """Keep the sparse part of slot k's y (ascending ``idx``, ``val``, chunk pointers ``chunks``);
+        the padded rows widen, in steps of 4096 entries, when a pair has more entries than they hold."""
+        length = idx.shape[0]
+        if length > self._y_idx.shape[1]:
+            extra = ((0, 0), (0, -(-length // 4096) * 4096 - self._y_idx.shape[1]))
+            self._y_idx = np.pad(self._y_idx, extra)
+            self._y_val = np.pad(self._y_val, extra)
+        self._y_idx[k, :length] = idx
+        self._y_val[k, :length] = val
+        self._y_len[k] = length
+        self._y_chunk[k] = chunks
 
     def _options(self) -> dict:
         return {"history": self.history, "step0": self.step0, "t0": self.t0,
@@ -255,7 +266,10 @@ class OnlineLBFGS(LinearSolver):
                 "armijo": self.armijo, "pair_dtype": self.pair_dtype}
 
     def _extra_state(self) -> dict:
-        yptr, yidx, yval = self._pairs_csr()
+        yptr = np.zeros(self.history + 1, dtype=np.int64)
+        np.cumsum(self._y_len, out=yptr[1:])
+        yidx = np.concatenate([self._y_idx[k, :self._y_len[k]] for k in range(self.history)])
+        yval = np.concatenate([self._y_val[k, :self._y_len[k]] for k in range(self.history)])
         return {"S": self._S, "rho": self._rho, "y_indptr": yptr, "y_index": yidx,
                 "y_value": yval, "gram": self._G, "s_dot_w": self._z, "count": self._count,
                 "head": self._head, "rows": self._rows, "diag": self._diag, "diag_scale": self._diag_scale}
@@ -269,10 +283,9 @@ class OnlineLBFGS(LinearSolver):
         yptr = np.asarray(state["y_indptr"], dtype=np.int64)
         yidx = np.asarray(state["y_index"], dtype=np.int32)
         yval = np.asarray(state["y_value"], dtype=np.float64)
-        self._y_idx = [yidx[yptr[k]:yptr[k + 1]].copy() for k in range(self.history)]
-        self._y_val = [yval[yptr[k]:yptr[k + 1]].copy() for k in range(self.history)]
         for k in range(self.history):
-            self._y_chunk[k] = chunk_pointers(self._y_idx[k], self.n + 1)
+            idx = yidx[yptr[k]:yptr[k + 1]]
+            self._store_y(k, idx, yval[yptr[k]:yptr[k + 1]], chunk_pointers(idx, self.n + 1))
         self._count = int(state["count"])
         self._head = int(state["head"])
         self._G[:] = state["gram"]
