@@ -48,29 +48,33 @@ def save_checkpoint(path: Path, arrays: dict[str, np.ndarray], meta: dict) -> No
 
 
 def load_checkpoint(path: Path) -> tuple[dict[str, np.ndarray], dict]:
-    """Read and verify a checkpoint; return ``(arrays, meta)``.
+    """Read and verify a checkpoint; return ``(arrays, meta)``. The file is read once into one buffer;
+    the arrays are writable views of it (no second copy of the curvature memory while resuming).
 
     Raises UserError (naming the file, leaving it untouched) when it is missing, truncated, fails its
     checksum or has another format version.
     """
     path = Path(path)
     try:
-        blob = path.read_bytes()
+        with open(path, "rb") as fh:
+            blob = bytearray(path.stat().st_size)
+            size = fh.readinto(blob)
     except FileNotFoundError:
         raise UserError(f"{path}: no checkpoint to resume from") from None
-    if len(blob) < 48 or blob[:8] != MAGIC:
+    view = memoryview(blob)[:size]
+    if size < 48 or view[:8] != MAGIC:
         raise UserError(f"{path}: not a hashcurve checkpoint (bad magic or too short); left untouched")
-    if hashlib.sha256(blob[:-32]).digest() != blob[-32:]:
+    if hashlib.sha256(view[:-32]).digest() != view[-32:]:
         raise UserError(f"{path}: checkpoint is truncated or corrupt (checksum mismatch); left untouched")
-    hlen = int.from_bytes(blob[8:16], "little")
-    header = json.loads(blob[16:16 + hlen].decode("utf-8"))
+    hlen = int.from_bytes(view[8:16], "little")
+    header = json.loads(bytes(view[16:16 + hlen]).decode("utf-8"))
     if header.get("version") != VERSION:
         raise UserError(f"{path}: checkpoint format version {header.get('version')} is not {VERSION}; "
                         "it was written by another version of hashcurve")
     base = 16 + hlen
     arrays = {}
     for e in header["arrays"]:
-        start = base + e["offset"]
-        raw = blob[start:start + e["nbytes"]]
-        arrays[e["name"]] = np.frombuffer(raw, dtype=np.dtype(e["dtype"])).reshape(e["shape"]).copy()
+        dtype = np.dtype(e["dtype"])
+        arrays[e["name"]] = np.frombuffer(blob, dtype=dtype, count=e["nbytes"] // dtype.itemsize,
+                                          offset=base + e["offset"]).reshape(e["shape"])
     return arrays, header["meta"]
