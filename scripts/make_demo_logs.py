@@ -42,7 +42,7 @@ DESCRIPTIONS = {
 def _values_text(f) -> str:
     if isinstance(f, Categorical):
         if f.by_day:
-            return "7"
+            return str(loggen.field_vocab(f))
         how = "daily curve" if f.probs is not None else f"Zipf s={f.zipf}"
         return f"{loggen.field_vocab(f)} ({how})"
     if isinstance(f, Multi):
@@ -50,15 +50,14 @@ def _values_text(f) -> str:
     return "numeric (log-normal)"
 
 
-def readme_text(written: loggen.WrittenLogs, args: argparse.Namespace, total_mb: float) -> str:
+def readme_text(written: loggen.WrittenLogs, args: argparse.Namespace) -> str:
     """The README of the demo folder: scenario, columns, generation command, per-day figures.
 
-    Takes what ``write_logs`` returned, the parsed options and the size in MB; returns Markdown text.
+    Takes what ``write_logs`` returned and the parsed options; returns Markdown text.
     """
     schema = loggen.arrow_schema(GROCERY_PUSH)
     spec = loggen.make_spec(GROCERY_PUSH)
     fields = {f.name: f for f in GROCERY_PUSH.fields}
-    nulls = {f.name: f.null_rate for f in GROCERY_PUSH.fields}
     lines = [
         "# Demo logs: grocery-delivery push notifications (invented)",
         "",
@@ -91,7 +90,7 @@ def readme_text(written: loggen.WrittenLogs, args: argparse.Namespace, total_mb:
     for col in schema:
         if col.name in fields:
             f = fields[col.name]
-            lines.append(f"| `{col.name}` | {col.type} | {_values_text(f)} | {nulls[col.name]:.0%} | "
+            lines.append(f"| `{col.name}` | {col.type} | {_values_text(f)} | {f.null_rate:.0%} | "
                          f"{DESCRIPTIONS[col.name]} |")
         else:
             lines.append(f"| `{col.name}` | {col.type} | true/false | 0% | {DESCRIPTIONS[col.name]} |")
@@ -106,7 +105,7 @@ def readme_text(written: loggen.WrittenLogs, args: argparse.Namespace, total_mb:
         lines.append(f"| {day} | {n} | {pos} | {pos / n:.4f} | {mp:.4f} |")
     lines += [
         "",
-        f"Total: {sum(written.rows)} rows, {total_mb:.1f} MB of Parquet.",
+        f"Total: {sum(written.rows)} rows, {written.bytes / 1e6:.1f} MB of Parquet.",
         "",
         "## How it was generated",
         "",
@@ -152,11 +151,10 @@ def main(argv: list[str] | None = None) -> int:
     except UserError as exc:
         print(f"make_demo_logs.py: error: {exc}", file=sys.stderr)
         return 2
-    total_mb = written.bytes / 1e6
-    write_atomic(Path(args.out) / "README.md", [readme_text(written, args, total_mb).encode("utf-8")])
+    write_atomic(Path(args.out) / "README.md", [readme_text(written, args).encode("utf-8")])
     rate = sum(written.positives) / sum(written.rows)
     print(f"wrote {sum(written.rows)} rows over {args.days} days to {written.data_path} "
-          f"({total_mb:.1f} MB, order rate {rate:.4f}), {written.spec_path}, README.md")
+          f"({written.bytes / 1e6:.1f} MB, order rate {rate:.4f}), {written.spec_path}, README.md")
     return 0
 
 
