@@ -138,7 +138,6 @@ class LogConfig:
 
 @dataclass
 class _FieldTruth:
-    field: object
     values: pa.Array | None
     cdf: np.ndarray | None
     effects: np.ndarray
@@ -151,12 +150,11 @@ class Truth:
 
     ``fields`` maps a field name to its tables (``values`` Arrow array of labels by rank, ``cdf``,
     ``effects`` by rank, ``walk`` (days, vocab) daily drift or None); ``tables`` maps an interaction's
-    field pair to its (V_a, V_b) effect table; ``bias`` is the intercept; ``days`` the number of days.
+    field pair to its (V_a, V_b) effect table; ``bias`` is the intercept.
     """
 
     config: LogConfig
     seed: int
-    days: int
     fields: dict
     tables: dict
     bias: float
@@ -313,7 +311,7 @@ def build_truth(config: LogConfig, seed: int, days: int) -> Truth:
     for i, f in enumerate(config.fields):
         rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(0, i)))
         if isinstance(f, Numeric):
-            fields[f.name] = _FieldTruth(f, None, None, np.array([f.coef]), None)
+            fields[f.name] = _FieldTruth(None, None, np.array([f.coef]), None)
             continue
         vocab = field_vocab(f)
         values = _labels(f, rng)
@@ -327,14 +325,14 @@ def build_truth(config: LogConfig, seed: int, days: int) -> Truth:
             steps = rng.normal(0.0, f.drift_sd, (days, vocab))
             steps[0] = 0.0
             walk = np.cumsum(steps, axis=0)
-        fields[f.name] = _FieldTruth(f, values, np.cumsum(p), effects, walk)
+        fields[f.name] = _FieldTruth(values, np.cumsum(p), effects, walk)
     tables = {}
     for j, inter in enumerate(config.interactions):
         rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(3, j)))
         a, b = inter.fields
         shape = (fields[a].effects.size, fields[b].effects.size)
         tables[inter.fields] = rng.normal(0.0, inter.effect_sd, shape)
-    truth = Truth(config, seed, days, fields, tables, 0.0)
+    truth = Truth(config, seed, fields, tables, 0.0)
     pilot = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(2,)))
     z0 = _draw(truth, 0, PILOT_ROWS, pilot)[1]
     truth.bias = brentq(lambda b: expit(z0 + b).mean() - config.base_rate, -60.0, 60.0, xtol=1e-12)
@@ -349,7 +347,6 @@ def _draw(truth: Truth, day: int, n: int, rng: np.random.Generator):
     """Raw draws of every field for n rows of day ``day`` and their margin without the bias."""
     z = np.zeros(n)
     raw = {}
-    ranks = {}
     weekday = _day_date(truth.config, day).weekday()
     for f in truth.config.fields:
         ft = truth.fields[f.name]
@@ -360,7 +357,6 @@ def _draw(truth: Truth, day: int, n: int, rng: np.random.Generator):
             else:
                 r = sample_ranks(rng, ft.cdf, n)
             z += np.where(null, 0.0, truth.effects(f.name, day)[r])
-            ranks[f.name] = np.where(null, -1, r)
             raw[f.name] = (r, null)
         elif isinstance(f, Multi):
             len_cdf = np.cumsum(np.asarray(f.lengths, dtype=np.float64) / np.sum(f.lengths))
@@ -378,9 +374,8 @@ def _draw(truth: Truth, day: int, n: int, rng: np.random.Generator):
             z += np.where(null, 0.0, ft.effects[0] * np.log1p(x))
             raw[f.name] = (x, null)
     for (a, b), table in truth.tables.items():
-        ra, rb = ranks[a], ranks[b]
-        both = (ra >= 0) & (rb >= 0)
-        z += np.where(both, table[np.maximum(ra, 0), np.maximum(rb, 0)], 0.0)
+        (ra, null_a), (rb, null_b) = raw[a], raw[b]
+        z += np.where(null_a | null_b, 0.0, table[ra, rb])
     return raw, z
 
 
