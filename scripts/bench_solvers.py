@@ -10,9 +10,9 @@ its relative gap to the holdout log-loss of the full-batch optimum (scipy L-BFGS
 objective), and the time ratio to the first solver listed. Example (about 10 minutes, most of it the
 full-batch optimum)::
 
-    python scripts/bench_solvers.py --rows 1000000 --bits 18 --l2 1e-5 --passes 3
+    python scripts/bench_solvers.py --rows 1000000 --bits 18 --l2-strength 1e-5 --epochs 3
 
-The optimum depends on --rows, --holdout, --bits, --fields, --l2 and --seed only, so
+The optimum depends on --rows, --holdout, --bits, --fields, --l2-strength and --seed only, so
 ``--optimum-cache`` lets several runs with different ``--option`` values share it; the cache records
 those settings and is refused when they differ.
 """
@@ -69,9 +69,9 @@ def main() -> None:
     ap.add_argument("--holdout", type=int, default=200_000)
     ap.add_argument("--bits", type=int, default=18)
     ap.add_argument("--fields", type=int, default=20)
-    ap.add_argument("--l2", type=float, default=1e-5)
+    ap.add_argument("--l2-strength", type=float, default=1e-5)
     ap.add_argument("--batch", type=int, default=4096)
-    ap.add_argument("--passes", type=int, default=3)
+    ap.add_argument("--epochs", type=int, default=3)
     ap.add_argument("--solvers", default="olbfgs,adagrad,sgd")
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--option", action="append", default=[], metavar="KEY=VALUE",
@@ -96,10 +96,10 @@ def main() -> None:
     batches = [as_batch(train_cols[a:a + args.batch], train_labels[a:a + args.batch])
                for a in range(0, args.rows, args.batch)]
     print(f"rows {args.rows}, holdout {args.holdout}, buckets 2^{args.bits}, fields {args.fields}, "
-          f"base rate {labels.mean():.4f}, l2 {args.l2:g}, batch {args.batch}")
+          f"base rate {labels.mean():.4f}, l2 {args.l2_strength:g}, batch {args.batch}")
     t = time.perf_counter()
     cache = Path(args.optimum_cache) if args.optimum_cache else None
-    settings = json.dumps({k: getattr(args, k) for k in ("rows", "holdout", "bits", "fields", "l2", "seed")})
+    settings = json.dumps({k: getattr(args, k) for k in ("rows", "holdout", "bits", "fields", "l2_strength", "seed")})
     if cache is not None and cache.exists():
         with np.load(cache) as stored:
             if str(stored["settings"]) != settings:
@@ -108,7 +108,7 @@ def main() -> None:
     else:
         whole = as_batch(train_cols, train_labels)
         X = sp.csr_matrix((whole.data, whole.indices, whole.indptr), shape=(whole.n_rows, n))
-        w, b = reference_optimum(X, train_labels, args.l2)[:2]
+        w, b = reference_optimum(X, train_labels, args.l2_strength)[:2]
         if cache is not None:
             np.savez(cache, w=w, b=b, settings=settings)
     best = holdout_log_loss(holdout, w, b)
@@ -116,11 +116,11 @@ def main() -> None:
 
     first_time = None
     for name in names:
-        solver = make_solver(name, n, "logistic", args.l2, **options)
+        solver = make_solver(name, n, "logistic", args.l2_strength, **options)
         solver.step(batches[0])  # compile the kernels outside the timing
-        solver = make_solver(name, n, "logistic", args.l2, **options)
+        solver = make_solver(name, n, "logistic", args.l2_strength, **options)
         elapsed = 0.0
-        for p in range(args.passes):
+        for p in range(args.epochs):
             t = time.perf_counter()
             progressive = sum(solver.step(b) * b.n_rows for b in batches) / args.rows
             elapsed += time.perf_counter() - t
@@ -128,7 +128,7 @@ def main() -> None:
             print(f"{name:8s} pass {p + 1}: progressive {progressive:.5f}  holdout {loss:.5f}  "
                   f"gap {100 * (loss - best) / best:+.3f}%")
         first_time = first_time or elapsed
-        print(f"{name:8s} {elapsed:.1f} s for {args.passes} passes, time ratio to {names[0]} "
+        print(f"{name:8s} {elapsed:.1f} s for {args.epochs} passes, time ratio to {names[0]} "
               f"{elapsed / first_time:.2f}")
 
 

@@ -7,7 +7,7 @@ Generates (once, under bench_data/) the 20-field benchmark log of scripts/loggen
 "bench20": Zipf vocabularies from 3 to 2e5, one interaction, 2^20 buckets): ``--train-days`` days of
 training rows and one holdout day. In one run it measures
 
-- the reference optimum: the same objective (the default --l2, per-row average, intercept free)
+- the reference optimum: the same objective (the default --l2-strength, per-row average, intercept free)
   minimized over the whole hashed training CSR by scipy.optimize L-BFGS-B with a tight tolerance,
   and its holdout log-loss LL*;
 - the peer: scikit-learn SGDClassifier(loss="log_loss") on the same in-memory CSR, constant steps
@@ -152,7 +152,7 @@ def run_hashcurve(logs: Path, spec_path: Path, train_end: str, hold_day: str, pa
     with tempfile.TemporaryDirectory(prefix="bench-model-") as out:
         t = time.perf_counter()
         api.train(spec_path, logs / "logs", Path(out) / "m", end=train_end, holdout_start=hold_day,
-                  holdout_end=hold_day, passes=passes, patience=passes, log=print)
+                  holdout_end=hold_day, epochs=passes, patience=passes)
         wall = time.perf_counter() - t
         rows = [json.loads(x) for x in (Path(out) / "m" / "metrics.jsonl").read_text().splitlines()]
     spent, hist = 0.0, []
@@ -171,7 +171,7 @@ def time_split(spec, logs: Path, train_end: str) -> dict:
     t = time.perf_counter()
     batches = list(reader.batches())
     t_read = time.perf_counter() - t
-    solver = make_solver(opt.solver, spec.n_buckets, opt.loss, opt.l2, history=opt.history, step0=opt.step0)
+    solver = make_solver(opt.solver, spec.n_buckets, opt.loss, opt.l2_strength, history=opt.history, step0=opt.step0)
     t = time.perf_counter()
     for b in batches:
         solver.step(b)
@@ -188,7 +188,7 @@ def peak_rss(logs: Path, spec_path: Path, train_end: str) -> float:
     with tempfile.TemporaryDirectory() as tmp:
         done = subprocess.run([sys.executable, "-c", PEAK_PROBE, "train", "--spec", str(spec_path), "--data",
                                str(logs / "logs"), "--end", train_end, "--out", str(Path(tmp) / "m"),
-                               "--passes", "1", "--quiet"], stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
+                               "--epochs", "1", "--quiet"], stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
                               text=True)
         if done.returncode != 0:
             raise SystemExit(f"hashcurve train failed with status {done.returncode}: {done.stderr.strip()}")
@@ -199,7 +199,7 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--rows-per-day", type=int, default=250_000)
     ap.add_argument("--train-days", type=int, default=4)
-    ap.add_argument("--passes", type=int, default=3, help="hashcurve passes to run (defaults otherwise)")
+    ap.add_argument("--epochs", type=int, default=3, help="hashcurve passes to run (defaults otherwise)")
     ap.add_argument("--memory", action="store_true", help="also measure peak RSS on 1x and 4x the log")
     ap.add_argument("--skip-peer", action="store_true")
     a = ap.parse_args()
@@ -213,21 +213,21 @@ def main() -> None:
 
     print("warming the numba cache on the first day of the log ...", flush=True)
     with tempfile.TemporaryDirectory() as tmp:
-        api.train(spec_path, folder / "logs", Path(tmp) / "w", start=days[0], end=days[0], passes=1,
-                  holdout_start=hold_day, holdout_end=hold_day)
+        api.train(spec_path, folder / "logs", Path(tmp) / "w", start=days[0], end=days[0], epochs=1,
+                  holdout_start=hold_day, holdout_end=hold_day, quiet=True)
 
     X, y = load_csr(spec, folder / "logs", days[0], train_end)
     Xh, yh = load_csr(spec, folder / "logs", hold_day, hold_day)
     print(f"train {X.shape[0]:,} rows, holdout {Xh.shape[0]:,} rows, {X.shape[1]:,} buckets, "
-          f"{X.nnz / X.shape[0]:.1f} entries per row, l2 = {opt.l2:g}", flush=True)
+          f"{X.nnz / X.shape[0]:.1f} entries per row, l2 = {opt.l2_strength:g}", flush=True)
 
-    w, b, fstar, secs, nit = reference_optimum(X, y, opt.l2)
+    w, b, fstar, secs, nit = reference_optimum(X, y, opt.l2_strength)
     ll_star = log_loss(yh, Xh @ w + b)
     print(f"reference optimum: objective {fstar:.6f}, holdout LL* {ll_star:.5f} "
           f"(L-BFGS-B {nit} iterations, {secs:.0f} s)", flush=True)
     target = TARGET * ll_star
 
-    ours = run_hashcurve(folder, spec_path, train_end, hold_day, a.passes)
+    ours = run_hashcurve(folder, spec_path, train_end, hold_day, a.epochs)
     for h in ours:
         print(f"  hashcurve pass {h['pass']}: LL {h['ll']:.5f} = {h['ll'] / ll_star:.4f} LL*, "
               f"{h['seconds']:.1f} s cumulative training time", flush=True)
@@ -240,7 +240,7 @@ def main() -> None:
 
     if not a.skip_peer:
         print("\npeer grid (scikit-learn SGDClassifier on in-memory CSR):", flush=True)
-        peer = run_peer(X, y, Xh, yh, opt.l2, target)
+        peer = run_peer(X, y, Xh, yh, opt.l2_strength, target)
         best_one = min(p["history"][0]["ll"] for p in peer)
         peer_best_time = min((p["reached"]["seconds"] for p in peer if p["reached"]), default=float("inf"))
         peer_pass_time = float(np.median([p["history"][0]["seconds"] for p in peer]))

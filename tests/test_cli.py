@@ -3,10 +3,14 @@
 
 import json
 
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
 
 from trainer.cli import main
+from trainer.spec import load_spec
 
-from conftest import SMALL_SPEC, assert_one_line
+from conftest import SMALL_SPEC, assert_one_line, make_model, make_table
 
 
 def run(capsys, *argv):
@@ -40,7 +44,7 @@ def test_column_absent_names_column_and_file(small_log, tmp_path, capsys):
     spec.write_text(json.dumps({**SMALL_SPEC, "features": SMALL_SPEC["features"] + [
         {"column": "colour", "kind": "categorical"}]}))
     code, err = run(capsys, "train", "--spec", str(spec), "--data", str(root), "--out", str(tmp_path / "m"))
-    assert_one_line(code, err, "column 'colour' named in the spec is not in the file")
+    assert_one_line(code, err, "column 'colour' named by the spec is not in the file")
     assert ".parquet" in err
 
 
@@ -60,3 +64,32 @@ def test_unknown_command_and_option(capsys):
     assert_one_line(code, err, "invalid choice")
     code, err = run(capsys, "train", "--spec", "x", "--data", "y", "--out", "z", "--colour", "red")
     assert_one_line(code, err, "--colour")
+
+
+def test_evaluate_by_names_the_option_that_named_the_column(small_log, tmp_path, capsys):
+    root, spec = small_log
+    make_model(load_spec(spec)).save(tmp_path / "m")
+    code, err = run(capsys, "evaluate", "--model", str(tmp_path / "m"), "--data", str(root), "--by", "nosuchcol")
+    assert_one_line(code, err, "column 'nosuchcol' named by --by is not in the file")
+
+
+def test_evaluate_by_table_columns_line_up_and_no_empty_null_row(tmp_path, capsys):
+    # a segment column without nulls, and every
+    # row of the text table must end at the same column (our own layout; fixed-width columns are
+    # common practice for terminal tables)
+    rng = np.random.default_rng(3)
+    table = make_table(rng, 900)
+    region = pa.array(rng.choice(["north", "south", "east"], 900))
+    pq.write_table(table.append_column("region", region), tmp_path / "log.parquet")
+    spec = tmp_path / "spec.json"
+    spec.write_text(json.dumps(SMALL_SPEC))
+    make_model(load_spec(spec)).save(tmp_path / "m")
+    code = main(["evaluate", "--model", str(tmp_path / "m"), "--data", str(tmp_path / "log.parquet"),
+                 "--by", "region"])
+    out = capsys.readouterr().out
+    assert code == 0
+    rows = out.split("log-loss\n", 2)[-1].splitlines()
+    values, counts = np.unique(region.to_numpy(zero_copy_only=False).astype(str), return_counts=True)
+    assert [r.split()[0] for r in rows] == list(values[np.lexsort((values, -counts))])  # numpy count order
+    assert "(null)" not in out
+    assert len({len(r) for r in rows}) == 1

@@ -53,7 +53,7 @@ def test_demo_model_close_to_full_batch_optimum(result):
     X, y = hashed(spec, *result["train_days"].split(".."))
     Xh, yh = hashed(spec, result["holdout_day"], result["holdout_day"])
     n = X.shape[1]
-    opt = reference_optimum(reference_objective("logistic", X, y, np.ones(X.shape[0]), TrainOptions().l2), n + 1)
+    opt = reference_optimum(reference_objective("logistic", X, y, np.ones(X.shape[0]), TrainOptions().l2_strength), n + 1)
     ll_star = log_loss(yh, expit(Xh @ opt.x[:n] + opt.x[n]))
     # the one-pass quality target of the README's Performance table: within 1% of LL*
     assert result["summary"]["log_loss"] <= 1.01 * ll_star

@@ -11,7 +11,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from trainer.errors import UserError
-from trainer.model import Model, collision_share, export_model, format_inspect, inspect_model, load_model
+from trainer.model import Model, shared_bucket_share, export_model, format_inspect, inspect_model, load_model
 from trainer.reader import Reader
 from trainer.spec import load_spec, parse_spec
 
@@ -33,7 +33,7 @@ def first_batch(small_log):
 
 def test_save_load_round_trip_is_exact(tmp_path):
     # reference: identity of float64 through .npz and of JSON through Python's json (common practice)
-    info = {"options": {"l2": 1e-4, "passes": 3}, "summary": {"rows": 12, "distinct_tokens": 500},
+    info = {"options": {"l2_strength": 1e-4, "epochs": 3}, "summary": {"rows": 12, "distinct_tokens": 500},
             "holdout": {"log_loss": 0.31, "auc": math.nan}, "examples": {"7": ["shop\x1fshop-1"]},
             "negative_keep_rate": 0.25}
     m = make_model(SPEC, info=info)
@@ -165,26 +165,25 @@ def test_squared_hinge_probability_needs_calibration(small_log):
         make_model(SPEC, loss="logistic", calibration=CAL)
 
 
-@pytest.mark.parametrize("d,m", [(300, 1024), (2000, 4096), (50, 64)])
-def test_collision_estimate_against_simulation(d, m):
+@pytest.mark.parametrize("d,m", [(300, 1024), (2000, 4096), (5000, 4096)])
+def test_shared_bucket_estimate_against_simulation(d, m):
     # reference: direct simulation with numpy, D tokens thrown uniformly into m buckets
-    # (balls in bins / birthday problem, common practice); 4 standard errors of the mean
+    # (balls in bins, common practice); 4 standard errors of the mean
     rng = np.random.default_rng(11)
     trials = 400
     shares = np.empty(trials)
     for t in range(trials):
-        b = rng.integers(0, m, d)
-        counts = np.bincount(b, minlength=m)
-        shares[t] = np.mean(counts[b] > 1)
+        counts = np.bincount(rng.integers(0, m, d), minlength=m)
+        shares[t] = np.count_nonzero(counts > 1) / np.count_nonzero(counts)
     se = shares.std(ddof=1) / math.sqrt(trials)
-    assert abs(collision_share(d, m) - shares.mean()) < 4 * se
-    assert collision_share(1, m) == 0.0 and collision_share(0, m) == 0.0
+    assert abs(shared_bucket_share(d, m) - shares.mean()) < 4 * se
+    assert shared_bucket_share(1, m) == 0.0 and shared_bucket_share(0, m) == 0.0
 
 
 def test_inspect_reports_size_weights_and_examples(tmp_path):
     w = make_model(SPEC).weights
     top, bottom = int(np.argmax(w)), int(np.argmin(w))
-    m = Model(SPEC, w, -0.5, "logistic", {"summary": {"rows": 100, "distinct_tokens": 900}, "options": {"l2": 0.001},
+    m = Model(SPEC, w, -0.5, "logistic", {"summary": {"rows": 100, "distinct_tokens": 900}, "options": {"l2_strength": 0.001},
                                           "examples": {top: ["shop=shop-3 & hour=7"], bottom: ["tags=t2"]}})
     m.save(tmp_path / "m")
     export_model(tmp_path / "m", tmp_path / "e")
@@ -195,10 +194,12 @@ def test_inspect_reports_size_weights_and_examples(tmp_path):
         assert d["top_positive"][0] == {"bucket": top, "weight": float(m.weights[top]),
                                         "examples": ["shop=shop-3 & hour=7"]}
         assert [r["bucket"] for r in d["top_negative"]] == np.argsort(m.weights)[:3].tolist()  # numpy argsort
-        # reference: 1 - ((m-1)/m)^(D-1) evaluated directly in float64 (birthday problem, common practice)
-        assert d["collision"]["expected_share_colliding"] == pytest.approx(1 - (4095 / 4096) ** 899, rel=1e-12)
+        # reference: 1 - D (1-1/m)^(D-1) / (m (1 - (1-1/m)^D)) evaluated directly in float64 (balls in
+        # bins, common practice)
+        assert d["collision"]["shared_bucket_share"] == pytest.approx(
+            1 - 900 * (4095 / 4096) ** 899 / (4096 * (1 - (4095 / 4096) ** 900)), rel=1e-12)
         text = format_inspect(d)
-        assert "shop=shop-3 & hour=7" in text and "tags=t2" in text and "l2=0.001" in text
+        assert "shop=shop-3 & hour=7" in text and "tags=t2" in text and "l2_strength=0.001" in text
     plain = make_model(SPEC, seed=4)
     plain.save(tmp_path / "p")
     d = inspect_model(tmp_path / "p")

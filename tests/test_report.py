@@ -123,7 +123,7 @@ def make_run(loss="logistic", title="Run of 2026-03-04", examples=("shop=shop-3"
                "holdout": holdout(k)} for k in (1, 2, 3)]
     return {
         "title": title,
-        "options": {"passes": 3, "l2": 1e-6, "bits": 18, "holdout": "day >= 2026-03-03"},
+        "options": {"epochs": 3, "l2_strength": 1e-6, "bits": 18, "holdout": "day >= 2026-03-03"},
         "passes": passes,
         "progress": [{"rows": r, "loss": 0.4 + 0.3 / (1 + r / 500)} for r in range(100, 9001, 100)],
         "final_holdout": passes[-1]["holdout"],

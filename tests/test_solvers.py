@@ -233,8 +233,8 @@ def test_huge_step_raises_diverged_and_keeps_state(name, loss):
 @pytest.mark.parametrize("call, option", [
     (lambda: make_solver("bfgs", 8, "logistic", 0.0), "--solver"),
     (lambda: make_solver("olbfgs", 8, "hinge", 0.0), "--loss"),
-    (lambda: make_solver("olbfgs", 8, "logistic", -1.0), "--l2"),
-    (lambda: make_solver("olbfgs", 8, "logistic", float("nan")), "--l2"),
+    (lambda: make_solver("olbfgs", 8, "logistic", -1.0), "--l2-strength"),
+    (lambda: make_solver("olbfgs", 8, "logistic", float("nan")), "--l2-strength"),
     (lambda: make_solver("olbfgs", 8, "logistic", 0.0, history=0), "--history"),
     (lambda: make_solver("sgd", 8, "logistic", 0.0, history=5), "--history"),
     (lambda: make_solver("olbfgs", 8, "logistic", 0.0, step0=0.0), "--step0"),

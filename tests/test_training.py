@@ -34,7 +34,7 @@ def log_4files(tmp_path_factory):
 
 def cli_args(spec, data, out, *extra):
     return ["train", "--spec", str(spec), "--data", str(data), "--out", str(out), "--batch-rows", "500",
-            "--passes", "2", "--shuffle-buffer", "3000", "--seed", "4", "--quiet", *extra]
+            "--epochs", "2", "--shuffle-buffer", "3000", "--seed", "4", "--quiet", *extra]
 
 
 def weights_of(folder):
@@ -78,28 +78,28 @@ def test_resume_refusals_leave_checkpoint_untouched(log_4files, tmp_path, capsys
     # Common practice: refuse a mismatched or corrupt state and leave it as it was (byte comparison).
     data, spec = log_4files
     out = tmp_path / "m"
-    assert main(cli_args(spec, data, out, "--passes", "1")) == 0
+    assert main(cli_args(spec, data, out, "--epochs", "1")) == 0
     ckpt = out / "checkpoint.bin"
     before = ckpt.read_bytes()
-    assert main(cli_args(spec, data, out, "--passes", "1", "--l2", "0.5", "--resume")) == 2
-    assert "--l2 differs" in capsys.readouterr().err
+    assert main(cli_args(spec, data, out, "--epochs", "1", "--l2-strength", "0.5", "--resume")) == 2
+    assert "--l2-strength differs" in capsys.readouterr().err
     other = tmp_path / "other.json"
     other.write_text(json.dumps({**SMALL_SPEC, "hashing": {"bits": 13, "seed": 42}}))
-    assert main(cli_args(other, data, out, "--passes", "1", "--resume")) == 2
+    assert main(cli_args(other, data, out, "--epochs", "1", "--resume")) == 2
     assert "the spec differs" in capsys.readouterr().err
     ckpt.write_bytes(before[:-100])
-    assert main(cli_args(spec, data, out, "--passes", "1", "--resume")) == 2
+    assert main(cli_args(spec, data, out, "--epochs", "1", "--resume")) == 2
     assert "corrupt" in capsys.readouterr().err
     assert ckpt.read_bytes() == before[:-100]
-    assert main(cli_args(spec, data, out, "--passes", "1")) == 2  # another run's folder
+    assert main(cli_args(spec, data, out, "--epochs", "1")) == 2  # another run's folder
     assert "--force" in capsys.readouterr().err
 
 
 @pytest.mark.parametrize("option,value,needle", [
-    ("--passes", "0", "--passes"), ("--l2", "-1", "--l2"), ("--history", "0", "--history"),
+    ("--epochs", "0", "--epochs"), ("--l2-strength", "-1", "--l2-strength"), ("--history", "0", "--history"),
     ("--batch-rows", "0", "--batch-rows"), ("--negative-keep-rate", "0", "--negative-keep-rate"),
     ("--negative-keep-rate", "1.5", "--negative-keep-rate"), ("--solver", "newton", "--solver"),
-    ("--loss", "hinge", "--loss"), ("--passes", "two", "--passes"),
+    ("--loss", "hinge", "--loss"), ("--epochs", "two", "--epochs"),
 ])
 def test_bad_options_exit_2_and_write_nothing(log_4files, tmp_path, capsys, option, value, needle):
     # Common practice for command-line tools: usage errors exit 2 with one line on stderr.
@@ -137,6 +137,6 @@ def test_negative_downsampling_stays_calibrated(tmp_path):
     spec.write_text(json.dumps({"label": {"column": "y"}, "hashing": {"bits": 10},
                                 "features": [{"column": "shop", "kind": "categorical"}]}))
     api.train(spec, tmp_path / "train.parquet", tmp_path / "m", holdout=tmp_path / "hold.parquet",
-              negative_keep_rate=0.2, passes=3, batch_rows=2000)
+              negative_keep_rate=0.2, epochs=3, batch_rows=2000)
     s = api.evaluate(tmp_path / "m", tmp_path / "hold.parquet")
     assert abs(s["calibration_ratio"] - 1) < 0.02

@@ -1,15 +1,14 @@
 """The command line's verbs for notebooks: train, evaluate, score, export, inspect, report, demo.
 
-Every function takes plain values, returns data, prints nothing (training reports through ``log``)
-and raises ``trainer.errors.UserError`` for the user's mistakes.
+Every function takes plain values, returns data and raises ``trainer.errors.UserError`` for the
+user's mistakes. Only training prints: its per-pass table and, on a terminal, its progress bar, both
+silenced by ``quiet=True`` like the command line's ``--quiet``.
 """
 
 from __future__ import annotations
 
 import json
 from pathlib import Path
-from typing import Callable
-
 
 from trainer.atomic import write_atomic
 from trainer.errors import UserError
@@ -25,8 +24,7 @@ __all__ = ["train", "evaluate", "score", "export", "inspect", "report", "demo", 
 
 
 def train(spec: str | Path | Spec, data: str | Path, out: str | Path, *, holdout: str | Path | None = None,
-          resume: bool = False, force: bool = False, log: Callable[[str], None] | None = None,
-          progress_bar: bool = False, **options) -> Model:
+          resume: bool = False, force: bool = False, quiet: bool = False, **options) -> Model:
     """Train a model from ``data`` into the folder ``out`` and return it.
 
     ``spec``: a spec file or Spec; ``holdout``: a holdout log (or use ``holdout_start``/``holdout_end``
@@ -41,7 +39,7 @@ def train(spec: str | Path | Spec, data: str | Path, out: str | Path, *, holdout
     if unknown:
         raise UserError(f"train: unknown option(s) {', '.join(sorted(unknown))}")
     trainer = Trainer(spec, data, out, TrainOptions(**options), holdout=holdout, resume=resume, force=force,
-                      log=log, progress_bar=progress_bar)
+                      quiet=quiet)
     return trainer.run()
 
 
@@ -56,7 +54,7 @@ def evaluate(model: str | Path | Model, data: str | Path, *, start=None, end=Non
     if segments < 1:
         raise UserError(f"--segments must be an integer >= 1; got {segments}")
     reader = Reader(model.spec, data, parse_day(start, "--start"), parse_day(end, "--end"), batch_rows=65536,
-                    skip_bad_labels=skip_bad_labels, keep=(by,) if by else ())
+                    skip_bad_labels=skip_bad_labels, keep=(by,) if by else (), keep_option="--by")
     summary = _evaluate(model, reader, by=by, segments=segments)
     if reader.counts.bad_labels:
         summary["skipped_bad_labels"] = reader.counts.bad_labels
@@ -115,8 +113,7 @@ def demo_data_dir() -> Path:
                     "run from a source checkout (pip install -e .)")
 
 
-def demo(out: str | Path = "hashcurve-demo", *, log: Callable[[str], None] | None = None,
-         progress_bar: bool = False) -> dict:
+def demo(out: str | Path = "hashcurve-demo", *, quiet: bool = False) -> dict:
     """The whole job on the shipped demo logs: train on all days but the last with default options,
     evaluate the last day after each pass, export, score the held-out day and write the report.
     Returns the paths written (model, export, scores, report, evaluation)."""
@@ -128,7 +125,7 @@ def demo(out: str | Path = "hashcurve-demo", *, log: Callable[[str], None] | Non
     out = Path(out)
     model_dir, export_dir = out / "model", out / "export"
     train(root / "spec.json", logs, model_dir, end=days[-2], holdout_start=days[-1], holdout_end=days[-1],
-          force=True, log=log, progress_bar=progress_bar)
+          force=True, quiet=quiet)
     export(model_dir, export_dir, force=True)
     scores = out / "holdout-scores.parquet"
     score(export_dir, logs, scores, start=days[-1], end=days[-1])

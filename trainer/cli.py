@@ -40,7 +40,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("demo", help="train, evaluate, export, score and report on the shipped demo logs")
     p.add_argument("--out", default="hashcurve-demo", help="folder for every output (default: %(default)s)")
-    p.add_argument("--quiet", action="store_true", help="no progress bars")
+    p.add_argument("--quiet", action="store_true", help="no progress bars or per-pass table")
 
     p = sub.add_parser("train", help="train a model from a Parquet log")
     p.add_argument("--spec", required=True, help="feature spec (JSON)")
@@ -50,10 +50,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--holdout", help="holdout log (default: --data, when holdout dates are given)")
     p.add_argument("--holdout-start", metavar="YYYY-MM-DD", help="first holdout day (inclusive)")
     p.add_argument("--holdout-end", metavar="YYYY-MM-DD", help="last holdout day (inclusive)")
-    p.add_argument("--passes", type=int, default=d.passes, help="passes over the data (default: %(default)s)")
+    p.add_argument("--epochs", type=int, default=d.epochs, help="passes over the data (default: %(default)s)")
     p.add_argument("--loss", default=d.loss, help="logistic or squared-hinge (default: %(default)s)")
     p.add_argument("--solver", default=d.solver, help="olbfgs, res, sgd or adagrad (default: %(default)s)")
-    p.add_argument("--l2", type=float, default=d.l2, help="L2 strength lambda, per-row average form "
+    p.add_argument("--l2-strength", type=float, default=d.l2_strength, help="L2 strength lambda, per-row average form "
                    "(default: %(default)s)")
     p.add_argument("--history", type=int, default=d.history, help="curvature pairs kept (default: %(default)s)")
     p.add_argument("--batch-rows", type=int, default=d.batch_rows, help="rows per step (default: %(default)s)")
@@ -105,7 +105,10 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _fmt(v, spec=".5f") -> str:
-    return format(v, spec) if isinstance(v, (int, float)) and math.isfinite(v) else "-"
+    """``v`` formatted by ``spec``, or "-" (right-aligned to the spec's width) when not a finite number."""
+    if isinstance(v, (int, float)) and math.isfinite(v):
+        return format(v, spec)
+    return format("-", f">{spec.split('.')[0]}")
 
 
 def format_summary(s: dict) -> str:
@@ -135,17 +138,17 @@ def format_summary(s: dict) -> str:
 
 
 def _train(a) -> None:
-    options = {k: getattr(a, k) for k in ("passes", "loss", "solver", "l2", "history", "batch_rows", "step0",
+    options = {k: getattr(a, k) for k in ("epochs", "loss", "solver", "l2_strength", "history", "batch_rows", "step0",
                                           "seed", "shuffle_buffer", "negative_keep_rate", "patience",
                                           "checkpoint_every", "start", "end", "holdout_start", "holdout_end",
                                           "skip_bad_labels")}
     api.train(a.spec, a.data, a.out, holdout=a.holdout, resume=a.resume, force=a.force,
-              log=None if a.quiet else print, progress_bar=not a.quiet, **options)
+              quiet=a.quiet, **options)
     print(f"model written to {a.out}")
 
 
 def _demo(a) -> None:
-    out = api.demo(a.out, log=print, progress_bar=not a.quiet)
+    out = api.demo(a.out, quiet=a.quiet)
     print(f"\ntrained on {out['train_days']}, held out {out['holdout_day']}:")
     print(format_summary(out["summary"]))
     print("\noutputs:")

@@ -46,9 +46,11 @@ class SegmentSums:
             self.sums[:, j] += np.bincount(g, weights=v, minlength=size)
 
     def table(self, limit: int) -> list[dict]:
-        """The ``limit`` largest segments by rows (ties by value), then the rest pooled as one row."""
+        """The ``limit`` largest segments by rows (ties by value), then the rest pooled as one row;
+        values that no row had (an empty null segment) are left out."""
         names = sorted(self.ids, key=self.ids.get)
         order = np.lexsort((np.array(names, dtype=object), -self.sums[:, 0]))
+        order = order[self.sums[order, 0] > 0]
         top, rest = order[:limit], order[limit:]
         rows = [self._row(names[i], self.sums[i]) for i in top]
         if rest.size:

@@ -476,18 +476,19 @@ def export_model(model_path: str | Path, out_dir: str | Path, force: bool = Fals
 # inspect
 
 
-def collision_share(distinct_tokens: int, n_buckets: int) -> float:
-    """Expected share of ``distinct_tokens`` tokens that share their bucket with at least one other
-    token when hashed uniformly into ``n_buckets`` buckets: 1 - ((m - 1) / m)^(D - 1), the occupancy
-    result of the birthday problem (common practice), computed as -expm1((D-1) log1p(-1/m)).
-    Returns 0.0 for D <= 1. Raises ValueError for m < 1."""
+def shared_bucket_share(distinct_tokens: int, n_buckets: int) -> float:
+    """Expected share of the occupied buckets that hold two or more of ``distinct_tokens`` tokens
+    hashed uniformly into ``n_buckets`` buckets (balls in bins, common practice): one minus the
+    expected number of buckets with exactly one token, D (1 - 1/m)^(D-1), over the expected number of
+    occupied buckets, m (1 - (1 - 1/m)^D). Returns 0.0 for D <= 1; raises ValueError for m < 1."""
     if n_buckets < 1:
         raise ValueError("n_buckets must be >= 1")
     if distinct_tokens <= 1:
         return 0.0
     if n_buckets == 1:
         return 1.0
-    return float(-math.expm1((distinct_tokens - 1) * math.log1p(-1.0 / n_buckets)))
+    d, m, q = distinct_tokens, n_buckets, math.log1p(-1.0 / n_buckets)
+    return float(1.0 - d * math.exp((d - 1) * q) / (-m * math.expm1(d * q)))
 
 
 def inspect_model(path: str | Path, top: int = 10) -> dict:
@@ -497,8 +498,8 @@ def inspect_model(path: str | Path, top: int = 10) -> dict:
     ``has_probability``, ``intercept``, ``bits``, ``buckets`` (2^bits), ``bytes`` (size on disk of
     the folder's model files), ``nonzero`` and ``nonzero_share``, ``distinct_tokens`` (from
     ``info["summary"]`` when training recorded it, else None), ``collision`` (None without
-    ``distinct_tokens``, else the expected share of tokens sharing a bucket, :func:`collision_share`,
-    and the expected number of occupied buckets m (1 - (1 - 1/m)^D)), ``top_positive`` and
+    ``distinct_tokens``, else ``tokens``, ``buckets`` and ``shared_bucket_share``, the expected share of
+    the occupied buckets that hold two or more tokens, :func:`shared_bucket_share`), ``top_positive`` and
     ``top_negative`` (``top`` strongest weights with example token strings, :meth:`Model.top_weights`),
     ``calibration``, ``negative_keep_rate``, ``options``, ``summary`` and ``holdout``.
     Raises UserError like :func:`load_model`.
@@ -512,9 +513,7 @@ def inspect_model(path: str | Path, top: int = 10) -> dict:
     d = model.info["summary"].get("distinct_tokens")
     collision = None
     if isinstance(d, int) and not isinstance(d, bool) and d >= 0:
-        collision = {"tokens": d, "buckets": m, "expected_share_colliding": collision_share(d, m),
-                     "expected_occupied_buckets": float(-m * math.expm1(d * math.log1p(-1.0 / m))) if m > 1
-                     else float(min(d, 1))}
+        collision = {"tokens": d, "buckets": m, "shared_bucket_share": shared_bucket_share(d, m)}
     else:
         d = None
     return jsonable({
@@ -562,8 +561,8 @@ def format_inspect(d: dict) -> str:
     if c is None:
         lines.append("tokens     distinct count not recorded; collision rate unknown")
     else:
-        lines.append(f"tokens     {c['tokens']:,} distinct; expected {100 * c['expected_share_colliding']:.2f}% share "
-                     f"a bucket; ~{c['expected_occupied_buckets']:,.0f} buckets occupied")
+        lines.append(f"tokens     ~{c['tokens']:,} distinct (estimated from the non-zero buckets); expected "
+                     f"{100 * c['shared_bucket_share']:.2f}% of the occupied buckets hold two or more")
     for title, rows in (("largest positive weights", d["top_positive"]), ("largest negative weights", d["top_negative"])):
         lines.append(f"{title}:")
         if not rows:

@@ -107,7 +107,7 @@ def _base_type(t: pa.DataType) -> pa.DataType:
 
 def discover(path: str | Path, spec: Spec | None, start: dt.date | None = None,
              end: dt.date | None = None, *, need: list[str] | None = None,
-             missing_ok: tuple[str, ...] = ()) -> list[DataFile]:
+             missing_ok: tuple[str, ...] = (), named_by: dict[str, str] | None = None) -> list[DataFile]:
     """Find the Parquet files under ``path`` (a file, a folder, or a hive-partitioned folder).
 
     In a folder, files ending in .parquet or .parq count, except hidden ones (a path part starting
@@ -115,7 +115,8 @@ def discover(path: str | Path, spec: Spec | None, start: dt.date | None = None,
     Files outside ``[start, end]`` by a partition key named as the spec's time column are pruned.
     Every file's footer is read to check that it is Parquet, that it has the columns in ``need``
     (default: all the spec's columns; ones in ``missing_ok`` may be absent) and that all files agree
-    on their types. Raises UserError naming the file and column.
+    on their types. Raises UserError naming the file and column, and what named the column
+    (``named_by[column]``, e.g. "--by"; default "the spec").
     """
     root = Path(path)
     if not root.exists():
@@ -154,7 +155,7 @@ def discover(path: str | Path, spec: Spec | None, start: dt.date | None = None,
             if schema.get_field_index(col) < 0:
                 if col in missing_ok:
                     continue
-                raise UserError(f"{p}: column '{col}' named in the spec is not in the file "
+                raise UserError(f"{p}: column '{col}' named by {(named_by or {}).get(col, 'the spec')} is not in the file "
                                 f"(columns: {', '.join(schema.names[:12])})")
             t = _base_type(schema.field(col).type)
             if col in seen_types and seen_types[col][0] != t:
@@ -612,6 +613,7 @@ class Reader:
     a feature column absent from a file reads as all null. ``dictionary``: read string columns
     dictionary-encoded (each distinct value hashed once per chunk); both ways give the same batches.
     ``examples``: a BucketExamples that records readable values per bucket as rows are hashed.
+    ``keep_option``: the option that named ``keep`` (for error messages).
     """
 
     spec: Spec
@@ -625,6 +627,7 @@ class Reader:
     with_labels: bool = True
     skip_bad_labels: bool = False
     keep: tuple[str, ...] = ()
+    keep_option: str = "--keep"
     missing_as_null: bool = False
     dictionary: bool = True
     chunk_rows: int = CHUNK_ROWS
@@ -640,7 +643,8 @@ class Reader:
             need = [c for c in need if c != self.spec.time_column]
         self._need = list(dict.fromkeys(need + list(self.keep)))
         missing_ok = tuple(f.column for f in self.spec.features) if self.missing_as_null else ()
-        self.files = discover(self.path, self.spec, self.start, self.end, need=self._need, missing_ok=missing_ok)
+        self.files = discover(self.path, self.spec, self.start, self.end, need=self._need, missing_ok=missing_ok,
+                              named_by={c: self.keep_option for c in self.keep if c not in need})
         self.featurizer = Featurizer(self.spec, self.examples)
 
     @property

@@ -24,7 +24,6 @@ import sys
 import time
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable
 
 import numpy as np
 from tqdm import tqdm
@@ -45,16 +44,19 @@ PROGRESS_POINTS_PER_PASS = 200
 #: Platt scaling of squared-hinge models is fitted on at most this many holdout rows (in file
 #: order), so memory does not grow with the holdout.
 PLATT_ROWS = 1_000_000
+#: A pass whose holdout predicted/observed ratio falls outside this range is marked "!" in the
+#: per-pass table, with a one-line note (a band for a first look, common practice; not a test).
+CALIBRATED = (0.8, 1.25)
 
 
 @dataclass
 class TrainOptions:
     """Training options; the ones in ``TRAJECTORY`` decide the weights and must match on resume."""
 
-    passes: int = 3
+    epochs: int = 3
     loss: str = "logistic"
     solver: str = "olbfgs"
-    l2: float = 1e-4
+    l2_strength: float = 1e-4
     history: int = 10
     batch_rows: int = 4096
     step0: float | None = None
@@ -69,15 +71,15 @@ class TrainOptions:
     holdout_end: dt.date | None = None
     skip_bad_labels: bool = False
 
-    TRAJECTORY = ("loss", "solver", "l2", "history", "batch_rows", "step0", "seed", "shuffle_buffer",
+    TRAJECTORY = ("loss", "solver", "l2_strength", "history", "batch_rows", "step0", "seed", "shuffle_buffer",
                   "negative_keep_rate", "start", "end", "skip_bad_labels")
 
     def validate(self) -> None:
         """Raise UserError naming the first option outside its accepted range."""
-        check_int("--passes", self.passes, 1, 10_000)
+        check_int("--epochs", self.epochs, 1, 10_000)
         check_choice("--loss", self.loss, ("logistic", "squared-hinge"))
         check_choice("--solver", self.solver, SOLVER_NAMES)
-        check_float("--l2", self.l2, 0.0, 1e6)
+        check_float("--l2-strength", self.l2_strength, 0.0, 1e6)
         check_int("--history", self.history, 1, 100)
         check_int("--batch-rows", self.batch_rows, 1, 10_000_000)
         if self.step0 is not None:
@@ -133,6 +135,14 @@ class _StopFlag:
             signal.signal(s, h)
 
 
+def _off_calibration(holdout: dict | None) -> float | None:
+    """The holdout's predicted/observed ratio when it lies outside ``CALIBRATED``, else None."""
+    ratio = (holdout or {}).get("calibration_ratio")
+    if ratio is None or not math.isfinite(ratio) or CALIBRATED[0] <= ratio <= CALIBRATED[1]:
+        return None
+    return ratio
+
+
 def _holdout_score(summary: dict, loss: str) -> float:
     return summary["log_loss"] if loss == "logistic" else summary["squared_hinge_loss"]
 
@@ -142,18 +152,18 @@ class Trainer:
 
     ``spec``: the feature spec; ``data``: training log path; ``holdout``: holdout log path or None
     (with ``options.holdout_start/end`` it may be the training path itself); ``resume``: continue
-    from ``out/checkpoint.bin``; ``force``: replace another run's files in ``out``; ``log``: where
-    lines for the user go (None for quiet); ``progress_bar``: show tqdm bars.
+    from ``out/checkpoint.bin``; ``force``: replace another run's files in ``out``; ``quiet``: no
+    progress bar and no per-pass table (otherwise the table goes to stdout and the bar, on a
+    terminal only, to stderr).
     Raises UserError for bad options, data or model folders before writing anything.
     """
 
     def __init__(self, spec: Spec, data: str | Path, out: str | Path, options: TrainOptions, *,
                  holdout: str | Path | None = None, resume: bool = False, force: bool = False,
-                 log: Callable[[str], None] | None = print, progress_bar: bool = True):
+                 quiet: bool = False):
         options.validate()
         self.spec, self.opt, self.out = spec, options, Path(out)
-        self.log = log or (lambda _line: None)
-        self.progress_bar = progress_bar
+        self.quiet = quiet
         self.data = str(data)
         self.holdout_path = str(holdout) if holdout is not None else (
             self.data if (options.holdout_start or options.holdout_end) else None)
@@ -164,7 +174,7 @@ class Trainer:
         self.holdout = (Reader(spec, self.holdout_path, options.holdout_start, options.holdout_end,
                                batch_rows=65536, skip_bad_labels=options.skip_bad_labels)
                         if self.holdout_path else None)
-        self.solver = make_solver(options.solver, spec.n_buckets, options.loss, options.l2,
+        self.solver = make_solver(options.solver, spec.n_buckets, options.loss, options.l2_strength,
                                   history=options.history, step0=options.step0, seed=options.seed)
         self.state = _State()
         self.ckpt = self.out / "checkpoint.bin"
@@ -264,7 +274,7 @@ class Trainer:
         if st.pass_index == 0 and st.position is None and not self.resume:
             self.log(self._table_header())
         with _StopFlag() as stop:
-            while st.pass_index < self.opt.passes and not st.stopped_early:
+            while st.pass_index < self.opt.epochs and not st.stopped_early:
                 started = time.monotonic()
                 self._one_pass(stop)
                 self._finish_pass(time.monotonic() - started)
@@ -276,10 +286,10 @@ class Trainer:
         point_rows = max(self.reader.total_rows // PROGRESS_POINTS_PER_PASS, opt.batch_rows)
         window_loss = window_w = 0.0
         bar = tqdm(total=self.reader.total_rows, initial=st.rows_in_pass, unit="rows", unit_scale=True,
-                   desc=f"pass {st.pass_index + 1}/{opt.passes}",
-                   disable=not (self.progress_bar and sys.stderr.isatty()),
+                   desc=f"pass {st.pass_index + 1}/{opt.epochs}",
+                   disable=self.quiet or not sys.stderr.isatty(),
                    mininterval=0.5, leave=False, dynamic_ncols=True)
-        shown = time.monotonic()
+        shown = -math.inf
         for batch in self.reader.batches(st.pass_index, st.position):
             loss = self.solver.step(batch)
             w = float(batch.weights.sum())
@@ -327,11 +337,15 @@ class Trainer:
                 self.current_model(holdout).save(self.out)
             else:
                 st.bad_passes += 1
-                if st.bad_passes >= self.opt.patience and st.pass_index < self.opt.passes:
+                if st.bad_passes >= self.opt.patience and st.pass_index < self.opt.epochs:
                     st.stopped_early = True
         with open(self.out / "metrics.jsonl", "a", encoding="utf-8") as fh:
             fh.write(json.dumps(jsonable(record), allow_nan=False) + "\n")
         self.log(self._table_row(record))
+        ratio = _off_calibration(holdout)
+        if ratio is not None:
+            self.log(f"  ! pass {st.pass_index}: the holdout's mean prediction is {ratio:.2f}x its observed rate "
+                     f"(outside [{CALIBRATED[0]}, {CALIBRATED[1]}]): not calibrated yet")
         if st.stopped_early:
             self.log(f"early stop: holdout loss has not improved for {st.bad_passes} pass(es); "
                      f"keeping the weights of pass {st.best_pass}")
@@ -365,6 +379,11 @@ class Trainer:
 
     # -- the per-pass table -------------------------------------------------------------------------
 
+    def log(self, line: str) -> None:
+        """Print one line of the per-pass table (or a note about the run) unless quiet."""
+        if not self.quiet:
+            print(line, flush=True)
+
     def _table_header(self) -> str:
         return (f"{'pass':>4} {'rows':>11} {'train loss':>11} {'holdout loss':>13} {'norm.ent':>9} "
                 f"{'AUC':>7} {'pred/obs':>9} {'error':>7} {'train s':>8} {'eval s':>7}")
@@ -373,11 +392,14 @@ class Trainer:
         h = rec["holdout"] or {}
         margin = h.get("margin", {})
         loss = h.get("log_loss", h.get("squared_hinge_loss"))
+        flagged = _off_calibration(h) is not None
 
         def f(v, spec):
-            return format(v, spec) if isinstance(v, (int, float)) and v is not None and math.isfinite(v) else "-"
+            if isinstance(v, (int, float)) and math.isfinite(v):
+                return format(v, spec)
+            return format("-", f">{spec.split('.')[0]}")
 
         return (f"{rec['pass']:>4} {rec['rows']:>11,} {f(rec['progressive_loss'], '11.5f')} {f(loss, '13.5f')} "
                 f"{f(h.get('normalized_entropy'), '9.4f')} {f(h.get('auc', margin.get('auc')), '7.4f')} "
-                f"{f(h.get('calibration_ratio'), '9.4f')} {f(h.get('error_rate', margin.get('error_rate')), '7.4f')} "
+                f"{f(h.get('calibration_ratio'), '8.4f')}{'!' if flagged else ' '} {f(h.get('error_rate', margin.get('error_rate')), '7.4f')} "
                 f"{rec['train_seconds']:8.1f} {rec['eval_seconds']:7.1f}")

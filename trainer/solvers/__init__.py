@@ -139,7 +139,7 @@ class LinearSolver:
         self.n = check_int("n_features", n_features, 1, MAX_FEATURES)
         self.loss_name = check_choice("--loss", loss, tuple(LOSS_NAMES))
         self.code = loss_code(loss)
-        self.l2 = check_float("--l2", l2, 0.0, 1e6)
+        self.l2 = check_float("--l2-strength", l2, 0.0, 1e6)
         self._x = np.zeros(self.n + 1, dtype=np.float64)
         self._bits = np.zeros((self.n + 63) // 64, dtype=np.uint64)
         self.t = 0
