@@ -6,14 +6,13 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from sklearn.calibration import calibration_curve
 from sklearn.linear_model import LogisticRegression
 from sklearn.metrics import brier_score_loss, confusion_matrix, log_loss, roc_auc_score
 from statsmodels.stats.proportion import proportion_confint
 
 from trainer.errors import UserError
 from trainer.metrics import (EPS, BinaryMetrics, MarginMetrics, apply_platt, fit_platt,
-                             wilson_interval)
+                             reliability_bin_count, wilson_interval)
 
 FAST = settings(max_examples=40, deadline=None, database=None)
 
@@ -197,58 +196,82 @@ def test_merge_refuses_different_settings():
         BinaryMetrics(n_bins=5).merge(BinaryMetrics(n_bins=6))
 
 
-def test_reliability_table_matches_calibration_curve():
+def _rank_gap(hi, bits):
+    """Width of a rank bin at score ``hi`` (relative 2**-bits in p below 1/2, in 1 - p above)."""
+    return 2.0 ** -bits * (hi if hi < 0.5 else 1.0 - hi)
+
+
+@pytest.mark.parametrize("weighted", [False, True])
+def test_reliability_bins_end_at_numpy_quantiles(weighted):
     rng = np.random.default_rng(4)
-    edges = np.linspace(0, 1, 11)
-    probs = np.concatenate([rng.random(400), edges, [0.3, 0.7, 0.0, 1.0]])
+    probs = 1.0 / (1.0 + np.exp(-rng.normal(-3.2, 1.1, 20000)))
     labels = (rng.random(probs.size) < probs).astype(float)
-    s = summarize(labels, probs)
-    bins = [b for b in s["bins"] if b["count"] > 0]
-    # Reference: sklearn.calibration.calibration_curve(strategy="uniform").
-    prob_true, prob_pred = calibration_curve(labels, probs, n_bins=10)
-    assert [b["observed_rate"] for b in bins] == pytest.approx(prob_true.tolist())
-    assert [b["mean_prediction"] for b in bins] == pytest.approx(prob_pred.tolist())
-    assert sum(b["count"] for b in s["bins"]) == probs.size
-    # Reference: statsmodels proportion_confint(method="wilson") per bin.
+    w = rng.uniform(0.5, 2.0, probs.size) if weighted else np.ones(probs.size)
+    s = summarize(labels, probs, w if weighted else None, n_bins=16)
+    bins = s["bins"]
+    assert len(bins) == 16 and sum(b["count"] for b in bins) == probs.size
+    # Reference: numpy.quantile(method="inverted_cdf", weights=...): bin j ends at the rank bin
+    # holding the weighted j/16 quantile, i.e. within one rank-bin width below its largest score.
+    q = np.quantile(probs, np.arange(1, 16) / 16, method="inverted_cdf", weights=w)
+    for b, qj in zip(bins[:-1], q):
+        assert b["hi"] - _rank_gap(b["hi"], 12) <= qj <= b["hi"]
+    assert all(a["hi"] < b["lo"] for a, b in zip(bins[:-1], bins[1:]))
+    # Reference: numpy sums of the rows in [lo, hi]; a bin's weight is 1/16 of the total up to
+    # the weight of the rank bins at its ends.
     for b in bins:
-        k = round(b["observed_rate"] * b["count"])
-        lo, hi = proportion_confint(k, b["count"], alpha=0.05, method="wilson")
-        assert (b["wilson_low"], b["wilson_high"]) == pytest.approx((lo, hi), rel=1e-9)
+        inside = (probs >= b["lo"]) & (probs <= b["hi"])
+        assert b["count"] == inside.sum()
+        assert b["weight"] == pytest.approx(w[inside].sum(), rel=1e-12)
+        assert abs(b["weight"] - w.sum() / 16) <= 10.0
 
 
-def test_weighted_reliability_equals_repeated_rows():
-    rng = np.random.default_rng(7)
-    probs = rng.random(300)
-    labels = (rng.random(300) < probs).astype(float)
-    reps = rng.integers(1, 4, 300)
-    s = summarize(labels, probs, reps.astype(float))
-    # Reference: calibration_curve on rows repeated as often as their integer weight.
-    prob_true, prob_pred = calibration_curve(np.repeat(labels, reps), np.repeat(probs, reps),
-                                             n_bins=10)
-    bins = [b for b in s["bins"] if b["count"] > 0]
-    assert [b["observed_rate"] for b in bins] == pytest.approx(prob_true.tolist())
-    assert [b["mean_prediction"] for b in bins] == pytest.approx(prob_pred.tolist())
-    # Reference: statsmodels Wilson interval at the effective size (sum w)^2 / sum w^2 (Kish's
-    # effective sample size, from memory).
-    for lo_edge, b in zip(np.linspace(0, 1, 11), s["bins"]):
-        inside = (probs > lo_edge) & (probs <= lo_edge + 0.1) if lo_edge > 0 else probs <= 0.1
-        w = reps[inside].astype(float)
-        n_eff = w.sum() ** 2 / np.sum(w * w)
-        lo, hi = proportion_confint(b["observed_rate"] * n_eff, n_eff, method="wilson")
-        assert (b["wilson_low"], b["wilson_high"]) == pytest.approx((lo, hi), rel=1e-9)
-
-
-def test_ece_from_calibration_curve():
-    rng = np.random.default_rng(8)
-    probs = rng.random(1000) ** 2
-    labels = (rng.random(1000) < probs).astype(float)
-    s = summarize(labels, probs)
-    prob_true, prob_pred = calibration_curve(labels, probs, n_bins=10)
-    counts = np.histogram(probs, bins=np.linspace(0, 1, 11))[0]
-    counts = counts[counts > 0]
+@FAST
+@given(scored_rows(), st.integers(1, 12))
+def test_reliability_bins_match_numpy_and_statsmodels(data, n_bins):
+    labels, probs, weights = data
+    s = summarize(labels, probs, weights, n_bins=n_bins)
+    w = np.ones_like(probs) if weights is None else weights
+    bins = s["bins"]
+    assert 1 <= len(bins) <= n_bins and sum(b["count"] for b in bins) == probs.size
+    ece = 0.0
+    for b in bins:
+        inside = (probs >= b["lo"]) & (probs <= b["hi"])
+        wb = w[inside]
+        # Reference: numpy on the rows whose score lies in the bin's [lo, hi].
+        assert b["count"] == inside.sum() and b["lo"] == probs[inside].min()
+        assert b["hi"] == probs[inside].max()
+        assert b["mean_prediction"] == pytest.approx(np.sum(wb * probs[inside]) / wb.sum())
+        assert b["observed_rate"] == pytest.approx(np.sum(wb * labels[inside]) / wb.sum())
+        # Reference: statsmodels proportion_confint(method="wilson") at the effective size
+        # (sum w)^2 / sum w^2 (Kish's effective sample size, from memory).
+        n_eff = wb.sum() ** 2 / np.sum(wb * wb)
+        lo, hi = proportion_confint(b["observed_rate"] * n_eff, n_eff, alpha=0.05, method="wilson")
+        assert (b["wilson_low"], b["wilson_high"]) == pytest.approx((lo, hi), rel=1e-9, abs=1e-12)
+        ece += abs(np.sum(wb * probs[inside]) - np.sum(wb * labels[inside]))
     # Reference: ECE definition of "Obtaining Well Calibrated Probabilities Using Bayesian
-    # Binning", AAAI 2015 (from memory), on sklearn's per-bin means (no score lies on an edge).
-    assert s["ece"] == pytest.approx(np.sum(counts * np.abs(prob_true - prob_pred)) / 1000)
+    # Binning", AAAI 2015 (from memory), over these bins.
+    assert s["ece"] == pytest.approx(ece / w.sum(), abs=1e-12)
+
+
+def test_reliability_bins_on_tied_levels_end_at_exact_quantiles():
+    rng = np.random.default_rng(9)
+    probs = rng.integers(1, 200, 5000) / 200.0
+    labels = (rng.random(probs.size) < probs).astype(float)
+    s = summarize(labels, probs, n_bins=10)
+    # Reference: numpy.quantile(method="inverted_cdf"): with scores far apart from each other each
+    # bin's largest score is exactly a decile (ties are never split).
+    q = np.quantile(probs, np.arange(1, 10) / 10, method="inverted_cdf")
+    assert {b["hi"] for b in s["bins"]} == set(q.tolist()) | {probs.max()}
+
+
+def test_automatic_bin_count_gives_each_bin_enough_rows():
+    # Reference: the rule stated in the README (1,000 rows per bin, 10 to 20 bins).
+    for rows, expected in ((800, 10), (12_500, 12), (25_000, 20), (10**6, 20)):
+        assert reliability_bin_count(rows) == expected
+    rng = np.random.default_rng(3)
+    probs = rng.random(25000) * 0.2
+    s = summarize((rng.random(25000) < probs).astype(float), probs)
+    assert len(s["bins"]) == 20 and min(b["count"] for b in s["bins"]) >= 1000
 
 
 def test_wilson_interval_matches_statsmodels():
@@ -301,7 +324,7 @@ def test_error_rate_at_base_rate_splits_tied_scores():
 def test_empty_accumulator_summary():
     s = BinaryMetrics().summary()
     assert s["rows"] == 0 and math.isnan(s["log_loss"]) and math.isnan(s["auc"])
-    assert all(b["count"] == 0 and math.isnan(b["observed_rate"]) for b in s["bins"])
+    assert s["bins"] == [] and math.isnan(s["ece"])
 
 
 @pytest.mark.parametrize("kwargs, bad", [

@@ -120,7 +120,7 @@ def format_summary(s: dict) -> str:
                   f"  AUC                 {_fmt(s['auc'])}",
                   f"  Brier score         {_fmt(s['brier'])}",
                   f"  predicted/observed  {_fmt(s['calibration_ratio'], '.4f')}",
-                  f"  calibration error   {_fmt(s['ece'])}  (expected, over {len(s['bins'])} bins)",
+                  f"  calibration error   {_fmt(s['ece'])}  (expected, over {len(s['bins'])} equal-weight bins)",
                   f"  error rate          {_fmt(s['error_rate'], '.4f')} at 0.5, "
                   f"{_fmt(s['error_rate_at_base_rate'], '.4f')} at the base-rate threshold"]
     if "margin" in s:

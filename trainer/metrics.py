@@ -52,6 +52,15 @@ _MARGIN_OCTAVES = 64
 _W, _PW, _LOSS, _BRIER, _PRED, _TP, _FP, _TN, _FN = range(9)
 _N_SUMS = 9
 
+# Columns of the reliability sums kept per rank bin: rows, sum of w^2, sum of w * p.
+_REL_ROWS, _REL_W2, _REL_WP = range(3)
+
+#: The reliability table's automatic bin count: one bin per RELIABILITY_ROWS_PER_BIN effective
+#: rows, at least RELIABILITY_MIN_BINS and at most RELIABILITY_MAX_BINS.
+RELIABILITY_MIN_BINS = 10
+RELIABILITY_MAX_BINS = 20
+RELIABILITY_ROWS_PER_BIN = 1000
+
 
 @njit(cache=True)
 def _octave_index(bits, low_exp, octaves, res_bits):
@@ -129,8 +138,8 @@ def _add_ranked(sums, auc_w, auc_lo, auc_hi, k, pos, w, called_positive, score):
 
 
 @njit(cache=True)
-def _accumulate_binary(labels, probs, weights, margins, rel_inner, hist_edges, res_bits,
-                       counts, sums, rel_count, rel_sums, hist, auc_w, auc_lo, auc_hi):
+def _accumulate_binary(labels, probs, weights, margins, hist_edges, res_bits,
+                       counts, sums, hist, auc_w, auc_lo, auc_hi, rank_rel):
     """Add one chunk of rows to the state arrays of a BinaryMetrics (in place)."""
     buf = np.empty(1, np.float64)
     ubuf = buf.view(np.uint64)
@@ -153,17 +162,15 @@ def _accumulate_binary(labels, probs, weights, margins, rel_inner, hist_edges, r
         d = p - y
         sums[_BRIER] += w * d * d
         sums[_PRED] += w * p
-        b = np.searchsorted(rel_inner, p, side="left")
-        rel_count[b] += 1
-        rel_sums[b, 0] += w
-        rel_sums[b, 1] += w * w
-        rel_sums[b, 2] += w * p
-        rel_sums[b, 3] += w * y
         h = np.searchsorted(hist_edges, p, side="right") - 1
         if h >= n_hist:
             h = n_hist - 1
         hist[h, pos] += w
-        _add_ranked(sums, auc_w, auc_lo, auc_hi, _prob_bin(p, res_bits, buf, ubuf), pos, w, p > 0.5, p)
+        k = _prob_bin(p, res_bits, buf, ubuf)
+        _add_ranked(sums, auc_w, auc_lo, auc_hi, k, pos, w, p > 0.5, p)
+        rank_rel[k, _REL_ROWS] += 1.0
+        rank_rel[k, _REL_W2] += w * w
+        rank_rel[k, _REL_WP] += w * p
 
 
 @njit(cache=True)
@@ -313,6 +320,67 @@ def _sigmoid_edges(n_bins):
     return np.concatenate(([0.0], expit(np.linspace(-lim, lim, n_bins - 1)), [1.0]))
 
 
+def reliability_bin_count(effective_rows: float) -> int:
+    """The automatic number of reliability bins for a holdout of ``effective_rows``.
+
+    One bin per :data:`RELIABILITY_ROWS_PER_BIN` effective rows ((sum w)^2 / sum w^2, the row count
+    when rows are unweighted), clamped to [:data:`RELIABILITY_MIN_BINS`,
+    :data:`RELIABILITY_MAX_BINS`]: with 1,000 rows a bin predicting 1% expects 10 positives, and 20
+    bins keep the table readable. Returns an int. Raises nothing.
+    """
+    n = int(effective_rows // RELIABILITY_ROWS_PER_BIN) if math.isfinite(effective_rows) else 0
+    return min(max(n, RELIABILITY_MIN_BINS), RELIABILITY_MAX_BINS)
+
+
+def _reliability_bins(auc_w, auc_lo, auc_hi, rank_rel, n_bins):
+    """Equal-weight reliability bins built from the rank histogram; returns (bins, ece).
+
+    The rank bins that hold rows are taken in ascending score order and cut after the first rank
+    bin whose cumulative weight reaches j/n of the total (j = 1 .. n - 1), the inverted-CDF
+    quantile rule; cuts that land in the same rank bin merge, so ties heavier than 1/n give fewer
+    bins. ``n_bins`` None chooses the count with :func:`reliability_bin_count`.
+    """
+    used = np.flatnonzero(rank_rel[:, _REL_ROWS] > 0)
+    if used.size == 0:
+        return [], math.nan
+    weight = auc_w[used, 0] + auc_w[used, 1]
+    cum = np.cumsum(weight)
+    total = float(cum[-1])
+    w2_total = float(rank_rel[used, _REL_W2].sum())
+    if n_bins is None:
+        n_bins = reliability_bin_count(total * total / w2_total if w2_total > 0 else 0.0)
+    cuts = np.searchsorted(cum, total * np.arange(1, n_bins) / n_bins, side="left")
+    ends = np.unique(np.append(np.minimum(cuts, used.size - 1), used.size - 1))
+    starts = np.concatenate(([0], ends[:-1] + 1))
+    rows = np.add.reduceat(rank_rel[used, _REL_ROWS], starts)
+    w = np.add.reduceat(weight, starts)
+    wy = np.add.reduceat(auc_w[used, 1], starts)
+    w2 = np.add.reduceat(rank_rel[used, _REL_W2], starts)
+    wp = np.add.reduceat(rank_rel[used, _REL_WP], starts)
+    lo = auc_lo[used][starts]
+    hi = auc_hi[used][ends]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        mean_pred = wp / w
+        observed = wy / w
+        n_eff = w * w / w2
+        wl, wh = wilson_interval(observed * n_eff, n_eff)
+    bins = []
+    for b in range(starts.size):
+        has_w = w[b] > 0
+        bins.append({
+            "lo": float(lo[b]),
+            "hi": float(hi[b]),
+            "count": int(rows[b]),
+            "weight": float(w[b]),
+            "mean_prediction": float(mean_pred[b]) if has_w else math.nan,
+            "observed_rate": float(observed[b]) if has_w else math.nan,
+            "wilson_low": float(wl[b]) if has_w else math.nan,
+            "wilson_high": float(wh[b]) if has_w else math.nan,
+        })
+    ece = float(np.abs(wp - wy).sum() / total) if total > 0 else math.nan
+    return bins, ece
+
+
 def _merge_ranked(out, a, b):
     """Set ``out``'s counts, sums and rank histogram to those of ``a`` and ``b`` together; return it."""
     out._counts = a._counts + b._counts
@@ -326,15 +394,16 @@ def _merge_ranked(out, a, b):
 class BinaryMetrics:
     """Streaming, mergeable quality metrics of predicted probabilities against 0/1 labels.
 
-    ``BinaryMetrics(n_bins=10, histogram_bins=40, auc_bits=12)``: ``n_bins`` equal-width reliability
-    bins over [0, 1] (1..10000; a score on an inner edge belongs to the lower bin, as in
-    scikit-learn's ``calibration_curve``); ``histogram_bins`` score-histogram bins (3..10000) whose
+    ``BinaryMetrics(n_bins=None, histogram_bins=40, auc_bits=12)``: ``n_bins`` the number of
+    reliability bins of equal weight (1..10000, or None: 10 to 20 chosen by the holdout's size, see
+    :func:`reliability_bin_count`); ``histogram_bins`` score-histogram bins (3..10000) whose
     inner edges are uniform in log-odds between 1e-4 and 1 - 1e-4, with two end bins reaching 0 and
     1 (half-open [lo, hi) as in ``numpy.histogram``, the last bin closed); ``auc_bits`` leading
     mantissa bits of the rank histogram (4..14). Raises UserError for values out of range.
 
-    State is fixed in size: 2 * (63 * 2**auc_bits + 1) + 1 rank bins with four float64 each
-    (16.5 MB at the default 12 bits) plus the small tables. Memory does not grow with rows.
+    State is fixed in size: 2 * (63 * 2**auc_bits + 1) + 1 rank bins with seven float64 each
+    (28.9 MB at the default 12 bits; pages no score reaches stay untouched zeros) plus the small
+    tables. Memory does not grow with rows.
 
     AUC guarantee: two scores in different rank bins are ordered exactly; each rank bin is counted
     as a block of tied scores (1/2 per positive-negative pair, the tie rule of scikit-learn's
@@ -345,21 +414,27 @@ class BinaryMetrics:
     distinct score of (positive weight * negative weight / 2), divided by (total positive weight *
     total negative weight), bounds |reported AUC - exact AUC| (up to float rounding). The same
     block rule decides the error rate at the base rate. Merging adds the histograms, so it is exact.
+
+    Reliability bins come from the same rank histogram, which also keeps per rank bin the rows, the
+    sum of w^2 and the sum of w * p, so no second pass over the data is needed: bin j ends after
+    the rank bin that holds the weighted j/n quantile of the predictions (the inverted-CDF rule of
+    ``numpy.quantile(..., method="inverted_cdf")``). A rank bin is never split, so each bin's
+    weight differs from 1/n of the total by at most the weight of the two rank bins at its ends,
+    and the quantile lies between the bin's largest prediction ``hi`` and ``hi`` less a relative
+    2**-auc_bits (in p below 1/2, in 1 - p above); every sum of a bin is exact.
     The AUC is the probability that a random positive outranks a random negative, from "The meaning
     and use of the area under a receiver operating characteristic (ROC) curve", Radiology, 1982.
     """
 
-    def __init__(self, n_bins: int = 10, histogram_bins: int = 40, auc_bits: int = 12):
-        self.n_bins = _check_int(n_bins, "n_bins", 1, 10000)
+    def __init__(self, n_bins: int | None = None, histogram_bins: int = 40, auc_bits: int = 12):
+        self.n_bins = None if n_bins is None else _check_int(n_bins, "n_bins", 1, 10000)
         self.histogram_bins = _check_int(histogram_bins, "histogram_bins", 3, 10000)
         self.auc_bits = _check_int(auc_bits, "auc_bits", 4, 14)
-        self._rel_edges = np.linspace(0.0, 1.0, self.n_bins + 1)
         self._hist_edges = _sigmoid_edges(self.histogram_bins)
         n_rank = 2 * ((_PROB_OCTAVES << self.auc_bits) + 1) + 1
         self._counts = np.zeros(2, np.int64)
         self._sums = np.zeros(_N_SUMS, np.float64)
-        self._rel_count = np.zeros(self.n_bins, np.int64)
-        self._rel_sums = np.zeros((self.n_bins, 4), np.float64)
+        self._rank_rel = np.zeros((n_rank, 3), np.float64)
         self._hist = np.zeros((self.histogram_bins, 2), np.float64)
         self._auc_w = np.zeros((n_rank, 2), np.float64)
         self._auc_lo = np.full(n_rank, np.inf)
@@ -389,9 +464,8 @@ class BinaryMetrics:
                 raise UserError("margins: every margin must be finite")
         if y.size == 0:
             return
-        _accumulate_binary(y, p, w, m, self._rel_edges[1:-1], self._hist_edges, self.auc_bits,
-                           self._counts, self._sums, self._rel_count, self._rel_sums, self._hist,
-                           self._auc_w, self._auc_lo, self._auc_hi)
+        _accumulate_binary(y, p, w, m, self._hist_edges, self.auc_bits, self._counts, self._sums,
+                           self._hist, self._auc_w, self._auc_lo, self._auc_hi, self._rank_rel)
 
     def merge(self, other: BinaryMetrics) -> BinaryMetrics:
         """Combine two accumulators into a new one, as if all rows had gone through one.
@@ -405,8 +479,7 @@ class BinaryMetrics:
                 != (other.n_bins, other.histogram_bins, other.auc_bits)):
             raise ValueError("BinaryMetrics.merge: both accumulators need the same bin settings")
         out = _merge_ranked(BinaryMetrics(self.n_bins, self.histogram_bins, self.auc_bits), self, other)
-        out._rel_count = self._rel_count + other._rel_count
-        out._rel_sums = self._rel_sums + other._rel_sums
+        out._rank_rel = self._rank_rel + other._rank_rel
         out._hist = self._hist + other._hist
         return out
 
@@ -419,17 +492,19 @@ class BinaryMetrics:
         one class) and ``auc_error_bound`` (see the class docstring); ``brier`` (weighted mean
         squared error of the probability, "Verification of forecasts expressed in terms of
         probability", Monthly Weather Review, 1950); ``calibration_ratio`` (sum of w*p over sum of
-        w*y; NaN without positives); ``ece`` (expected calibration error over the reliability bins,
-        sum of |sum w*p - sum w*y| per bin over the total weight, "Obtaining Well Calibrated
-        Probabilities Using Bayesian Binning", AAAI, 2015); ``error_rate`` (weighted share
-        misclassified when p > 0.5 means positive); ``error_rate_at_base_rate`` (the same when the
-        top-scored share of weight equal to the base rate is called positive, i.e. at the
-        precision-recall break-even point); ``confusion`` ({tp, fp, tn, fn} weighted, at p > 0.5);
-        ``bins`` (reliability table: per bin {lo, hi, count, weight, mean_prediction,
-        observed_rate, wilson_low, wilson_high}, a 95% Wilson interval on the observed rate with
-        the effective sample size (sum w)^2 / sum w^2); ``histogram`` ({edges, positives,
-        negatives}: weight per score bin by class). All values are NaN for an empty accumulator.
-        Raises nothing.
+        w*y; NaN without positives); ``ece`` (expected calibration error over the equal-weight
+        reliability bins of ``bins``, sum of |sum w*p - sum w*y| per bin over the total weight,
+        "Obtaining Well Calibrated Probabilities Using Bayesian Binning", AAAI, 2015);
+        ``error_rate`` (weighted share misclassified when p > 0.5 means positive);
+        ``error_rate_at_base_rate`` (the same when the top-scored share of weight equal to the base
+        rate is called positive, i.e. at the precision-recall break-even point); ``confusion``
+        ({tp, fp, tn, fn} weighted, at p > 0.5);
+        ``bins`` (reliability table of bins of equal weight, ascending, see the class docstring:
+        per bin {lo, hi, count, weight, mean_prediction, observed_rate, wilson_low, wilson_high},
+        lo and hi the smallest and largest prediction in the bin, a 95% Wilson interval on the
+        observed rate with the effective sample size (sum w)^2 / sum w^2; empty without rows);
+        ``histogram`` ({edges, positives, negatives}: weight per score bin by class). All values
+        are NaN for an empty accumulator. Raises nothing.
         """
         s = self._sums
         w_sum = float(s[_W])
@@ -442,27 +517,8 @@ class BinaryMetrics:
         else:
             ne = math.nan
         auc, bound, err_base = _rank_summary(self._auc_w, self._auc_lo, self._auc_hi)
-        rw = self._rel_sums[:, 0]
-        with np.errstate(divide="ignore", invalid="ignore"):
-            mean_pred = self._rel_sums[:, 2] / rw
-            observed = self._rel_sums[:, 3] / rw
-            n_eff = rw * rw / self._rel_sums[:, 1]
-            wl, wh = wilson_interval(observed * n_eff, n_eff)
-        used = rw > 0
-        bins = []
-        for b in range(self.n_bins):
-            bins.append({
-                "lo": float(self._rel_edges[b]),
-                "hi": float(self._rel_edges[b + 1]),
-                "count": int(self._rel_count[b]),
-                "weight": float(rw[b]),
-                "mean_prediction": float(mean_pred[b]) if used[b] else math.nan,
-                "observed_rate": float(observed[b]) if used[b] else math.nan,
-                "wilson_low": float(wl[b]) if used[b] else math.nan,
-                "wilson_high": float(wh[b]) if used[b] else math.nan,
-            })
-        ece = float(np.abs(self._rel_sums[:, 2] - self._rel_sums[:, 3]).sum() / w_sum) \
-            if w_sum > 0 else math.nan
+        bins, ece = _reliability_bins(self._auc_w, self._auc_lo, self._auc_hi, self._rank_rel,
+                                      self.n_bins)
         return {
             "rows": int(self._counts[0]),
             "positives": int(self._counts[1]),
