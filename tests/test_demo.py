@@ -64,3 +64,20 @@ def test_demo_command_line(tmp_path, capsys):
     printed = capsys.readouterr().out
     for word in ("HTML report", "holdout scores", "export"):
         assert word in printed
+
+
+def test_demo_reliability_bins_and_report(result):
+    saved = json.loads(result["metrics"].read_text())
+    scores = np.sort(pq.read_table(result["scores"]).column("score").to_numpy())
+    bins = saved["bins"]
+    # Reference: numpy.quantile(method="inverted_cdf") of the scored holdout day: 20 bins of
+    # 1,250 rows, each ending at its quantile (within one rank-histogram cell, 2^-12 of p).
+    assert len(bins) == 20 and all(abs(b["count"] - 1250) <= 10 for b in bins)
+    q = np.quantile(scores, np.arange(1, 20) / 20, method="inverted_cdf")
+    for b, qj in zip(bins[:-1], q):
+        assert b["hi"] * (1 - 2.0 ** -12) - 1e-12 <= qj <= b["hi"] + 1e-12
+    page = result["report"].read_text()
+    options = page[page.index("Training options"):]
+    # Reference: the solver's default initial step (trainer/solvers/olbfgs.py docstring, 0.3).
+    assert "0.3 (default: the solver&#x27;s own)" in options and "None" not in options
+    assert page.count('<p class="verdict">') == 1 and "log-scaled axes" in page

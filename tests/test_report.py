@@ -1,7 +1,9 @@
 """Checks of trainer.report: structure (html.parser), escaping, atomic write, browser render."""
 
+import html
 import importlib.util
 import math
+import re
 import struct
 import zlib
 from html.parser import HTMLParser
@@ -10,13 +12,19 @@ from pathlib import Path
 import numpy as np
 import pytest
 from numba import njit
+from scipy.stats import binom
+from sklearn.metrics import log_loss
+from statsmodels.stats.proportion import proportion_confint
 
 from trainer.errors import UserError
 from trainer.metrics import BinaryMetrics
 from trainer.report import render_report, write_report
+from trainer.training import TrainOptions
 
 SCRIPT = Path(__file__).resolve().parents[1] / "scripts" / "render_report_png.py"
-N_CHARTS = 5
+N_CHARTS = 6
+GREEN = (0x1E, 0x6B, 0x34)
+RED = (0xB3, 0x26, 0x1E)
 BLUE = (0x1F, 0x5F, 0x99)
 ORANGE = (0xD0, 0x66, 0x1A)
 
@@ -108,22 +116,30 @@ def parse(page):
     return parser
 
 
-def holdout(seed, n=4000, single_class=False):
+def scored(seed, n=4000, single_class=False, centre=-1.5, overshoot=1.0):
+    """(labels, predictions, weights): labels drawn from p, predictions p * overshoot (max 1)."""
     rng = np.random.default_rng(seed)
-    z = rng.normal(-1.5, 1.3, n)
-    p = 1 / (1 + np.exp(-z))
+    p = 1 / (1 + np.exp(-rng.normal(centre, 1.3, n)))
     y = np.zeros(n) if single_class else (rng.random(n) < p).astype(float)
+    return y, np.minimum(p * overshoot, 1.0), rng.uniform(0.5, 2.0, n)
+
+
+def holdout(seed, **kwargs):
     acc = BinaryMetrics()
-    acc.update(y, p, rng.uniform(0.5, 2.0, n))
+    acc.update(*scored(seed, **kwargs))
     return acc.summary()
 
 
-def make_run(loss="logistic", title="Run of 2026-03-04", examples=("shop=shop-3",)):
+def make_run(loss="logistic", title="Run of 2026-03-04", examples=("shop=shop-3",), centre=-1.5):
     passes = [{"pass": k, "rows": 3000 * k, "progressive_loss": 0.5 - 0.03 * k,
-               "holdout": holdout(k)} for k in (1, 2, 3)]
+               "holdout": holdout(k, centre=centre)} for k in (1, 2, 3)]
     return {
         "title": title,
-        "options": {"epochs": 3, "l2_strength": 1e-6, "bits": 18, "holdout": "day >= 2026-03-03"},
+        "options": {"epochs": 3, "l2_strength": 1e-6, "step0": None, "start": None,
+                    "holdout": "day >= 2026-03-03"},
+        "option_defaults": TrainOptions().as_json(),
+        "resolved_options": {"step0": 0.3},
+        "best_pass": 3,
         "passes": passes,
         "progress": [{"rows": r, "loss": 0.4 + 0.3 / (1 + r / 500)} for r in range(100, 9001, 100)],
         "final_holdout": passes[-1]["holdout"],
@@ -195,6 +211,129 @@ def test_squared_hinge_run_mentions_platt_scaling():
     assert "Platt scaling" in page and "squared hinge loss" in page
     with pytest.raises(ValueError, match="loss"):
         render_report(make_run(loss="hinge"))
+
+
+def svg_of(page, label):
+    """The SVG chart whose aria-label starts with ``label``."""
+    at = page.index(f'aria-label="{label}')
+    return page[page.rindex("<svg", 0, at):page.index("</svg>", at) + len("</svg>")]
+
+
+def verdict_of(page):
+    """(class, text) of each part of the verdict line."""
+    line = re.search(r'<p class="verdict">(.*?)</p>', page).group(1)
+    return re.findall(r'<span class="(ok|bad|unknown)">([^<]*)</span>', line)
+
+
+def with_losses(run, losses, best_pass):
+    """The run with its passes' holdout log-loss set to ``losses``."""
+    for p, value in zip(run["passes"], losses):
+        p["holdout"] = dict(p["holdout"], log_loss=value)
+    run["best_pass"] = best_pass
+    return run
+
+
+@pytest.mark.parametrize("overshoot", [1.0, 1.6])
+def test_verdict_reads_base_rate_calibration_and_last_pass(overshoot):
+    y, p, w = scored(7, n=20000, centre=-3.2, overshoot=overshoot)
+    acc = BinaryMetrics()
+    acc.update(y, p, w)
+    final = acc.summary()
+    run = make_run(centre=-3.2)
+    run["final_holdout"] = run["passes"][-1]["holdout"] = final
+    ll = final["log_loss"]
+    page = render_report(with_losses(run, [1.2 * ll, 1.1 * ll, ll], 3))
+    parts = verdict_of(page)
+    text = html.unescape(page)
+    # Reference: sklearn.metrics.log_loss of always predicting the weighted base rate.
+    base = np.average(y, weights=w)
+    base_ll = log_loss(y, np.full(y.size, base), sample_weight=w)
+    assert f"against {base_ll:.4g} for always predicting the base rate" in text
+    assert parts[0] == ("ok", f"\u2713 Better than the base rate (normalized entropy "
+                              f"{final['normalized_entropy']:.3g})")
+    # Reference: statsmodels Wilson intervals per bin, and scipy's binomial quantile for the
+    # misses a calibrated model shows by chance (95% of the time).
+    held = 0
+    for b in final["bins"]:
+        n_eff = b["weight"] ** 2 / np.sum(w[(p >= b["lo"]) & (p <= b["hi"])] ** 2)
+        lo, hi = proportion_confint(b["observed_rate"] * n_eff, n_eff, method="wilson")
+        held += lo <= b["mean_prediction"] <= hi
+    n = len(final["bins"])
+    calibrated = n - held <= binom.ppf(0.95, n, 0.05)
+    assert calibrated == (overshoot == 1.0)
+    head = f"alibrated within its intervals ({held} of {n} bins)"
+    assert parts[1] == (("ok", "\u2713 C" + head) if calibrated else ("bad", "\u2717 Not c" + head))
+    assert parts[2] == ("ok", "\u2713 Last pass improved the holdout (-9.1%)")
+    worse = render_report(with_losses(make_run(), [0.3, 0.25, 0.26], 2))
+    assert verdict_of(worse)[2] == ("bad", "\u2717 Last pass did not improve the holdout (+4%)")
+    assert "the weights of pass 2 are kept" in worse
+
+
+def test_verdict_without_holdout_says_n_a():
+    run = make_run()
+    run.update(passes=[], final_holdout=None)
+    # Reference: nothing to judge; every part says so (common practice: no figure, no claim).
+    assert [kind for kind, _ in verdict_of(render_report(run))] == ["unknown"] * 3
+
+
+def test_options_table_shows_defaults_and_values_used():
+    page = render_report(make_run())
+    rows = dict(re.findall(r'<tr><td class="t">(--[a-z0-9-]+)</td><td class="t">([^<]*)</td></tr>',
+                           page))
+    # Reference: the TrainOptions defaults (README, `hashcurve train`); an unset option shows
+    # what it resolved to, never Python's None.
+    assert "None" not in "".join(parse(page).text)
+    assert rows["--epochs"] == "3 (default)" and rows["--l2-strength"] == "1e-06"
+    assert rows["--step0"] == "0.3 (default: the solver&#x27;s own)"
+    assert rows["--start"] == "default: no limit, from the first day"
+
+
+def test_auc_bound_is_explained_in_words():
+    run = make_run()
+    page = render_report(run)
+    bound = run["final_holdout"]["auc_error_bound"]
+    # Reference: trainer.metrics documents auc_error_bound as a bound on the binned AUC.
+    assert "\u00b1" not in page and bound > 0
+    assert f"it is within {bound:.1g} of the exact AUC of these scores" in page
+    assert "not sampling error" in page
+
+
+def tick_x(svg):
+    """{label: x} of the x-axis tick labels (the text elements below the plot box)."""
+    return {t: float(x) for x, y, t in re.findall(
+        r'<text x="([0-9.]+)" y="([0-9.]+)" text-anchor="middle" font-size="11">([^<]*)</text>',
+        svg) if float(y) > 260}
+
+
+@pytest.mark.parametrize("centre, axis, expect_log", [
+    (-3.2, "auto", True), (-1.5, "auto", False), (-3.2, "linear", False), (-1.5, "log", True)])
+def test_reliability_axis_is_log_scaled_at_low_base_rates(centre, axis, expect_log):
+    run = make_run(centre=centre)
+    page = render_report(run, probability_axis=axis)
+    svg = svg_of(page, "Reliability")
+    ticks = tick_x(svg)
+    assert ("log-scaled axes" in svg) == expect_log
+    # Reference: tick positions are linear in log10 of the value on a log axis, in the value on
+    # a linear one (common practice).
+    values = sorted((float(k), x) for k, x in ticks.items())
+    scaled = np.log10([k for k, _ in values]) if expect_log else np.array([k for k, _ in values])
+    assert len(values) >= 3
+    steps = np.diff([x for _, x in values]) / np.diff(scaled)
+    assert steps == pytest.approx(steps[0], rel=2e-3)
+    bins = run["final_holdout"]["bins"]
+    # Reference: one dot and one table row per bin of the summary.
+    assert svg.count("<circle") == len(bins) >= 10
+    assert page.count("<tr>") - page.count("<tr><td class=\"t\">--") >= len(bins)
+    with pytest.raises(ValueError, match="probability_axis"):
+        render_report(run, probability_axis="logit")
+
+
+def test_per_pass_chart_shows_calibration_ratio():
+    run = make_run()
+    svg = svg_of(render_report(run), "Holdout predicted / observed after each pass")
+    points = re.search(r'<polyline points="([^"]*)"', svg).group(1).split()
+    # Reference: one point per pass with a holdout, and the line of perfect calibration at 1.0.
+    assert len(points) == len(run["passes"]) and "calibrated (1.0)" in svg
 
 
 def test_write_report_replaces_atomically(tmp_path):
@@ -269,3 +408,36 @@ def test_browser_render_is_not_blank(tmp_path):
     assert tuple(rgb[0, 0]) == (255, 255, 255)
     for colour in (BLUE, ORANGE):
         assert np.sum(np.all(np.abs(rgb - colour) <= 8, axis=-1)) > 200
+
+
+def dot_pixels(image):
+    """(rows, columns) of the pixels in the reliability chart's plot box drawn in a dot colour."""
+    box = image[40:268, 70:522, :3].astype(int)
+    mask = np.zeros(box.shape[:2], bool)
+    for colour in (BLUE, ORANGE):
+        mask |= np.all(np.abs(box - colour) <= 8, axis=-1)
+    return np.nonzero(mask), box.shape[1]
+
+
+def test_browser_render_of_verdict_and_reliability_axes(tmp_path):
+    script = _load_script()
+    if script.find_browser() is None:
+        pytest.skip("no Chromium binary on PATH (chromium / chromium-browser)")
+    run = make_run(centre=-3.2)
+    run["final_holdout"] = holdout(7, n=20000, centre=-3.2, overshoot=1.6)
+    page = write_report(with_losses(run, [0.3, 0.25, 0.26], 2), tmp_path / "report.html")
+    rgb = decode_png(script.render_png(page, tmp_path / "report.png", 1200, 300))[..., :3].astype(int)
+    # Reference: the verdict line draws a passed check in green and a failed one in red.
+    for colour in (GREEN, RED):
+        assert np.sum(np.all(np.abs(rgb - colour) <= 8, axis=-1)) > 100
+    medians = {}
+    for axis in ("log", "linear"):
+        svg = svg_of(render_report(make_run(centre=-3.2), probability_axis=axis), "Reliability")
+        chart = tmp_path / f"{axis}.html"
+        chart.write_text(f'<!DOCTYPE html><html><body style="margin:0">{svg}</body></html>')
+        image = decode_png(script.render_png(chart, tmp_path / f"{axis}.png", 560, 340))
+        (_, cols), width = dot_pixels(image)
+        medians[axis] = np.median(cols) / width
+    # Reference: at an 8% base rate the dots of a linear diagram crowd its left edge; log-scaled
+    # axes spread them (half the dot pixels beyond a third of the plot's width).
+    assert medians["linear"] < 0.2 < 0.35 < medians["log"]

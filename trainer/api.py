@@ -80,9 +80,13 @@ def inspect(model: str | Path) -> dict:
     return inspect_model(model)
 
 
-def report(model_dir: str | Path, out: str | Path | None = None, *, top: int = 15) -> Path:
+def report(model_dir: str | Path, out: str | Path | None = None, *, top: int = 15,
+           probability_axis: str = "auto") -> Path:
     """Write the self-contained HTML report of a training folder; returns its path
-    (default ``MODEL_DIR/report.html``)."""
+    (default ``MODEL_DIR/report.html``). ``probability_axis`` ("auto", "linear" or "log") scales
+    the reliability diagram (auto: log below a 10% base rate); UserError for another value."""
+    if probability_axis not in ("auto", "linear", "log"):
+        raise UserError(f"--probability-axis must be auto, linear or log; got {probability_axis!r}")
     model_dir = Path(model_dir)
     model = load_model(model_dir)
     passes = []
@@ -96,11 +100,15 @@ def report(model_dir: str | Path, out: str | Path | None = None, *, top: int = 1
     progress_path = model_dir / "progress.json"
     progress = json.loads(progress_path.read_text()) if progress_path.exists() else []
     top_weights = model.top_weights(top, 1) + model.top_weights(top, -1)
+    summary = model.info.get("summary", {})
     run = {"title": f"hashcurve report: {model_dir}", "options": model.info.get("options", {}),
+           "option_defaults": TrainOptions().as_json(),
+           "resolved_options": {"step0": summary["step0"]} if "step0" in summary else {},
+           "best_pass": summary.get("best_pass"),
            "passes": passes, "progress": progress, "final_holdout": model.info.get("holdout"),
            "top_weights": top_weights, "loss": model.loss}
     path = Path(out) if out is not None else model_dir / "report.html"
-    write_report(run, path)
+    write_report(run, path, probability_axis)
     return path
 
 

@@ -84,6 +84,8 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("report", help="self-contained HTML report of a training folder")
     p.add_argument("--model", required=True, help="model folder (from train)")
     p.add_argument("--out", help="HTML file (default: MODEL/report.html)")
+    p.add_argument("--probability-axis", choices=("auto", "linear", "log"), default="auto",
+                   help="scale of the reliability diagram (default: auto, log below a 10%% base rate)")
 
     p = sub.add_parser("export", help="portable weights.parquet + model.json with the hashing contract")
     p.add_argument("--model", required=True, help="model folder (from train)")
@@ -164,7 +166,7 @@ def _evaluate(a) -> None:
 
 
 def _report(a) -> None:
-    print(f"report written to {api.report(a.model, a.out)}")
+    print(f"report written to {api.report(a.model, a.out, probability_axis=a.probability_axis)}")
 
 
 def _export(a) -> None:

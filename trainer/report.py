@@ -24,6 +24,11 @@ _PAD_BOTTOM = 52
 _BLUE = "#1f5f99"
 _ORANGE = "#d0661a"
 _GREY = "#8a8f98"
+_PROBABILITY_AXES = ("auto", "linear", "log")
+#: With ``probability_axis="auto"`` the reliability diagram is log-scaled below this base rate.
+LOG_AXIS_BELOW_BASE_RATE = 0.1
+#: Each 95% interval misses a calibrated bin's mean with probability 5%.
+_MISS_RATE = 0.05
 
 _CSS = """
 body { font-family: sans-serif; color: #1d2330; background: #ffffff; margin: 24px 32px; }
@@ -41,6 +46,11 @@ table { border-collapse: collapse; font-size: 13px; }
 th, td { border: 1px solid #d5d9e0; padding: 3px 8px; text-align: right; }
 th { background: #eef1f5; }
 td.t, th.t { text-align: left; }
+p.verdict { font-size: 15px; margin: 10px 0 4px 0; padding: 8px 12px; background: #f3f5f8;
+            border-left: 4px solid #1f5f99; }
+.ok { color: #1e6b34; font-weight: bold; }
+.bad { color: #b3261e; font-weight: bold; }
+.unknown { color: #505866; font-weight: bold; }
 """
 
 
@@ -182,21 +192,31 @@ def _finite_pairs(xs, ys):
     return [(x, y) for x, y in pairs if math.isfinite(x) and math.isfinite(y)]
 
 
-def _per_pass_chart(title, y_label, series, fmt=_fmt) -> str:
-    """Values per pass; ``series`` holds (label, colour, dashed, [(pass, value), ...])."""
+def _per_pass_chart(title, y_label, series, fmt=_fmt, reference=None) -> str:
+    """Values per pass; ``series`` holds (label, colour, dashed, [(pass, value), ...]).
+
+    ``reference`` (label, value) draws a dashed grey line at that value, kept inside the y range.
+    """
     series = [s for s in series if s[3]]
     if not series:
         return _empty_chart(title, "no holdout figures recorded")
     xs = [x for s in series for x, _ in s[3]]
-    ys = [y for s in series for _, y in s[3]]
+    ys = [y for s in series for _, y in s[3]] + ([reference[1]] if reference else [])
     plot = _Plot(title, (min(xs) - 0.5, max(xs) + 0.5), _domain(ys), "pass", y_label)
     x_ticks = _nice_ticks(min(xs), max(xs), 8) if max(xs) > min(xs) else [min(xs)]
     plot.axes([(t, f"{t:g}") for t in x_ticks if t == int(t)],
               [(t, fmt(t)) for t in _nice_ticks(plot.y0, plot.y1)])
+    legend = [(s[0], s[1], s[2]) for s in series]
+    if reference:
+        y = plot.py(reference[1])
+        plot.parts.append(f'<line x1="{_PAD_LEFT}" y1="{y:.1f}" x2="{_WIDTH - _PAD_RIGHT}" '
+                          f'y2="{y:.1f}" stroke="{_GREY}" stroke-width="1.5" '
+                          'stroke-dasharray="6 4"/>')
+        legend.append((reference[0], _GREY, True))
     for _, color, dashed, pts in series:
         plot.line([p[0] for p in pts], [p[1] for p in pts], color, dashed)
-    if len(series) > 1:
-        plot.legend([(s[0], s[1], s[2]) for s in series])
+    if len(legend) > 1:
+        plot.legend(legend)
     return plot.svg()
 
 
@@ -215,39 +235,90 @@ def _progress_chart(progress, loss_name: str) -> str:
     return plot.svg()
 
 
-def _reliability_chart(bins) -> str:
-    title = "Reliability: observed rate against prediction"
-    used = [b for b in bins if _num(b.get("count")) > 0 and math.isfinite(_num(b.get(
+def _reliability_bins(bins) -> list[dict]:
+    """The bins that hold weight and have a finite mean prediction and observed rate."""
+    return [b for b in bins if _num(b.get("count")) > 0 and math.isfinite(_num(b.get(
         "mean_prediction"))) and math.isfinite(_num(b.get("observed_rate")))]
+
+
+def _inside(b) -> bool | None:
+    """Whether the bin's 95% interval contains its mean prediction; None without an interval."""
+    lo, hi = _num(b.get("wilson_low")), _num(b.get("wilson_high"))
+    mean = _num(b.get("mean_prediction"))
+    if not (math.isfinite(lo) and math.isfinite(hi) and math.isfinite(mean)):
+        return None
+    return lo <= mean <= hi
+
+
+def _log_ticks(lo: float, hi: float) -> list[float]:
+    """Ticks 1, 2, 5 x 10^k inside [lo, hi] (powers of ten only beyond 2.5 decades)."""
+    steps = (1.0,) if math.log10(hi / lo) > 2.5 else (1.0, 2.0, 5.0)
+    ticks = []
+    for k in range(math.floor(math.log10(lo)), math.ceil(math.log10(hi)) + 1):
+        ticks += [m * 10.0 ** k for m in steps if lo <= m * 10.0 ** k <= hi]
+    return ticks
+
+
+def _reliability_chart(bins, log_axes: bool) -> str:
+    scale = "log-scaled axes" if log_axes else "linear axes"
+    title = f"Reliability: observed rate against prediction ({scale})"
+    used = _reliability_bins(bins)
     if not used:
         return _empty_chart(title, "no holdout rows")
-    top = max(max(_num(b["mean_prediction"]), _num(b.get("wilson_high")) if math.isfinite(
-        _num(b.get("wilson_high"))) else _num(b["observed_rate"])) for b in used)
-    limit = next((c for c in (0.01, 0.02, 0.05, 0.1, 0.2, 0.3, 0.5, 0.7, 1.0) if c >= top * 1.04),
-                 1.0)
-    plot = _Plot(title, (0.0, limit), (0.0, limit), "mean predicted probability in bin",
-                 "observed rate in bin")
-    ticks = [(t, _fmt(t, 3)) for t in _nice_ticks(0.0, limit)]
+    means = [_num(b["mean_prediction"]) for b in used]
+    highs = [_num(b.get("wilson_high")) for b in used]
+    tops = means + [h if math.isfinite(h) else _num(b["observed_rate"])
+                    for h, b in zip(highs, used)]
+    if log_axes:
+        # The range covers the dots; an interval reaching lower is cut at the bottom edge.
+        lows = [v for b in used for v in (_num(b["mean_prediction"]), _num(b["observed_rate"]))
+                if v > 0]
+        lo = max(min(lows) / 1.6, 1e-6) if lows else 1e-4
+        hi = min(max(tops) * 1.25, 1.0)
+        if hi <= lo * 1.5:
+            hi = min(lo * 10.0, 1.0)
+        fwd = math.log10
+        plot = _Plot(title, (fwd(lo), fwd(hi)), (fwd(lo), fwd(hi)),
+                     "mean predicted probability in bin", "observed rate in bin")
+        ticks = [(fwd(t), _fmt(t, 3)) for t in _log_ticks(lo, hi)]
+    else:
+        lo = 0.0
+        hi = next((c for c in (0.01, 0.02, 0.05, 0.1, 0.2, 0.3, 0.5, 0.7, 1.0)
+                   if c >= max(tops) * 1.04), 1.0)
+
+        def fwd(v):
+            return v
+
+        plot = _Plot(title, (0.0, hi), (0.0, hi), "mean predicted probability in bin",
+                     "observed rate in bin")
+        ticks = [(t, _fmt(t, 3)) for t in _nice_ticks(0.0, hi)]
     plot.axes(ticks, ticks)
-    plot.parts.append(f'<line x1="{plot.px(0):.1f}" y1="{plot.py(0):.1f}" '
-                      f'x2="{plot.px(limit):.1f}" y2="{plot.py(limit):.1f}" stroke="{_GREY}" '
+
+    def y_of(v):
+        return plot.py(fwd(max(v, lo)))
+
+    plot.parts.append(f'<line x1="{plot.px(fwd(lo)):.1f}" y1="{plot.py(fwd(lo)):.1f}" '
+                      f'x2="{plot.px(fwd(hi)):.1f}" y2="{plot.py(fwd(hi)):.1f}" stroke="{_GREY}" '
                       f'stroke-dasharray="6 4"/>')
-    total = sum(_num(b.get("weight", b["count"])) for b in used) or 1.0
     for b in used:
-        x, y = plot.px(_num(b["mean_prediction"])), plot.py(_num(b["observed_rate"]))
-        lo, hi = _num(b.get("wilson_low")), _num(b.get("wilson_high"))
-        if math.isfinite(lo) and math.isfinite(hi):
-            y_lo, y_hi = plot.py(lo), plot.py(hi)
+        mean, observed = _num(b["mean_prediction"]), _num(b["observed_rate"])
+        if log_axes and mean <= 0:
+            continue
+        color = _ORANGE if _inside(b) is False else _BLUE
+        x, y = plot.px(fwd(mean)), y_of(observed)
+        lo_i, hi_i = _num(b.get("wilson_low")), _num(b.get("wilson_high"))
+        if math.isfinite(lo_i) and math.isfinite(hi_i):
+            y_lo, y_hi = y_of(lo_i), y_of(hi_i)
             plot.parts.append(f'<line x1="{x:.1f}" y1="{y_lo:.1f}" x2="{x:.1f}" y2="{y_hi:.1f}" '
-                              f'stroke="{_BLUE}" stroke-width="1.5"/>')
-            for yy in (y_lo, y_hi):
-                plot.parts.append(f'<line x1="{x - 5:.1f}" y1="{yy:.1f}" x2="{x + 5:.1f}" '
-                                  f'y2="{yy:.1f}" stroke="{_BLUE}" stroke-width="1.5"/>')
-        share = _num(b.get("weight", b["count"])) / total
-        radius = 3.0 + 7.0 * math.sqrt(max(share, 0.0))
-        plot.parts.append(f'<circle cx="{x:.1f}" cy="{y:.1f}" r="{radius:.1f}" fill="{_BLUE}" '
-                          f'fill-opacity="0.75"/>')
-    plot.legend([("observed rate, 95% Wilson interval", _BLUE, False),
+                              f'stroke="{color}" stroke-width="1.5"/>')
+            for end, yy in ((lo_i, y_lo), (hi_i, y_hi)):
+                if end >= lo:
+                    plot.parts.append(f'<line x1="{x - 4:.1f}" y1="{yy:.1f}" x2="{x + 4:.1f}" '
+                                      f'y2="{yy:.1f}" stroke="{color}" stroke-width="1.5"/>')
+        fill = "#ffffff" if log_axes and observed <= 0 else color
+        plot.parts.append(f'<circle cx="{x:.1f}" cy="{y:.1f}" r="4.5" fill="{fill}" '
+                          f'stroke="{color}" stroke-width="1.5"/>')
+    plot.legend([("interval holds the mean", _BLUE, False), ("interval misses it", _ORANGE, False),
                  ("perfect calibration", _GREY, True)])
     return plot.svg()
 
@@ -307,16 +378,12 @@ def _table(headers, rows, text_cols=()) -> str:
 
 
 def _cards(final: dict) -> str:
-    auc = _fmt(final.get("auc"))
-    bound = _num(final.get("auc_error_bound"))
-    if auc != "n/a" and math.isfinite(bound) and bound > 0:
-        auc += f" \u00b1 {bound:.1g}"
     items = [
         ("holdout rows", _fmt(final.get("rows"))),
         ("base rate", _fmt(final.get("base_rate"))),
         ("log-loss", _fmt(final.get("log_loss"))),
         ("normalized entropy", _fmt(final.get("normalized_entropy"))),
-        ("AUC", auc),
+        ("AUC", _fmt(final.get("auc"))),
         ("Brier score", _fmt(final.get("brier"))),
         ("predicted / observed", _fmt(final.get("calibration_ratio"))),
         ("calibration error (ECE)", _fmt(final.get("ece"))),
@@ -326,6 +393,115 @@ def _cards(final: dict) -> str:
     return '<div class="cards">' + "".join(
         f'<div class="card"><div class="k">{_esc(k)}</div><div class="v">{_esc(v)}</div></div>'
         for k, v in items) + "</div>"
+
+
+def _auc_note(final: dict) -> str:
+    """What the AUC's recorded bound means, in words ("" when there is none)."""
+    bound = _num(final.get("auc_error_bound"))
+    if not math.isfinite(_num(final.get("auc"))) or not math.isfinite(bound):
+        return ""
+    exact = ("it is exact for these scores" if bound == 0 else
+             f"it is within {bound:.1g} of the exact AUC of these scores")
+    return (f'<p class="note">The AUC is computed from a fine histogram of the scores; {exact}. '
+            "That bound covers the histogram only, not sampling error: another holdout day would "
+            "give a different AUC.</p>")
+
+
+def _misses_allowed(n: int) -> int:
+    """Smallest k with P(Binomial(n, 0.05) <= k) >= 0.95: the misses a calibrated model may show."""
+    total = 0.0
+    for k in range(n + 1):
+        total += math.comb(n, k) * _MISS_RATE ** k * (1.0 - _MISS_RATE) ** (n - k)
+        if total >= 0.95:
+            return k
+    return n
+
+
+def _holdout_loss(summary, loss: str):
+    summary = summary or {}
+    return _num(summary.get("log_loss" if loss == "logistic" else "squared_hinge_loss"))
+
+
+def _verdict(final: dict, passes, loss: str, best_pass) -> str:
+    """The one-line verdict (base rate, calibration within intervals, last pass) and a line of
+    the figures behind it."""
+    parts = []
+    ll, ne = _num(final.get("log_loss")), _num(final.get("normalized_entropy"))
+    if math.isfinite(ll) and math.isfinite(ne) and ne > 0:
+        head = f"than the base rate (normalized entropy {_fmt(ne, 3)})"
+        detail = (f"holdout log-loss {_fmt(ll)} against {_fmt(ll / ne)} for always predicting the "
+                  f"base rate, {100.0 * _num(final.get('base_rate')):.3g}%")
+        parts.append(("ok", "Better " + head, detail) if ne < 1 else
+                     ("bad", "Not better " + head, detail))
+    else:
+        parts.append(("unknown", "Base rate comparison n/a", "no holdout log-loss recorded"))
+    inside = [_inside(b) for b in _reliability_bins(final.get("bins") or [])]
+    checked = [i for i in inside if i is not None]
+    if checked:
+        held, allowed = checked.count(True), _misses_allowed(len(checked))
+        head = f"calibrated within its intervals ({held} of {len(checked)} bins)"
+        detail = (f"the mean prediction lies inside the bin's 95% interval in {held} of "
+                  f"{len(checked)} bins; a calibrated model misses up to {allowed} by chance")
+        parts.append(("ok", head.capitalize(), detail) if len(checked) - held <= allowed else
+                     ("bad", "Not " + head, detail))
+    else:
+        parts.append(("unknown", "Calibration n/a", "no reliability bins recorded"))
+    losses = [(p.get("pass"), _holdout_loss(p.get("holdout"), loss)) for p in passes]
+    losses = [(k, v) for k, v in losses if math.isfinite(v)]
+    name = "log-loss" if loss == "logistic" else "squared hinge loss"
+    if len(losses) >= 2:
+        (_, before), (last, after) = losses[-2], losses[-1]
+        change = f"({100.0 * (after - before) / before:+.2g}%)"
+        detail = f"pass {last} took the holdout {name} from {_fmt(before)} to {_fmt(after)}"
+        if after < before:
+            parts.append(("ok", f"Last pass improved the holdout {change}", detail))
+        else:
+            if best_pass not in (None, last):
+                detail += f"; the weights of pass {best_pass} are kept"
+            parts.append(("bad", f"Last pass did not improve the holdout {change}", detail))
+    else:
+        parts.append(("unknown", "Last-pass change n/a", "fewer than two passes with a holdout"))
+    marks = {"ok": "\u2713", "bad": "\u2717", "unknown": "\u2013"}
+    line = " \u00b7 ".join(f'<span class="{kind}">{marks[kind]} {_esc(head)}</span>'
+                           for kind, head, _ in parts)
+    details = "; ".join(detail for _, _, detail in parts)
+    details = details[0].upper() + details[1:]
+    return f'<p class="verdict">{line}</p><p class="note">{_esc(details)}.</p>'
+
+
+#: What an option left unset (None) means, shown beside the value it resolved to.
+_UNSET_MEANS = {"step0": "the solver's own", "start": "no limit, from the first day",
+                "end": "no limit, to the last day", "holdout_start": "no limit",
+                "holdout_end": "no limit"}
+
+
+def _option_text(value) -> str:
+    if isinstance(value, bool):
+        return "on" if value else "off"
+    if isinstance(value, int):
+        return f"{value:,}"
+    if isinstance(value, float):
+        return repr(value)
+    return str(value)
+
+
+def _option_rows(options: dict, defaults: dict, resolved: dict) -> list[tuple[str, str]]:
+    """(flag, value used) per option: "default" marks a default value, and an unset option shows
+    what it resolved to (``resolved``) or what leaving it unset means."""
+    rows = []
+    for key, value in options.items():
+        flag = "--" + str(key).replace("_", "-")
+        if value is None:
+            meaning = _UNSET_MEANS.get(key, "not set")
+            used = resolved.get(key)
+            text = (f"{_option_text(used)} (default: {meaning})" if used is not None else
+                    f"default: {meaning}")
+        else:
+            text = _option_text(value)
+            if key in defaults and defaults[key] == value:
+                text += " (default)"
+        rows.append((flag, text))
+    return rows
 
 
 def _weights_tables(top_weights) -> str:
@@ -344,29 +520,46 @@ def _weights_tables(top_weights) -> str:
     return '<div class="row">' + "".join(parts) + "</div>"
 
 
-def render_report(run: dict) -> str:
+def render_report(run: dict, probability_axis: str = "auto") -> str:
     """Render a training run as one self-contained HTML page (returned as a string).
 
-    Takes ``run`` with keys ``title`` (str), ``options`` (dict of training options), ``passes``
-    (list of {"pass", "rows", "progressive_loss", "holdout": BinaryMetrics summary or None}),
-    ``progress`` (list of {"rows", "loss"}: the progressive-validation curve, the method of
-    "Beating the hold-out: Bounds for k-fold and progressive cross-validation", COLT, 1999),
-    ``final_holdout`` (a ``trainer.metrics.BinaryMetrics`` summary, or None), ``top_weights``
-    (list of {"bucket", "weight", "examples": [str, ...]}) and ``loss`` ("logistic" or
-    "squared-hinge"). Draws five
-    SVG charts: holdout log-loss per pass, holdout AUC per pass, the progressive-validation curve,
-    the reliability diagram with 95% Wilson intervals and the diagonal, and the score histograms by
-    class; plus tables of figures per pass, reliability bins, largest weights and options.
-    Undefined values (NaN or None) show as "n/a". Raises KeyError when a required key is missing
-    and ValueError for an unknown ``loss``.
+    Takes ``run`` with keys ``title`` (str), ``options`` (dict of training options as recorded;
+    None for an option left unset), ``passes`` (list of {"pass", "rows", "progressive_loss",
+    "holdout": BinaryMetrics summary or None}), ``progress`` (list of {"rows", "loss"}: the
+    progressive-validation curve, the method of "Beating the hold-out: Bounds for k-fold and
+    progressive cross-validation", COLT, 1999), ``final_holdout`` (a
+    ``trainer.metrics.BinaryMetrics`` summary, or None), ``top_weights`` (list of {"bucket",
+    "weight", "examples": [str, ...]}) and ``loss`` ("logistic" or "squared-hinge"); optional
+    ``option_defaults`` (dict: each option's default value), ``resolved_options`` (dict: the value
+    an unset option resolved to, e.g. the solver's initial step) and ``best_pass`` (the pass whose
+    weights were kept). ``probability_axis`` is "linear", "log" or "auto" (log-scaled axes when
+    the final holdout's base rate is below :data:`LOG_AXIS_BELOW_BASE_RATE`: the equal-weight bins
+    of a rare response sit at small probabilities, which a linear axis squeezes into its left edge).
+
+    The page opens with a one-line verdict (better than the base rate by normalized entropy;
+    calibrated when no more bins' 95% intervals miss their mean prediction than chance explains;
+    whether the last pass lowered the holdout loss). Draws six SVG charts: holdout log-loss,
+    AUC and predicted / observed per pass, the progressive-validation curve, the reliability
+    diagram with 95% Wilson intervals ("Probable Inference, the Law of Succession, and
+    Statistical Inference", JASA, 1927) and the diagonal, and the score histograms by class; plus
+    tables of figures per pass, reliability bins, largest weights and options. Undefined values
+    (NaN or None) show as "n/a". Raises KeyError when a required key is missing and ValueError
+    for an unknown ``loss`` or ``probability_axis``.
     """
     loss = run["loss"]
     if loss not in ("logistic", "squared-hinge"):
         raise ValueError(f"render_report: loss must be 'logistic' or 'squared-hinge', got {loss!r}")
+    if probability_axis not in _PROBABILITY_AXES:
+        raise ValueError(f"render_report: probability_axis must be one of {_PROBABILITY_AXES}, "
+                         f"got {probability_axis!r}")
     loss_name = "log-loss" if loss == "logistic" else "squared hinge loss"
     passes = run["passes"]
     final = run["final_holdout"] or {}
     title = str(run["title"])
+    best_pass = run.get("best_pass")
+    base = _num(final.get("base_rate"))
+    log_axes = probability_axis == "log" or (
+        probability_axis == "auto" and math.isfinite(base) and 0 < base < LOG_AXIS_BELOW_BASE_RATE)
 
     def holdout_points(key):
         return _finite_pairs([p.get("pass") for p in passes],
@@ -381,50 +574,75 @@ def render_report(run: dict) -> str:
         _per_pass_chart("Holdout AUC after each pass", "AUC",
                         [("holdout AUC", _BLUE, False, holdout_points("auc"))]),
     ]
+    ratio_chart = _per_pass_chart(
+        "Holdout predicted / observed after each pass", "predicted / observed",
+        [("holdout predicted / observed", _BLUE, False, holdout_points("calibration_ratio"))],
+        reference=("calibrated (1.0)", 1.0))
     pass_rows = [(p.get("pass", ""), _fmt(p.get("rows")), _fmt(p.get("progressive_loss")),
                   _fmt((p.get("holdout") or {}).get("log_loss")),
-                  _fmt((p.get("holdout") or {}).get("auc"))) for p in passes]
+                  _fmt((p.get("holdout") or {}).get("normalized_entropy")),
+                  _fmt((p.get("holdout") or {}).get("auc")),
+                  _fmt((p.get("holdout") or {}).get("calibration_ratio"))) for p in passes]
     pass_table = _table(["pass", "rows", f"progressive {loss_name}", "holdout log-loss",
-                         "holdout AUC"], pass_rows)
+                         "normalized entropy", "holdout AUC", "predicted / observed"], pass_rows)
     bins = final.get("bins") or []
+    inside_text = {True: "yes", False: "no", None: "n/a"}
     bin_rows = [(f"{_fmt(b.get('lo'), 3)} \u2013 {_fmt(b.get('hi'), 3)}", _fmt(b.get("count")),
                  _fmt(b.get("mean_prediction")), _fmt(b.get("observed_rate")),
-                 _fmt_interval(b.get("wilson_low"), b.get("wilson_high"))) for b in bins]
-    bin_table = _table(["prediction range", "rows", "mean prediction", "observed rate",
-                        "95% interval"], bin_rows, text_cols=(0, 4))
-    option_rows = [(k, v if isinstance(v, str) else repr(v)) for k, v in run["options"].items()]
+                 _fmt_interval(b.get("wilson_low"), b.get("wilson_high")),
+                 _fmt(_num(b.get("mean_prediction")) / _num(b.get("observed_rate"))
+                      if _num(b.get("observed_rate")) > 0 else math.nan, 3),
+                 inside_text[_inside(b)]) for b in bins]
+    bin_table = _table(["predictions in bin", "rows", "mean prediction", "observed rate",
+                        "95% interval", "predicted / observed", "mean inside interval"], bin_rows,
+                       text_cols=(0, 4))
+    option_rows = _option_rows(run["options"], run.get("option_defaults") or {},
+                               run.get("resolved_options") or {})
     calibration_note = (
         "Probabilities come from the logistic model directly." if loss == "logistic" else
         "The model was trained with the squared hinge loss; its margins were turned into "
         "probabilities by Platt scaling fitted on a calibration slice.")
+    axis_note = (f"Both axes are log-scaled: the base rate is {_fmt(base, 3)}, so most bins sit at "
+                 "small probabilities, and a constant ratio of predicted to observed is a constant "
+                 "distance from the diagonal." if log_axes else "Both axes are linear.")
+    if log_axes and any(_num(b["observed_rate"]) <= 0 for b in _reliability_bins(bins)):
+        axis_note += " A bin without positives sits on the bottom edge as an open dot."
+    bin_count = f" ({len(bins)} bins cut at quantiles of the prediction)" if bins else ""
+    kept = (f"after pass {best_pass}, whose weights are kept" if best_pass is not None
+            else "at the end")
     sections = [
         f"<header><h1>{_esc(title)}</h1>"
+        f"{_verdict(final, passes, loss, best_pass)}"
         f'<p class="note">Training loss: {_esc(loss_name)}; {_esc(len(passes))} pass(es). '
-        f"Figures below are measured on the final holdout slice.</p>{_cards(final)}</header>",
+        f"Figures below are measured on the holdout {_esc(kept)}.</p>{_cards(final)}"
+        f"{_auc_note(final)}</header>",
         "<section><h2>Progress over the passes</h2>"
         f'<div class="row">{"".join(charts_pass)}</div>'
-        f'<div class="row" style="margin-top:18px">{_progress_chart(run["progress"], loss_name)}'
-        f"<div>{pass_table}</div></div></section>",
+        f'<div class="row" style="margin-top:18px">{ratio_chart}'
+        f'{_progress_chart(run["progress"], loss_name)}</div>'
+        f'<div class="row" style="margin-top:18px">{pass_table}</div></section>',
         "<section><h2>Calibration on the final holdout</h2>"
-        f'<p class="note">{_esc(calibration_note)} Each dot is one prediction bin (dot area grows '
-        "with its weight); bars show the 95% Wilson interval of the observed rate.</p>"
-        f'<div class="row">{_reliability_chart(bins)}'
+        f'<p class="note">{_esc(calibration_note)} Each dot is one bin of holdout rows of equal '
+        f"weight{bin_count}, placed at its mean prediction and observed rate; bars show the 95% "
+        f"Wilson interval of the observed rate. {_esc(axis_note)}</p>"
+        f'<div class="row">{_reliability_chart(bins, log_axes)}'
         f'{_histogram_chart(final.get("histogram") or {})}</div>'
         f'<div class="row" style="margin-top:18px">{bin_table}</div></section>',
         "<section><h2>Largest weights</h2>"
         '<p class="note">Hashed buckets with the largest weights, and field values that were seen '
         "in them (several values can share a bucket).</p>"
         f'{_weights_tables(run["top_weights"])}</section>',
-        f'<section><h2>Training options</h2>{_table(["option", "value"], option_rows, (0, 1))}'
-        "</section>",
+        "<section><h2>Training options</h2>"
+        f'{_table(["option", "value used"], option_rows, (0, 1))}</section>',
     ]
     return ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
             f"<title>{_esc(title)}</title><style>{_CSS}</style></head><body>"
             + "".join(sections) + "</body></html>\n")
 
 
-def write_report(run: dict, path) -> Path:
-    """Render ``run`` (see :func:`render_report`) and write it to ``path`` atomically.
+def write_report(run: dict, path, probability_axis: str = "auto") -> Path:
+    """Render ``run`` (see :func:`render_report`, which takes ``probability_axis``) and write it to
+    ``path`` atomically.
 
     The page goes to a temporary file in the same folder, is flushed to disk, then renamed over
     ``path`` with ``os.replace``, so a reader never sees a half-written report. Returns the path.
@@ -434,5 +652,5 @@ def write_report(run: dict, path) -> Path:
     folder = target.parent
     if not folder.is_dir():
         raise UserError(f"report path {str(target)!r}: folder {str(folder)!r} does not exist")
-    write_atomic(target, [render_report(run).encode("utf-8")])
+    write_atomic(target, [render_report(run, probability_axis).encode("utf-8")])
     return target

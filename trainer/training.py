@@ -257,7 +257,8 @@ class Trainer:
                 "summary": {"passes": self.state.pass_index, "rows": self.state.rows_total,
                             "distinct_tokens": distinct, "distinct_tokens_method":
                             "linear counting on the occupied buckets (ACM TODS 1990)",
-                            "steps": self.state.steps, "data": self.data, "holdout_data": self.holdout_path,
+                            "steps": self.state.steps, "step0": self.solver.step0, "data": self.data,
+                            "holdout_data": self.holdout_path,
                             "stopped_early": self.state.stopped_early, "best_pass": self.state.best_pass},
                 "holdout": holdout, "calibration": calibration, "examples": self.reader.examples.values}
         return Model(self.spec, weights, intercept, self.opt.loss, info)
