@@ -13,11 +13,11 @@ import numpy as np
 import pytest
 from numba import njit
 from scipy.stats import binom
-from sklearn.metrics import log_loss
+from sklearn.metrics import log_loss, roc_auc_score
 from statsmodels.stats.proportion import proportion_confint
 
 from trainer.errors import UserError
-from trainer.metrics import BinaryMetrics
+from trainer.metrics import BinaryMetrics, MarginMetrics
 from trainer.report import render_report, write_report
 from trainer.training import TrainOptions
 
@@ -203,7 +203,7 @@ def test_empty_run_still_draws_every_chart():
     doc = parse(render_report(run))
     # Reference: the brief asks for one <svg> per chart; empty charts say so in text.
     assert [t for t, _ in doc.tags].count("svg") == N_CHARTS
-    assert "no holdout rows" in "".join(doc.text)
+    assert "no holdout probabilities recorded" in "".join(doc.text)
 
 
 def test_squared_hinge_run_mentions_platt_scaling():
@@ -334,6 +334,26 @@ def test_per_pass_chart_shows_calibration_ratio():
     points = re.search(r'<polyline points="([^"]*)"', svg).group(1).split()
     # Reference: one point per pass with a holdout, and the line of perfect calibration at 1.0.
     assert len(points) == len(run["passes"]) and "calibrated (1.0)" in svg
+
+
+def test_squared_hinge_run_shows_margin_figures():
+    rng = np.random.default_rng(11)
+    margins = rng.normal(0.0, 1.0, 3000)
+    labels = (rng.random(3000) < 1 / (1 + np.exp(-2 * margins))).astype(float)
+    acc = MarginMetrics()
+    acc.update(labels, margins)
+    run = make_run(loss="squared-hinge")
+    for k, p in enumerate(run["passes"]):
+        p["holdout"] = {"rows": 3000, "positives": int(labels.sum()), "margin": acc.summary(),
+                        "squared_hinge_loss": 0.9 - 0.1 * k}
+    run["final_holdout"] = run["passes"][-1]["holdout"]
+    page = render_report(run)
+    # Reference: sklearn.metrics.roc_auc_score of the margins, shown where a probability AUC would be.
+    auc = roc_auc_score(labels, margins)
+    assert f'<div class="k">AUC</div><div class="v">{auc:.4g}</div>' in page
+    svg = svg_of(page, "Holdout squared hinge loss after each pass")
+    assert len(re.search(r'<polyline points="([^"]*)"', svg).group(1).split()) == 3
+    assert verdict_of(page)[2][0] == "ok"
 
 
 def test_write_report_replaces_atomically(tmp_path):

@@ -264,7 +264,7 @@ def _reliability_chart(bins, log_axes: bool) -> str:
     title = f"Reliability: observed rate against prediction ({scale})"
     used = _reliability_bins(bins)
     if not used:
-        return _empty_chart(title, "no holdout rows")
+        return _empty_chart(title, "no holdout probabilities recorded")
     means = [_num(b["mean_prediction"]) for b in used]
     highs = [_num(b.get("wilson_high")) for b in used]
     tops = means + [h if math.isfinite(h) else _num(b["observed_rate"])
@@ -335,7 +335,7 @@ def _histogram_chart(hist) -> str:
     n = len(pos)
     pos_total, neg_total = sum(pos), sum(neg)
     if n == 0 or len(edges) != n + 1 or pos_total + neg_total <= 0:
-        return _empty_chart(title, "no holdout rows")
+        return _empty_chart(title, "no holdout probabilities recorded")
     pos_share = [v / pos_total if pos_total > 0 else 0.0 for v in pos]
     neg_share = [v / neg_total if neg_total > 0 else 0.0 for v in neg]
     top = max(pos_share + neg_share)
@@ -415,6 +415,14 @@ def _misses_allowed(n: int) -> int:
         if total >= 0.95:
             return k
     return n
+
+
+def _with_margin_figures(summary):
+    """A holdout summary with the margin figures of a squared-hinge model (AUC, error rates, base
+    rate) filled in where the summary has no probability figures of its own; None stays None."""
+    if not summary or not isinstance(summary.get("margin"), dict):
+        return summary
+    return {**summary["margin"], **{k: v for k, v in summary.items() if k != "margin"}}
 
 
 def _holdout_loss(summary, loss: str):
@@ -538,13 +546,14 @@ def render_report(run: dict, probability_axis: str = "auto") -> str:
 
     The page opens with a one-line verdict (better than the base rate by normalized entropy;
     calibrated when no more bins' 95% intervals miss their mean prediction than chance explains;
-    whether the last pass lowered the holdout loss). Draws six SVG charts: holdout log-loss,
-    AUC and predicted / observed per pass, the progressive-validation curve, the reliability
-    diagram with 95% Wilson intervals ("Probable Inference, the Law of Succession, and
-    Statistical Inference", JASA, 1927) and the diagonal, and the score histograms by class; plus
-    tables of figures per pass, reliability bins, largest weights and options. Undefined values
-    (NaN or None) show as "n/a". Raises KeyError when a required key is missing and ValueError
-    for an unknown ``loss`` or ``probability_axis``.
+    whether the last pass lowered the holdout loss). Draws six SVG charts: holdout loss (the
+    training loss), AUC and predicted / observed per pass, the progressive-validation curve, the
+    reliability diagram with 95% Wilson intervals ("Probable Inference, the Law of Succession,
+    and Statistical Inference", JASA, 1927) and the diagonal, and the score histograms by class;
+    plus tables of figures per pass, reliability bins, largest weights and options. Undefined
+    values (NaN or None) show as "n/a". A squared-hinge model's summaries without probability
+    figures show the AUC and error rates of its margins (their ``margin`` part). Raises KeyError
+    when a required key is missing and ValueError for an unknown ``loss`` or ``probability_axis``.
     """
     loss = run["loss"]
     if loss not in ("logistic", "squared-hinge"):
@@ -553,8 +562,8 @@ def render_report(run: dict, probability_axis: str = "auto") -> str:
         raise ValueError(f"render_report: probability_axis must be one of {_PROBABILITY_AXES}, "
                          f"got {probability_axis!r}")
     loss_name = "log-loss" if loss == "logistic" else "squared hinge loss"
-    passes = run["passes"]
-    final = run["final_holdout"] or {}
+    passes = [{**p, "holdout": _with_margin_figures(p.get("holdout"))} for p in run["passes"]]
+    final = _with_margin_figures(run["final_holdout"]) or {}
     title = str(run["title"])
     best_pass = run.get("best_pass")
     base = _num(final.get("base_rate"))
@@ -565,12 +574,14 @@ def render_report(run: dict, probability_axis: str = "auto") -> str:
         return _finite_pairs([p.get("pass") for p in passes],
                              [(p.get("holdout") or {}).get(key) for p in passes])
 
-    loss_series = [("holdout log-loss", _BLUE, False, holdout_points("log_loss"))]
-    if loss == "logistic":
-        loss_series.append(("progressive log-loss during the pass", _ORANGE, True, _finite_pairs(
-            [p.get("pass") for p in passes], [p.get("progressive_loss") for p in passes])))
+    loss_series = [
+        (f"holdout {loss_name}", _BLUE, False, _finite_pairs(
+            [p.get("pass") for p in passes],
+            [_holdout_loss(p.get("holdout"), loss) for p in passes])),
+        (f"progressive {loss_name} during the pass", _ORANGE, True, _finite_pairs(
+            [p.get("pass") for p in passes], [p.get("progressive_loss") for p in passes]))]
     charts_pass = [
-        _per_pass_chart("Holdout log-loss after each pass", "log-loss", loss_series),
+        _per_pass_chart(f"Holdout {loss_name} after each pass", loss_name, loss_series),
         _per_pass_chart("Holdout AUC after each pass", "AUC",
                         [("holdout AUC", _BLUE, False, holdout_points("auc"))]),
     ]
@@ -579,11 +590,11 @@ def render_report(run: dict, probability_axis: str = "auto") -> str:
         [("holdout predicted / observed", _BLUE, False, holdout_points("calibration_ratio"))],
         reference=("calibrated (1.0)", 1.0))
     pass_rows = [(p.get("pass", ""), _fmt(p.get("rows")), _fmt(p.get("progressive_loss")),
-                  _fmt((p.get("holdout") or {}).get("log_loss")),
+                  _fmt(_holdout_loss(p.get("holdout"), loss)),
                   _fmt((p.get("holdout") or {}).get("normalized_entropy")),
                   _fmt((p.get("holdout") or {}).get("auc")),
                   _fmt((p.get("holdout") or {}).get("calibration_ratio"))) for p in passes]
-    pass_table = _table(["pass", "rows", f"progressive {loss_name}", "holdout log-loss",
+    pass_table = _table(["pass", "rows", f"progressive {loss_name}", f"holdout {loss_name}",
                          "normalized entropy", "holdout AUC", "predicted / observed"], pass_rows)
     bins = final.get("bins") or []
     inside_text = {True: "yes", False: "no", None: "n/a"}
