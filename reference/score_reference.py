@@ -2,7 +2,10 @@
 
 It reads only the two files of an export folder (``model.json`` and ``weights.parquet``) and a
 Parquet file of events, and uses nothing but the Python standard library, pyarrow (to read Parquet),
-numpy (for the result array) and mmh3 (MurmurHash3_x86_32). Every rule below is taken from the
+numpy (for the result array) and mmh3 (MurmurHash3_x86_32). It verifies both checksums of
+``model.json`` first: ``weights_sha256`` over the weights file and ``scoring_sha256`` over the
+fields that decide a score, in the canonical JSON form of RFC 8785 (a JCS library does that step in
+other languages). Every rule below is taken from the
 ``hashing`` section of ``model.json``; nothing comes from the hashcurve package. It is written for
 reading, one row at a time, not for speed: see README.md beside it for how to port it.
 
@@ -18,6 +21,7 @@ import datetime
 import hashlib
 import json
 import math
+from decimal import Decimal
 from pathlib import Path
 
 import mmh3
@@ -26,19 +30,58 @@ import pyarrow.parquet as pq
 
 FIELD_SEP = b"\x1f"  # between a column name and a value (hashing.field_separator)
 CROSS_SEP = b"\x1e"  # between the parts of a cross (hashing.cross_separator)
+SCORING_KEYS = ("format", "version", "loss", "link", "score", "calibration", "intercept", "hashing", "spec",
+                "n_buckets", "weights_file", "weights_columns", "absent_bucket_weight", "weights_sha256")
 
 
 # ----------------------------------------------------------------------------------------------
 # 1. Load the export
 
 
+def jcs_number(x):
+    """A number as RFC 8785 writes it (ECMAScript Number-to-String of the double)."""
+    x = float(x)
+    if x == 0.0:
+        return "0"
+    _, digits, exp = Decimal(repr(abs(x))).normalize().as_tuple()
+    s = "".join(map(str, digits))
+    k, n = len(s), exp + len(s)  # |x| = 0.s * 10^n
+    if k <= n <= 21:
+        body = s + "0" * (n - k)
+    elif 0 < n <= 21:
+        body = s[:n] + "." + s[n:]
+    elif -6 < n <= 0:
+        body = "0." + "0" * -n + s
+    else:
+        body = s[0] + ("." + s[1:] if k > 1 else "") + ("e+" if n > 0 else "e-") + str(abs(n - 1))
+    return ("-" if x < 0 else "") + body
+
+
+def jcs(value):
+    """RFC 8785 canonical JSON text: no whitespace, keys sorted by UTF-16 code units, strings escaped
+    like JSON.stringify, numbers by jcs_number."""
+    if value is None or isinstance(value, bool):
+        return json.dumps(value)
+    if isinstance(value, (int, float)):
+        return jcs_number(value)
+    if isinstance(value, str):
+        return json.dumps(value, ensure_ascii=False)
+    if isinstance(value, list):
+        return "[" + ",".join(jcs(v) for v in value) + "]"
+    keys = sorted(value, key=lambda k: k.encode("utf-16-be"))
+    return "{" + ",".join(json.dumps(k, ensure_ascii=False) + ":" + jcs(value[k]) for k in keys) + "}"
+
+
 def load_export(export_dir):
-    """Read model.json and weights.parquet; check the weights file's SHA-256; return (meta, weights)
-    where weights maps bucket -> weight (absent buckets weigh 0.0)."""
+    """Read model.json and weights.parquet; check scoring_sha256 and the weights file's SHA-256;
+    return (meta, weights) where weights maps bucket -> weight (absent buckets weigh 0.0)."""
     folder = Path(export_dir)
     meta = json.loads((folder / "model.json").read_text(encoding="utf-8"))
-    if meta.get("format") != "hashcurve-export" or meta.get("version") != 1:
-        raise ValueError("model.json is not a version 1 hashcurve export")
+    if meta.get("format") != "hashcurve-export" or meta.get("version") != 2:
+        raise ValueError("model.json is not a version 2 hashcurve export")
+    scoring = jcs({k: meta.get(k) for k in SCORING_KEYS}).encode("utf-8")
+    if hashlib.sha256(scoring).hexdigest() != meta.get("scoring_sha256"):
+        raise ValueError("model.json: the fields that decide a score do not match scoring_sha256")
     if meta["hashing"]["algorithm"] != "murmur3_x86_32":
         raise ValueError(f"unknown hash algorithm {meta['hashing']['algorithm']!r}")
     raw = (folder / meta["weights_file"]).read_bytes()

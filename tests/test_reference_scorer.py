@@ -40,7 +40,7 @@ def test_reference_imports_only_the_allowed_libraries():
     tree = ast.parse((REF_DIR / "score_reference.py").read_text())
     names = {a.name.split(".")[0] for n in ast.walk(tree) if isinstance(n, ast.Import) for a in n.names}
     names |= {n.module.split(".")[0] for n in ast.walk(tree) if isinstance(n, ast.ImportFrom)}
-    assert names <= {"argparse", "datetime", "hashlib", "json", "math", "pathlib", "__future__",
+    assert names <= {"argparse", "datetime", "decimal", "hashlib", "json", "math", "pathlib", "__future__",
                      "mmh3", "numpy", "pyarrow"}
 
 

@@ -3,16 +3,20 @@
 Two on-disk forms exist:
 
 * a training model folder (``MODEL_DIR``): ``model.npz`` (arrays ``weights``, ``intercept``) and
-  ``model.json`` (format tag, spec, loss, info and the SHA-256 of ``model.npz``), written by
-  :meth:`Model.save`;
+  ``model.json`` (format tag, spec, loss, info, the SHA-256 of ``model.npz`` and ``scoring_sha256``),
+  written by :meth:`Model.save`;
 * an export folder (``EXPORT_DIR``): ``weights.parquet`` (columns ``bucket`` int64, ``weight``
   float64, non-zero weights only, sorted by bucket) and ``model.json`` (the self-describing document
   of ``schemas/model.schema.json``: hashing contract, intercept, link, calibration, training options,
-  holdout metrics and the SHA-256 of ``weights.parquet``), written by :func:`export_model`. Anything
+  holdout metrics, the SHA-256 of ``weights.parquet`` and ``scoring_sha256``), written by
+  :func:`export_model`. Anything
   that implements the hashing contract can score with these two files alone
   (``reference/score_reference.py`` is the executable form).
 
-:func:`load_model` reads either form and refuses a folder whose checksum does not match.
+:func:`load_model` reads either form and refuses a folder whose checksums do not match.
+``scoring_sha256`` is the SHA-256 of the RFC 8785 canonical JSON (:mod:`trainer.canonical`) of the
+fields of ``model.json`` that decide a score (:func:`scoring_fields`), so an edited intercept,
+calibration, link, loss, hashing section or spec is refused like a changed weights file.
 """
 
 from __future__ import annotations
@@ -34,6 +38,7 @@ from scipy.special import expit
 
 from trainer import __version__
 from trainer.atomic import atomic_path, fsync_dir, fsync_file, write_atomic
+from trainer.canonical import canonical_json
 from trainer.errors import UserError
 from trainer.kernels import predict_margin
 from trainer.spec import Spec, parse_spec
@@ -41,12 +46,19 @@ from trainer.spec import Spec, parse_spec
 LOSSES = ("logistic", "squared-hinge")
 TRAINING_FORMAT = "hashcurve-training-model"
 EXPORT_FORMAT = "hashcurve-export"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
 META_FILE = "model.json"
 ARRAYS_FILE = "model.npz"
 WEIGHTS_FILE = "weights.parquet"
 EXPORT_FILES = (META_FILE, WEIGHTS_FILE)
 LINKS = {"logistic": "logistic", "squared-hinge": "identity-margin"}
+#: The keys of an export's model.json that decide a score; ``scoring_sha256`` covers exactly these.
+EXPORT_SCORING_KEYS = ("format", "version", "loss", "link", "score", "calibration", "intercept", "hashing",
+                       "spec", "n_buckets", "weights_file", "weights_columns", "absent_bucket_weight",
+                       "weights_sha256")
+#: The same for a training folder's model.json, plus ``info.calibration`` (the intercept and weights
+#: live in model.npz, covered by ``arrays_sha256``).
+TRAINING_SCORING_KEYS = ("format", "version", "spec", "loss", "arrays_file", "arrays_sha256")
 
 _INFO_DEFAULTS = {"options": {}, "negative_keep_rate": 1.0, "summary": {}, "holdout": None,
                   "calibration": None, "examples": {}}
@@ -221,10 +233,29 @@ class Model:
             meta = {"format": TRAINING_FORMAT, "version": FORMAT_VERSION, "generator": f"hashcurve {__version__}",
                     "spec": self.spec.raw, "loss": self.loss, "info": jsonable(self.info),
                     "arrays_file": ARRAYS_FILE, "arrays_sha256": digest}
+            meta["scoring_sha256"] = scoring_sha256(meta)
             write_atomic(folder / META_FILE, [json.dumps(meta, indent=1, allow_nan=False).encode("utf-8")])
         except OSError as exc:
             raise UserError(f"{folder}: cannot write the model folder ({exc.strerror or exc})") from None
         return folder
+
+
+def scoring_fields(meta: dict) -> dict:
+    """The fields of a ``model.json`` document (export or training form) that decide a score: the
+    export's :data:`EXPORT_SCORING_KEYS`, or a training folder's :data:`TRAINING_SCORING_KEYS` plus
+    ``calibration`` taken from ``info``. An absent key counts as null. Raises nothing."""
+    if meta.get("format") == TRAINING_FORMAT:
+        info = meta.get("info")
+        return {**{k: meta.get(k) for k in TRAINING_SCORING_KEYS},
+                "calibration": info.get("calibration") if isinstance(info, dict) else None}
+    return {k: meta.get(k) for k in EXPORT_SCORING_KEYS}
+
+
+def scoring_sha256(meta: dict) -> str:
+    """Hex SHA-256 of the RFC 8785 canonical JSON ("JSON Canonicalization Scheme (JCS)", 2020) of
+    :func:`scoring_fields` of ``meta``. Raises ValueError when a field has no canonical form (NaN,
+    infinity, an integer beyond 2^53)."""
+    return hashlib.sha256(canonical_json(scoring_fields(meta))).hexdigest()
 
 
 def _no_calibration() -> UserError:
@@ -270,6 +301,13 @@ def _read_meta(folder: Path) -> dict:
     if version != FORMAT_VERSION:
         raise UserError(f"{path}: model format version {version!r} is not supported (this hashcurve "
                         f"reads version {FORMAT_VERSION})")
+    try:
+        ok = scoring_sha256(meta) == meta.get("scoring_sha256")
+    except ValueError:
+        ok = False
+    if not ok:
+        raise UserError(f"{path}: the fields that decide a score (intercept, calibration, link, loss, hashing, "
+                        "spec, weights checksum) do not match key 'scoring_sha256'; the file was edited or damaged")
     return meta
 
 
@@ -380,7 +418,7 @@ def export_document(model: Model, weights_sha256: str, nonzero: int) -> dict:
     nothing."""
     link = LINKS[model.loss]
     cal = model.calibration
-    return jsonable({
+    doc = jsonable({
         "format": EXPORT_FORMAT,
         "version": FORMAT_VERSION,
         "generator": f"hashcurve {__version__}",
@@ -404,6 +442,8 @@ def export_document(model: Model, weights_sha256: str, nonzero: int) -> dict:
         "holdout": model.info["holdout"],
         "examples": model.info["examples"],
     })
+    doc["scoring_sha256"] = scoring_sha256(doc)
+    return doc
 
 
 def _write_export(model: Model, folder: Path) -> None:
