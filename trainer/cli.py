@@ -68,6 +68,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--checkpoint-every", type=int, default=d.checkpoint_every,
                    help="rows between checkpoints (default: %(default)s)")
     p.add_argument("--skip-bad-labels", action="store_true", help="drop rows with null or unaccepted labels")
+    p.add_argument("--allow-one-class", action="store_true",
+                   help="train even when every training label is 0, or every one is 1")
     p.add_argument("--resume", action="store_true", help="continue from the checkpoint in --out")
     p.add_argument("--force", action="store_true", help="replace the files of another run in --out")
     p.add_argument("--quiet", action="store_true", help="no progress bars or per-pass table")
@@ -143,7 +145,7 @@ def _train(a) -> None:
     options = {k: getattr(a, k) for k in ("epochs", "loss", "solver", "l2_strength", "history", "batch_rows", "step0",
                                           "seed", "shuffle_buffer", "negative_keep_rate", "patience",
                                           "checkpoint_every", "start", "end", "holdout_start", "holdout_end",
-                                          "skip_bad_labels")}
+                                          "skip_bad_labels", "allow_one_class")}
     api.train(a.spec, a.data, a.out, holdout=a.holdout, resume=a.resume, force=a.force,
               quiet=a.quiet, **options)
     print(f"model written to {a.out}")

@@ -11,7 +11,7 @@ class UserError(Exception):
 
 
 class Diverged(UserError):
-    """Training produced a non-finite loss or weight; the last good state is kept."""
+    """Training produced a non-finite loss or weight; the message says what the model folder keeps."""
 
 
 class Interrupted(Exception):

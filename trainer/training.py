@@ -3,11 +3,19 @@
 One training run owns one model folder:
 
 - ``run.json``: spec, options and fingerprint of the run (written first, so another run is refused);
+  while a run works in the folder it holds an exclusive ``flock`` on the folder, released by the
+  kernel when the process ends however it ends, so a live run is never disturbed by another;
 - ``checkpoint.bin``: the complete state (``trainer.checkpoint``), every ``checkpoint_every`` rows
   and at each pass end;
 - ``metrics.jsonl``: one line per finished pass (progressive loss, holdout metrics);
 - ``progress.json``: the progressive-validation curve;
 - ``model.json`` + ``model.npz``: the model (the best pass's when a holdout decides).
+
+A refused run leaves nothing behind: when a UserError stops a run before it wrote a checkpoint, the
+files it wrote are removed (and the folder, when the run created it); after a checkpoint the folder
+is kept for ``--resume`` and the message says what it holds. A folder whose run never wrote a
+checkpoint (killed in its first seconds) starts that run afresh on ``--resume`` or on the same
+command again; other options are refused, naming the first that differs.
 
 Progressive validation ("online" or "test-then-train" evaluation, common practice): each batch's
 loss is measured before the solver learns from it.
@@ -17,8 +25,10 @@ from __future__ import annotations
 
 import dataclasses
 import datetime as dt
+import fcntl
 import json
 import math
+import os
 import signal
 import sys
 import time
@@ -30,7 +40,8 @@ from tqdm import tqdm
 
 from trainer.atomic import write_atomic
 from trainer.checkpoint import load_checkpoint, save_checkpoint
-from trainer.errors import Interrupted, UserError
+from trainer.errors import Diverged, Interrupted, UserError
+from trainer.hashing import hash_bytes
 from trainer.evaluation import evaluate
 from trainer.metrics import fit_platt
 from trainer.model import Model, jsonable, load_model
@@ -47,6 +58,9 @@ PLATT_ROWS = 1_000_000
 #: A pass whose holdout predicted/observed ratio falls outside this range is marked "!" in the
 #: per-pass table, with a one-line note (a band for a first look, common practice; not a test).
 CALIBRATED = (0.8, 1.25)
+#: A numeric column without edges whose |value| exceeds this in the batch where the solver diverged is
+#: named in the message as the likely cause (one-hot entries are 1.0; log1p keeps values under 710).
+HUGE_NUMERIC = 1e3
 
 
 @dataclass
@@ -70,6 +84,7 @@ class TrainOptions:
     holdout_start: dt.date | None = None
     holdout_end: dt.date | None = None
     skip_bad_labels: bool = False
+    allow_one_class: bool = False
 
     TRAJECTORY = ("loss", "solver", "l2_strength", "history", "batch_rows", "step0", "seed", "shuffle_buffer",
                   "negative_keep_rate", "start", "end", "skip_bad_labels")
@@ -115,6 +130,8 @@ class _State:
     best_score: float | None = None
     bad_passes: int = 0
     stopped_early: bool = False
+    positives: int = 0
+    negatives: int = 0
 
 
 class _StopFlag:
@@ -152,10 +169,11 @@ class Trainer:
 
     ``spec``: the feature spec; ``data``: training log path; ``holdout``: holdout log path or None
     (with ``options.holdout_start/end`` it may be the training path itself); ``resume``: continue
-    from ``out/checkpoint.bin``; ``force``: replace another run's files in ``out``; ``quiet``: no
-    progress bar and no per-pass table (otherwise the table goes to stdout and the bar, on a
-    terminal only, to stderr).
-    Raises UserError for bad options, data or model folders before writing anything.
+    from ``out/checkpoint.bin`` (or start afresh a run of the same fingerprint that never wrote one);
+    ``force``: replace another run's files in ``out``; ``quiet``: no progress bar and no per-pass
+    table (otherwise the table goes to stdout and the bar, on a terminal only, to stderr).
+    Raises UserError for bad options, data or model folders before writing anything, also when another
+    process is running in ``out``.
     """
 
     def __init__(self, spec: Spec, data: str | Path, out: str | Path, options: TrainOptions, *,
@@ -179,7 +197,14 @@ class Trainer:
         self.state = _State()
         self.ckpt = self.out / "checkpoint.bin"
         self.resume = resume
-        self._prepare_folder(force)
+        self._lock_fd: int | None = None
+        self._created_dirs: list[Path] = []
+        self._saved: tuple[int, int] | None = None
+        try:
+            self._prepare_folder(force)
+        except BaseException:
+            self._release()
+            raise
 
     # -- the model folder -------------------------------------------------------------------------
 
@@ -188,41 +213,121 @@ class Trainer:
         return {"spec": self.spec.fingerprint(), "data": self.data,
                 **{k: opts[k] for k in TrainOptions.TRAJECTORY}}
 
+    def _difference(self, theirs: dict) -> str | None:
+        """How a recorded fingerprint differs from this run's: "the spec", "--data" or the first
+        differing option with its two values; None when they are the same run."""
+        ours = self._fingerprint()
+        for key in ours:
+            if theirs.get(key) != ours[key]:
+                what = "the spec" if key == "spec" else ("--data" if key == "data" else f"--{key.replace('_', '-')}")
+                return f"{what} differs ({theirs.get(key)!r} there, {ours[key]!r} now)"
+        return None
+
+    def _lock(self) -> None:
+        """Take the folder's exclusive lock, or refuse when another process holds it."""
+        fd = os.open(self.out, os.O_RDONLY)
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            os.close(fd)
+            raise UserError(f"{self.out}: another hashcurve run is working in this folder right now; "
+                            "wait for it to end or choose another --out") from None
+        self._lock_fd = fd
+
+    def _release(self) -> None:
+        if self._lock_fd is not None:
+            os.close(self._lock_fd)
+            self._lock_fd = None
+
+    def _read_run(self) -> dict | None:
+        """The folder's run.json, or None when absent or unreadable."""
+        try:
+            run = json.loads((self.out / "run.json").read_text(encoding="utf-8"))
+        except (OSError, UnicodeDecodeError, json.JSONDecodeError):
+            return None
+        return run if isinstance(run, dict) else None
+
     def _prepare_folder(self, force: bool) -> None:
-        if self.resume:
-            arrays, meta = load_checkpoint(self.ckpt)
-            theirs, ours = meta["fingerprint"], self._fingerprint()
-            for key in ours:
-                if theirs.get(key) != ours[key]:
-                    what = "the spec" if key == "spec" else ("--data" if key == "data" else f"--{key.replace('_', '-')}")
-                    raise UserError(f"{self.ckpt}: cannot resume: {what} differs from the checkpoint's "
-                                    f"({theirs.get(key)!r} there, {ours[key]!r} now)")
-            self.solver.load_state({k[7:]: (v.item() if v.ndim == 0 else v)
-                                    for k, v in arrays.items() if k.startswith("solver.")})
-            ex = meta["examples"]
-            self.reader.examples = self.reader.featurizer.examples = BucketExamples(
-                self.spec.n_buckets, max_rows=ex["rows_left"], values=ex["values"])
-            s = meta["state"]
-            s["position"] = Position(*s["position"]) if s["position"] is not None else None
-            self.state = _State(**s)
-            self._trim_metrics()
-            return
         if self.out.exists() and not self.out.is_dir():
             raise UserError(f"{self.out}: exists and is not a folder")
-        if self.out.exists() and any(self.out.iterdir()):
+        if self.resume and not self.out.is_dir():
+            raise UserError(f"{self.ckpt}: no checkpoint to resume from (no such folder)")
+        missing = [p for p in (self.out, *self.out.parents) if not p.exists()]
+        try:
+            self.out.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise UserError(f"{self.out}: cannot create the model folder ({exc.strerror or exc})") from None
+        self._created_dirs = missing
+        self._lock()
+        run = self._read_run()
+        restart = (run is not None and not self.ckpt.exists()
+                   and isinstance(run.get("fingerprint"), dict) and self._difference(run["fingerprint"]) is None)
+        if self.resume and self.ckpt.exists():
+            self._load_checkpoint()
+            return
+        if self.resume and run is None:
+            raise UserError(f"{self.ckpt}: no checkpoint to resume from")
+        if self.resume and not restart:
+            why = self._difference(run.get("fingerprint") or {}) or "run.json holds no fingerprint"
+            raise UserError(f"{self.out / 'run.json'}: cannot resume: {why}")
+        if restart:
+            self.log(f"{self.out}: its run of the same spec and options ended before its first checkpoint; "
+                     "starting it again from the beginning")
+            self.resume = False
+            self._remove_run_files()
+        elif any(self.out.iterdir()):
             if not force:
-                raise UserError(f"{self.out}: folder is not empty (another run?); use --resume to continue "
-                                "it or --force to replace its files")
-            if not (self.out / "run.json").exists():
+                why = self._difference(run["fingerprint"]) if run and isinstance(run.get("fingerprint"), dict) else None
+                raise UserError(f"{self.out}: folder is not empty (another run{'; ' + why if why else '?'}); use "
+                                "--resume to continue it or --force to replace its files")
+            if run is None and not (self.out / "run.json").exists():
                 raise UserError(f"{self.out}: not a hashcurve model folder (no run.json); --force only "
                                 "replaces a model folder, choose an empty or new --out")
-            for name in RUN_FILES:
-                (self.out / name).unlink(missing_ok=True)
-        self.out.mkdir(parents=True, exist_ok=True)
-        run = {"format": "hashcurve-run", "version": 1, "spec": self.spec.raw, "data": self.data,
-               "holdout": self.holdout_path, "options": self.opt.as_json(),
+            self._remove_run_files()
+        run = {"format": "hashcurve-run", "version": 2, "spec": self.spec.raw, "data": self.data,
+               "holdout": self.holdout_path, "options": self.opt.as_json(), "fingerprint": self._fingerprint(),
                "created": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds")}
         write_atomic(self.out / "run.json", [json.dumps(run, indent=2).encode()])
+
+    def _remove_run_files(self) -> None:
+        for name in RUN_FILES:
+            (self.out / name).unlink(missing_ok=True)
+
+    def _load_checkpoint(self) -> None:
+        arrays, meta = load_checkpoint(self.ckpt)
+        why = self._difference(meta["fingerprint"])
+        if why:
+            raise UserError(f"{self.ckpt}: cannot resume: {why}")
+        self.solver.load_state({k[7:]: (v.item() if v.ndim == 0 else v)
+                                for k, v in arrays.items() if k.startswith("solver.")})
+        ex = meta["examples"]
+        self.reader.examples = self.reader.featurizer.examples = BucketExamples(
+            self.spec.n_buckets, max_rows=ex["rows_left"], values=ex["values"])
+        s = meta["state"]
+        s["position"] = Position(*s["position"]) if s["position"] is not None else None
+        self.state = _State(**s)
+        self._saved = (self.state.pass_index, self.state.rows_in_pass)
+        self._trim_metrics()
+
+    def _refused(self, exc: UserError) -> UserError:
+        """After a UserError stopped the run: remove what a run without a checkpoint wrote (and the
+        folders it created), or keep a checkpointed folder; return the error with what was kept."""
+        if self._saved is None:
+            self._remove_run_files()
+            for folder in self._created_dirs:
+                try:
+                    folder.rmdir()
+                except OSError:
+                    break
+            kept = "nothing was kept (no checkpoint had been written)"
+        else:
+            p, rows = self._saved
+            where = f"after pass {p}" if rows == 0 else f"in pass {p + 1} after {rows:,} rows"
+            kept = f"{self.ckpt} ({where}) is kept"
+            if (self.out / "model.json").exists() and self.state.best_pass:
+                kept += f", and model.json holds the weights of pass {self.state.best_pass}"
+            kept += "; continue with --resume once the cause is fixed, or start over with --force"
+        return type(exc)(f"{exc}; {kept}")
 
     def _trim_metrics(self) -> None:
         """After a resume, drop metric lines of passes the checkpoint does not count as finished."""
@@ -240,6 +345,7 @@ class Trainer:
         ex = self.reader.examples
         save_checkpoint(self.ckpt, arrays, {"fingerprint": self._fingerprint(), "state": s,
                                             "examples": {"values": ex.values, "rows_left": ex.rows_left}})
+        self._saved = (self.state.pass_index, self.state.rows_in_pass)
         write_atomic(self.out / "progress.json", [json.dumps(self.state.progress).encode()])
 
     # -- the model --------------------------------------------------------------------------------
@@ -268,18 +374,41 @@ class Trainer:
     def run(self) -> Model:
         """Train to the requested passes (or an early stop) and return the final model.
 
-        Raises Interrupted after saving a checkpoint on SIGINT/SIGTERM, Diverged (a UserError) with
-        the last good checkpoint kept, and UserError for bad data met on the way.
+        Raises Interrupted after saving a checkpoint on SIGINT/SIGTERM, and Diverged (a UserError) or
+        UserError for bad data met on the way, whose message says what the folder keeps (see the
+        module docstring). Releases the folder's lock however it ends.
         """
         st = self.state
-        if st.pass_index == 0 and st.position is None and not self.resume:
-            self.log(self._table_header())
-        with _StopFlag() as stop:
-            while st.pass_index < self.opt.epochs and not st.stopped_early:
-                started = time.monotonic()
-                self._one_pass(stop)
-                self._finish_pass(time.monotonic() - started)
-        return self._final_model()
+        try:
+            if st.pass_index == 0 and st.position is None and not self.resume:
+                self.log(self._table_header())
+            with _StopFlag() as stop:
+                while st.pass_index < self.opt.epochs and not st.stopped_early:
+                    started = time.monotonic()
+                    self._one_pass(stop)
+                    self._finish_pass(time.monotonic() - started)
+            return self._final_model()
+        except UserError as exc:
+            raise self._refused(exc) from None
+        finally:
+            self._release()
+
+    def _diverged(self, exc: Diverged, batch) -> Diverged:
+        """The solver's Diverged message, naming a numeric column without edges whose huge values in
+        the diverging batch are the likely cause."""
+        worst, name = HUGE_NUMERIC, None
+        mask = self.spec.n_buckets - 1
+        for f in self.spec.features:
+            if f.kind != "numeric" or f.edges:
+                continue
+            at = batch.indices == (hash_bytes(f.column.encode("utf-8"), self.spec.seed) & mask)
+            big = float(np.abs(batch.data[at]).max()) if at.any() else 0.0
+            if big > worst:
+                worst, name = big, f.column
+        if name is None:
+            return exc
+        return Diverged(f"{exc}; column '{name}' reaches {worst:.3g} in that batch: give it \"transform\": "
+                        "\"log1p\" or \"edges\" in the spec")
 
     def _one_pass(self, stop: _StopFlag) -> None:
         st, opt = self.state, self.opt
@@ -292,7 +421,14 @@ class Trainer:
                    mininterval=0.5, leave=False, dynamic_ncols=True)
         shown = -math.inf
         for batch in self.reader.batches(st.pass_index, st.position):
-            loss = self.solver.step(batch)
+            try:
+                loss = self.solver.step(batch)
+            except Diverged as exc:
+                raise self._diverged(exc, batch) from None
+            if st.pass_index == 0:
+                pos = int(np.count_nonzero(batch.labels))
+                st.positives += pos
+                st.negatives += batch.n_rows - pos
             w = float(batch.weights.sum())
             st.pv_loss += loss * w
             st.pv_weight += w
@@ -323,6 +459,10 @@ class Trainer:
 
     def _finish_pass(self, train_seconds: float) -> None:
         st = self.state
+        if st.pass_index == 0 and not self.opt.allow_one_class and not (st.positives and st.negatives):
+            raise UserError(f"{self.data}: the training rows after the filters hold {st.negatives:,} negative "
+                            f"and {st.positives:,} positive labels (column '{self.spec.label_column}'); a "
+                            "response model needs both classes; --allow-one-class trains anyway")
         started = time.monotonic()
         holdout = None
         if self.holdout is not None:
@@ -340,8 +480,9 @@ class Trainer:
                 st.bad_passes += 1
                 if st.bad_passes >= self.opt.patience and st.pass_index < self.opt.epochs:
                     st.stopped_early = True
-        with open(self.out / "metrics.jsonl", "a", encoding="utf-8") as fh:
-            fh.write(json.dumps(jsonable(record), allow_nan=False) + "\n")
+        path = self.out / "metrics.jsonl"
+        before = path.read_bytes() if path.exists() else b""
+        write_atomic(path, [before, (json.dumps(jsonable(record), allow_nan=False) + "\n").encode()])
         self.log(self._table_row(record))
         ratio = _off_calibration(holdout)
         if ratio is not None:

@@ -173,9 +173,8 @@ class LinearSolver:
         return g
 
     def _diverged(self, what: str):
-        raise Diverged(f"--solver {self.method}: {what} became non-finite at step {self.t}; the last good "
-                       f"weights are kept; retry with a smaller initial step, e.g. --step0 "
-                       f"{self._suggested_step0():.3g}")
+        raise Diverged(f"--solver {self.method}: {what} became non-finite at step {self.t}; a smaller "
+                       f"initial step may help, e.g. --step0 {self._suggested_step0():.3g}")
 
     def _suggested_step0(self) -> float:
         """A smaller initial step to suggest in the ``Diverged`` message (a tenth of the current one)."""
