@@ -259,6 +259,9 @@ class Trainer:
             raise UserError(f"{self.out}: cannot create the model folder ({exc.strerror or exc})") from None
         self._created_dirs = missing
         self._lock()
+        for name in RUN_FILES:  # temporaries of writes a kill interrupted (no live run: the lock is ours)
+            for stale in self.out.glob(f".{name}.*.tmp"):
+                stale.unlink(missing_ok=True)
         run = self._read_run()
         restart = (run is not None and not self.ckpt.exists()
                    and isinstance(run.get("fingerprint"), dict) and self._difference(run["fingerprint"]) is None)
