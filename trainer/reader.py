@@ -228,8 +228,8 @@ def _token_source(values: pa.Array, where: str):
         return buf, off, None, None
     encoded = values if pa.types.is_dictionary(t) else pc.dictionary_encode(values)
     if encoded is values:
-        lo, hi = pc.min_max(values.indices).values()
-        if lo is not None and (lo.as_py() < 0 or hi.as_py() >= len(values.dictionary)):
+        codes = pc.min_max(values.indices).as_py()
+        if codes["min"] is not None and (codes["min"] < 0 or codes["max"] >= len(values.dictionary)):
             raise UserError(f"{where} holds dictionary codes outside its dictionary; the file is damaged")
     buf, off = _string_table(_canonical_strings(encoded.dictionary, where))
     codes = encoded.indices.fill_null(0).to_numpy(zero_copy_only=False).astype(np.int64, copy=False)
