@@ -62,10 +62,11 @@ def _encode(obj, out: list[str]) -> None:
             _encode(v, out)
         out.append("]")
     elif isinstance(obj, dict):
+        bad = [k for k in obj if not isinstance(k, str)]
+        if bad:
+            raise ValueError(f"canonical JSON: object keys must be strings, got {bad[0]!r}")
         out.append("{")
         for i, key in enumerate(sorted(obj, key=lambda k: k.encode("utf-16-be"))):
-            if not isinstance(key, str):
-                raise ValueError(f"canonical JSON: object keys must be strings, got {key!r}")
             if i:
                 out.append(",")
             out.append(json.dumps(key, ensure_ascii=False))
