@@ -91,3 +91,18 @@ def test_unsupported_categorical_type(small_log, tmp_path):
     t = t.set_column(t.schema.get_field_index("shop"), "shop", pa.array(np.arange(30) * 0.5))
     with pytest.raises(UserError, match=r"column 'shop' is double"):
         read_all(spec, one_file(tmp_path, t))
+
+
+@pytest.mark.parametrize("column,values,needle", [
+    ("shop", pa.array(np.arange(30) * 0.5), "column 'shop' is double"),
+    ("tags", pa.array([f"t{i}" for i in range(30)]), "column 'tags' is string; multi features take list"),
+    ("amount", pa.array([str(i) for i in range(30)]), "column 'amount' is string; numeric features take"),
+])
+def test_feature_types_refused_before_any_row_is_read(small_log, tmp_path, column, values, needle):
+    # The kind/type rules of the hashing contract (README) are checked on the files' schema when the
+    # reader is made, so a training run is refused before it creates its model folder.
+    spec = load_spec(small_log[1])
+    t = make_table(np.random.default_rng(0), 30)
+    path = one_file(tmp_path, t.set_column(t.schema.get_field_index(column), column, values))
+    with pytest.raises(UserError, match=needle):
+        Reader(spec, path)

@@ -650,6 +650,17 @@ class Reader:
         self.files = discover(self.path, self.spec, self.start, self.end, need=self._need, missing_ok=missing_ok,
                               named_by={c: self.keep_option for c in self.keep if c not in need})
         self.featurizer = Featurizer(self.spec, self.examples)
+        self._check_types()
+
+    def _check_types(self) -> None:
+        """Refuse a feature column whose type its kind does not take before any row is read: the
+        featurizer's own checks run on an empty table of the first file's schema (discover has made
+        every file's types agree). Files whose features come partly from partition keys or absent
+        columns are checked when read."""
+        f = self.files[0]
+        cols = [feat.column for feat in self.spec.features]
+        if all(f.schema.get_field_index(c) >= 0 for c in cols):
+            Featurizer(self.spec).transform(pa.schema([f.schema.field(c) for c in cols]).empty_table(), str(f.path))
 
     @property
     def total_rows(self) -> int:
