@@ -16,7 +16,7 @@ import pytest
 
 from trainer.hashing import hash_bytes
 from trainer.model import export_model
-from trainer.reader import Featurizer
+from trainer.reader.featurize import Featurizer
 from trainer.scoring import score_to_parquet
 from trainer.spec import parse_spec
 

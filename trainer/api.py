@@ -14,7 +14,8 @@ from trainer.atomic import write_atomic
 from trainer.errors import UserError
 from trainer.evaluation import evaluate as _evaluate
 from trainer.model import Model, export_model, inspect_model, jsonable, load_model
-from trainer.reader import Reader, parse_day
+from trainer.reader.files import parse_day
+from trainer.reader.stream import Reader
 from trainer.report import write_report
 from trainer.scoring import score_to_parquet
 from trainer.spec import Spec, load_spec

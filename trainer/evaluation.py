@@ -7,7 +7,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from trainer.metrics import BinaryMetrics, MarginMetrics
-from trainer.reader import Reader
+from trainer.reader.stream import Reader
 
 MAX_TRACKED_SEGMENTS = 100_000
 OTHER = "(other values)"

@@ -34,7 +34,8 @@ from trainer.errors import Interrupted, UserError
 from trainer.evaluation import evaluate
 from trainer.metrics import fit_platt
 from trainer.model import Model, jsonable, load_model
-from trainer.reader import BucketExamples, Position, Reader
+from trainer.reader.examples import BucketExamples
+from trainer.reader.stream import Position, Reader
 from trainer.solvers import check_choice, check_float, check_int, make_solver, SOLVER_NAMES
 from trainer.spec import Spec
 
@@ -170,7 +171,7 @@ class Trainer:
         self.reader = Reader(spec, data, options.start, options.end, batch_rows=options.batch_rows,
                              shuffle_rows=options.shuffle_buffer, seed=options.seed,
                              negative_keep_rate=options.negative_keep_rate,
-                             skip_bad_labels=options.skip_bad_labels, examples=BucketExamples(spec.n_buckets))
+                             skip_bad_labels=options.skip_bad_labels)
         self.holdout = (Reader(spec, self.holdout_path, options.holdout_start, options.holdout_end,
                                batch_rows=65536, skip_bad_labels=options.skip_bad_labels)
                         if self.holdout_path else None)
@@ -179,7 +180,9 @@ class Trainer:
         self.state = _State()
         self.ckpt = self.out / "checkpoint.bin"
         self.resume = resume
+        self.examples = BucketExamples(spec.n_buckets)
         self._prepare_folder(force)
+        self.reader.watch(self.examples)
 
     # -- the model folder -------------------------------------------------------------------------
 
@@ -200,7 +203,7 @@ class Trainer:
             self.solver.load_state({k[7:]: (v.item() if v.ndim == 0 else v)
                                     for k, v in arrays.items() if k.startswith("solver.")})
             ex = meta["examples"]
-            self.reader.examples = self.reader.featurizer.examples = BucketExamples(
+            self.examples = BucketExamples(
                 self.spec.n_buckets, max_rows=ex["rows_left"], values=ex["values"])
             s = meta["state"]
             s["position"] = Position(*s["position"]) if s["position"] is not None else None
@@ -237,7 +240,7 @@ class Trainer:
         arrays = {f"solver.{k}": np.asarray(v) for k, v in self.solver.state(copy=False).items()}
         s = dataclasses.asdict(self.state)
         s["position"] = list(dataclasses.astuple(self.state.position)) if self.state.position else None
-        ex = self.reader.examples
+        ex = self.examples
         save_checkpoint(self.ckpt, arrays, {"fingerprint": self._fingerprint(), "state": s,
                                             "examples": {"values": ex.values, "rows_left": ex.rows_left}})
         write_atomic(self.out / "progress.json", [json.dumps(self.state.progress).encode()])
@@ -260,7 +263,7 @@ class Trainer:
                             "steps": self.state.steps, "step0": self.solver.step0, "data": self.data,
                             "holdout_data": self.holdout_path,
                             "stopped_early": self.state.stopped_early, "best_pass": self.state.best_pass},
-                "holdout": holdout, "calibration": calibration, "examples": self.reader.examples.values}
+                "holdout": holdout, "calibration": calibration, "examples": self.examples.values}
         return Model(self.spec, weights, intercept, self.opt.loss, info)
 
     # -- the loop ---------------------------------------------------------------------------------
