@@ -17,6 +17,7 @@ from trainer.model import Model, export_model, inspect_model, jsonable, load_mod
 from trainer.reader.files import parse_day
 from trainer.reader.stream import Reader
 from trainer.report import write_report
+from trainer.run_folder import RunFolder
 from trainer.scoring import score_to_parquet
 from trainer.spec import Spec, load_spec
 from trainer.training import TrainOptions, Trainer
@@ -88,27 +89,19 @@ def report(model_dir: str | Path, out: str | Path | None = None, *, top: int = 1
     the reliability diagram (auto: log below a 10% base rate); UserError for another value."""
     if probability_axis not in ("auto", "linear", "log"):
         raise UserError(f"--probability-axis must be auto, linear or log; got {probability_axis!r}")
-    model_dir = Path(model_dir)
-    model = load_model(model_dir)
-    passes = []
-    metrics_path = model_dir / "metrics.jsonl"
-    if metrics_path.exists():
-        for line in metrics_path.read_text().splitlines():
-            if line.strip():
-                rec = json.loads(line)
-                passes.append({"pass": rec["pass"], "rows": rec["rows"], "progressive_loss": rec["progressive_loss"],
-                               "holdout": rec["holdout"]})
-    progress_path = model_dir / "progress.json"
-    progress = json.loads(progress_path.read_text()) if progress_path.exists() else []
+    folder = RunFolder(model_dir)
+    model = folder.load_model()
+    passes = [{"pass": rec["pass"], "rows": rec["rows"], "progressive_loss": rec["progressive_loss"],
+               "holdout": rec["holdout"]} for rec in folder.metrics()]
     top_weights = model.top_weights(top, 1) + model.top_weights(top, -1)
     summary = model.info.get("summary", {})
     run = {"title": f"hashcurve report: {model_dir}", "options": model.info.get("options", {}),
            "option_defaults": TrainOptions().as_json(),
            "resolved_options": {"step0": summary["step0"]} if "step0" in summary else {},
            "best_pass": summary.get("best_pass"),
-           "passes": passes, "progress": progress, "final_holdout": model.info.get("holdout"),
+           "passes": passes, "progress": folder.progress(), "final_holdout": model.info.get("holdout"),
            "top_weights": top_weights, "loss": model.loss}
-    path = Path(out) if out is not None else model_dir / "report.html"
+    path = Path(out) if out is not None else folder.report
     write_report(run, path, probability_axis)
     return path
 

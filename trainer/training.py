@@ -1,13 +1,6 @@
 """The pass loop: progressive validation, per-pass holdout evaluation, early stop, checkpoints, resume.
 
-One training run owns one model folder:
-
-- ``run.json``: spec, options and fingerprint of the run (written first, so another run is refused);
-- ``checkpoint.bin``: the complete state (``trainer.checkpoint``), every ``checkpoint_every`` rows
-  and at each pass end;
-- ``metrics.jsonl``: one line per finished pass (progressive loss, holdout metrics);
-- ``progress.json``: the progressive-validation curve;
-- ``model.json`` + ``model.npz``: the model (the best pass's when a holdout decides).
+One training run owns one model folder, whose files ``trainer.run_folder`` reads and writes.
 
 Progressive validation ("online" or "test-then-train" evaluation, common practice): each batch's
 loss is measured before the solver learns from it.
@@ -17,7 +10,6 @@ from __future__ import annotations
 
 import dataclasses
 import datetime as dt
-import json
 import math
 import signal
 import sys
@@ -28,19 +20,16 @@ from pathlib import Path
 import numpy as np
 from tqdm import tqdm
 
-from trainer.atomic import write_atomic
-from trainer.checkpoint import load_checkpoint, save_checkpoint
 from trainer.errors import Interrupted, UserError
 from trainer.evaluation import evaluate
 from trainer.metrics import fit_platt
-from trainer.model import Model, jsonable, load_model
+from trainer.model import Model
 from trainer.reader.examples import BucketExamples
 from trainer.reader.stream import Position, Reader
+from trainer.run_folder import RunFolder
 from trainer.solvers import check_choice, check_float, check_int, make_solver, SOLVER_NAMES
 from trainer.spec import Spec
 
-RUN_FILES = ("run.json", "checkpoint.bin", "metrics.jsonl", "progress.json", "model.json", "model.npz",
-             "report.html")
 PROGRESS_POINTS_PER_PASS = 200
 #: Platt scaling of squared-hinge models is fitted on at most this many holdout rows (in file
 #: order), so memory does not grow with the holdout.
@@ -163,7 +152,7 @@ class Trainer:
                  holdout: str | Path | None = None, resume: bool = False, force: bool = False,
                  quiet: bool = False):
         options.validate()
-        self.spec, self.opt, self.out = spec, options, Path(out)
+        self.spec, self.opt = spec, options
         self.quiet = quiet
         self.data = str(data)
         self.holdout_path = str(holdout) if holdout is not None else (
@@ -178,7 +167,7 @@ class Trainer:
         self.solver = make_solver(options.solver, spec.n_buckets, options.loss, options.l2_strength,
                                   history=options.history, step0=options.step0, seed=options.seed)
         self.state = _State()
-        self.ckpt = self.out / "checkpoint.bin"
+        self.folder = RunFolder(out)
         self.resume = resume
         self.examples = BucketExamples(spec.n_buckets)
         self._prepare_folder(force)
@@ -193,12 +182,12 @@ class Trainer:
 
     def _prepare_folder(self, force: bool) -> None:
         if self.resume:
-            arrays, meta = load_checkpoint(self.ckpt)
+            arrays, meta = self.folder.read_checkpoint()
             theirs, ours = meta["fingerprint"], self._fingerprint()
             for key in ours:
                 if theirs.get(key) != ours[key]:
                     what = "the spec" if key == "spec" else ("--data" if key == "data" else f"--{key.replace('_', '-')}")
-                    raise UserError(f"{self.ckpt}: cannot resume: {what} differs from the checkpoint's "
+                    raise UserError(f"{self.folder.checkpoint}: cannot resume: {what} differs from the checkpoint's "
                                     f"({theirs.get(key)!r} there, {ours[key]!r} now)")
             self.solver.load_state({k[7:]: (v.item() if v.ndim == 0 else v)
                                     for k, v in arrays.items() if k.startswith("solver.")})
@@ -208,42 +197,21 @@ class Trainer:
             s = meta["state"]
             s["position"] = Position(*s["position"]) if s["position"] is not None else None
             self.state = _State(**s)
-            self._trim_metrics()
+            self.folder.keep_metrics(self.state.pass_index)
             return
-        if self.out.exists() and not self.out.is_dir():
-            raise UserError(f"{self.out}: exists and is not a folder")
-        if self.out.exists() and any(self.out.iterdir()):
-            if not force:
-                raise UserError(f"{self.out}: folder is not empty (another run?); use --resume to continue "
-                                "it or --force to replace its files")
-            if not (self.out / "run.json").exists():
-                raise UserError(f"{self.out}: not a hashcurve model folder (no run.json); --force only "
-                                "replaces a model folder, choose an empty or new --out")
-            for name in RUN_FILES:
-                (self.out / name).unlink(missing_ok=True)
-        self.out.mkdir(parents=True, exist_ok=True)
         run = {"format": "hashcurve-run", "version": 1, "spec": self.spec.raw, "data": self.data,
                "holdout": self.holdout_path, "options": self.opt.as_json(),
                "created": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds")}
-        write_atomic(self.out / "run.json", [json.dumps(run, indent=2).encode()])
-
-    def _trim_metrics(self) -> None:
-        """After a resume, drop metric lines of passes the checkpoint does not count as finished."""
-        path = self.out / "metrics.jsonl"
-        if not path.exists():
-            return
-        lines = [ln for ln in path.read_text().splitlines()
-                 if ln.strip() and json.loads(ln)["pass"] <= self.state.pass_index]
-        write_atomic(path, [("\n".join(lines) + "\n" if lines else "").encode()])
+        self.folder.create(run, force=force)
 
     def _save_checkpoint(self) -> None:
         arrays = {f"solver.{k}": np.asarray(v) for k, v in self.solver.state(copy=False).items()}
         s = dataclasses.asdict(self.state)
         s["position"] = list(dataclasses.astuple(self.state.position)) if self.state.position else None
         ex = self.examples
-        save_checkpoint(self.ckpt, arrays, {"fingerprint": self._fingerprint(), "state": s,
-                                            "examples": {"values": ex.values, "rows_left": ex.rows_left}})
-        write_atomic(self.out / "progress.json", [json.dumps(self.state.progress).encode()])
+        self.folder.write_checkpoint(arrays, {"fingerprint": self._fingerprint(), "state": s,
+                                              "examples": {"values": ex.values, "rows_left": ex.rows_left}},
+                                     self.state.progress)
 
     # -- the model --------------------------------------------------------------------------------
 
@@ -321,7 +289,7 @@ class Trainer:
                 self._save_checkpoint()
                 name = signal.Signals(stop.signal).name
                 raise Interrupted(f"{name}: stopped in pass {st.pass_index + 1} after {st.rows_in_pass:,} rows; "
-                                  f"checkpoint saved in {self.ckpt}; continue with the same command plus --resume")
+                                  f"checkpoint saved in {self.folder.checkpoint}; continue with the same command plus --resume")
         bar.close()
 
     def _finish_pass(self, train_seconds: float) -> None:
@@ -338,13 +306,12 @@ class Trainer:
             score = _holdout_score(holdout, self.opt.loss)
             if st.best_score is None or score < st.best_score:
                 st.best_score, st.best_pass, st.bad_passes = score, st.pass_index, 0
-                self.current_model(holdout).save(self.out)
+                self.folder.save_model(self.current_model(holdout))
             else:
                 st.bad_passes += 1
                 if st.bad_passes >= self.opt.patience and st.pass_index < self.opt.epochs:
                     st.stopped_early = True
-        with open(self.out / "metrics.jsonl", "a", encoding="utf-8") as fh:
-            fh.write(json.dumps(jsonable(record), allow_nan=False) + "\n")
+        self.folder.append_metrics(record)
         self.log(self._table_row(record))
         ratio = _off_calibration(holdout)
         if ratio is not None:
@@ -361,7 +328,7 @@ class Trainer:
         if self.holdout is None:
             model = self.current_model()
         else:
-            model = load_model(self.out)
+            model = self.folder.load_model()
         if self.opt.loss == "squared-hinge" and self.holdout is not None:
             margins, labels, weights = [], [], []
             rows = 0
@@ -378,7 +345,7 @@ class Trainer:
                           {**model.info, "calibration": calibration})
         model.info["summary"].update({"passes": st.pass_index, "stopped_early": st.stopped_early,
                                       "best_pass": st.best_pass})
-        model.save(self.out)
+        self.folder.save_model(model)
         return model
 
     # -- the per-pass table -------------------------------------------------------------------------
