@@ -247,7 +247,8 @@ class Reader:
                 base = 0
                 for g in range(pf.metadata.num_row_groups):
                     rg_rows = pf.metadata.row_group(g).num_rows
-                    if base + rg_rows <= skip_to or row_group_outside(pf.metadata, g, self.spec.time_column, self.start, self.end):
+                    if base + rg_rows <= skip_to or row_group_outside(pf.metadata, g, self.spec.time_column,
+                                                                      self.start, self.end):
                         base += rg_rows
                         continue
                     pos = base
