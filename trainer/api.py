@@ -13,7 +13,9 @@ from pathlib import Path
 from trainer.atomic import write_atomic
 from trainer.errors import UserError
 from trainer.evaluation import evaluate as _evaluate
-from trainer.model import Model, export_model, inspect_model, jsonable, load_model
+from trainer.export import write_export
+from trainer.json_values import jsonable
+from trainer.model import Model, inspect_model, load_model, model_folder
 from trainer.reader.files import parse_day
 from trainer.reader.stream import Reader
 from trainer.report import write_report
@@ -73,8 +75,11 @@ def score(model: str | Path, data: str | Path, out: str | Path, *, keep: tuple[s
 
 
 def export(model: str | Path, out: str | Path, *, force: bool = False) -> Path:
-    """Export a trained model folder to ``out`` (weights.parquet + model.json); returns ``out``."""
-    return export_model(model, out, force=force)
+    """Export a trained model folder (or an export folder) to ``out`` (weights.parquet + model.json,
+    :func:`trainer.export.write_export`); returns ``out``. Raises UserError for a bad model or
+    destination."""
+    source = model_folder(model)
+    return write_export(load_model(source), out, source=source, force=force)
 
 
 def inspect(model: str | Path) -> dict:

@@ -22,7 +22,9 @@ import numpy as np
 from trainer.atomic import write_atomic
 from trainer.checkpoint import load_checkpoint, save_checkpoint
 from trainer.errors import UserError
-from trainer.model import ARRAYS_FILE, META_FILE, Model, jsonable, load_model
+from trainer.export import META_FILE
+from trainer.json_values import jsonable
+from trainer.model import ARRAYS_FILE, Model, load_model
 
 RUN_FILE = "run.json"
 CHECKPOINT_FILE = "checkpoint.bin"
