@@ -12,7 +12,7 @@ from pathlib import Path
 
 from trainer.atomic import write_atomic
 from trainer.errors import UserError
-from trainer.evaluation import evaluate as _evaluate
+from trainer.evaluation import EvaluationResult, evaluate as _evaluate
 from trainer.export import write_export
 from trainer.json_values import jsonable
 from trainer.model import Model, inspect_model, load_model, model_folder
@@ -22,14 +22,15 @@ from trainer.report import write_report
 from trainer.run_folder import RunFolder
 from trainer.scoring import score_to_parquet
 from trainer.spec import Spec, load_spec
-from trainer.training import TrainOptions, Trainer
+from trainer.training import TrainOptions, Trainer, TrainResult
 
-__all__ = ["train", "evaluate", "score", "export", "inspect", "report", "demo", "load_model", "TrainOptions"]
+__all__ = ["EvaluationResult", "TrainResult", "train", "evaluate", "score", "export", "inspect", "report", "demo", "load_model", "TrainOptions"]
 
 
 def train(spec: str | Path | Spec, data: str | Path, out: str | Path, *, holdout: str | Path | None = None,
-          resume: bool = False, force: bool = False, quiet: bool = False, **options) -> Model:
-    """Train a model from ``data`` into the folder ``out`` and return it.
+          resume: bool = False, force: bool = False, quiet: bool = False, **options) -> TrainResult:
+    """Train a model from ``data`` into the folder ``out``; returns a :class:`trainer.training.TrainResult`
+    (the model, its folder, passes run, per-pass metrics, best pass, stopping reason, timings).
 
     ``spec``: a spec file or Spec; ``holdout``: a holdout log (or use ``holdout_start``/``holdout_end``
     on the training path); ``options``: any TrainOptions field (dates as YYYY-MM-DD strings or
@@ -48,11 +49,13 @@ def train(spec: str | Path | Spec, data: str | Path, out: str | Path, *, holdout
 
 
 def evaluate(model: str | Path | Model, data: str | Path, *, start=None, end=None, by: str | None = None,
-             segments: int = 20, skip_bad_labels: bool = False, json_out: str | Path | None = None) -> dict:
+             segments: int = 20, skip_bad_labels: bool = False,
+             json_out: str | Path | None = None) -> EvaluationResult:
     """Metrics of ``model`` on the labelled log ``data`` (inclusive date filter ``start``..``end``).
 
     ``by`` adds one row per value of that column (the ``segments`` largest, the rest pooled).
-    ``json_out`` also writes the summary as JSON (atomically). Returns the summary dict.
+    ``json_out`` also writes the summary as JSON (atomically). Returns the summary, a
+    :class:`trainer.evaluation.EvaluationResult` (a dict whose keys read as attributes too).
     """
     model = model if isinstance(model, Model) else load_model(model)
     if segments < 1:

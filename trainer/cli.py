@@ -182,14 +182,23 @@ def format_inspect(d: dict) -> str:
     return "\n".join(lines) + "\n"
 
 
+def format_train_result(r) -> str:
+    """A finished training run (:class:`trainer.training.TrainResult`) in a few lines (our own layout)."""
+    lines = [f"{r.passes} pass(es), {r.train_seconds:.1f} s training + {r.eval_seconds:.1f} s holdout evaluation; "
+             f"{r.stopping_reason}"]
+    if r.best_pass is not None:
+        lines.append(f"best holdout pass {r.best_pass}")
+    lines.append(f"model written to {r.model_dir}")
+    return "\n".join(lines)
+
+
 def _train(a) -> None:
     options = {k: getattr(a, k) for k in ("epochs", "loss", "solver", "l2_strength", "history", "batch_rows", "step0",
                                           "seed", "shuffle_buffer", "negative_keep_rate", "patience",
                                           "checkpoint_every", "start", "end", "holdout_start", "holdout_end",
                                           "skip_bad_labels")}
-    api.train(a.spec, a.data, a.out, holdout=a.holdout, resume=a.resume, force=a.force,
-              quiet=a.quiet, **options)
-    print(f"model written to {a.out}")
+    print(format_train_result(api.train(a.spec, a.data, a.out, holdout=a.holdout, resume=a.resume,
+                                        force=a.force, quiet=a.quiet, **options)))
 
 
 def _demo(a) -> None:

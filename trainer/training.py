@@ -107,6 +107,30 @@ class _State:
     stopped_early: bool = False
 
 
+@dataclass
+class TrainResult:
+    """What a finished training run did, in the manner of ``scipy.optimize.OptimizeResult``.
+
+    ``model``: the final Model (the best pass's when a holdout decides); ``model_dir``: the model
+    folder it was written to; ``passes``: passes finished (also by earlier sessions of a resumed
+    run); ``per_pass``: one record per finished pass as in ``metrics.jsonl`` (``pass``, ``rows``,
+    ``rows_total``, ``progressive_loss``, ``holdout``, ``train_seconds``, ``eval_seconds``);
+    ``best_pass``: the pass of the best holdout loss (None without a holdout); ``stopped_early`` and
+    ``stopping_reason``: why training ended; ``train_seconds`` / ``eval_seconds``: the passes' time
+    reading and stepping / evaluating the holdout, summed.
+    """
+
+    model: Model
+    model_dir: Path
+    passes: int
+    per_pass: list[dict]
+    best_pass: int | None
+    stopped_early: bool
+    stopping_reason: str
+    train_seconds: float
+    eval_seconds: float
+
+
 class _StopFlag:
     """Turns SIGINT/SIGTERM into a flag the loop checks between steps, so a step is never cut."""
 
@@ -138,7 +162,7 @@ def _holdout_score(summary: dict, loss: str) -> float:
 
 
 class Trainer:
-    """One training run into ``out``; ``run()`` returns the final Model.
+    """One training run into ``out``; ``run()`` returns its :class:`TrainResult`.
 
     ``spec``: the feature spec; ``data``: training log path; ``holdout``: holdout log path or None
     (with ``options.holdout_start/end`` it may be the training path itself); ``resume``: continue
@@ -236,8 +260,9 @@ class Trainer:
 
     # -- the loop ---------------------------------------------------------------------------------
 
-    def run(self) -> Model:
-        """Train to the requested passes (or an early stop) and return the final model.
+    def run(self) -> TrainResult:
+        """Train to the requested passes (or an early stop); return the final model and what the run
+        did (:class:`TrainResult`).
 
         Raises Interrupted after saving a checkpoint on SIGINT/SIGTERM, Diverged (a UserError) with
         the last good checkpoint kept, and UserError for bad data met on the way.
@@ -250,7 +275,7 @@ class Trainer:
                 started = time.monotonic()
                 self._one_pass(stop)
                 self._finish_pass(time.monotonic() - started)
-        return self._final_model()
+        return self._result(self._final_model())
 
     def _one_pass(self, stop: _StopFlag) -> None:
         st, opt = self.state, self.opt
@@ -347,6 +372,17 @@ class Trainer:
                                       "best_pass": st.best_pass})
         self.folder.save_model(model)
         return model
+
+    def _result(self, model: Model) -> TrainResult:
+        st = self.state
+        records = self.folder.metrics()
+        if st.stopped_early:
+            reason = (f"early stop: holdout loss did not improve for {st.bad_passes} pass(es); "
+                      f"kept the weights of pass {st.best_pass}")
+        else:
+            reason = f"finished the {self.opt.epochs} requested pass(es)"
+        return TrainResult(model, self.folder.path, st.pass_index, records, st.best_pass, st.stopped_early, reason,
+                           sum(r["train_seconds"] for r in records), sum(r["eval_seconds"] for r in records))
 
     # -- the per-pass table -------------------------------------------------------------------------
 
