@@ -380,7 +380,7 @@ class Trainer:
             reason = (f"early stop: holdout loss did not improve for {st.bad_passes} pass(es); "
                       f"kept the weights of pass {st.best_pass}")
         else:
-            reason = f"finished the {self.opt.epochs} requested pass(es)"
+            reason = f"reached --epochs {self.opt.epochs}"
         return TrainResult(model, self.folder.path, st.pass_index, records, st.best_pass, st.stopped_early, reason,
                            sum(r["train_seconds"] for r in records), sum(r["eval_seconds"] for r in records))
 
