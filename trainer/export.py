@@ -55,7 +55,6 @@ def require_key(meta: dict, key: str, types, path: Path):
     return value
 
 
-
 def _stored_calibration(cal):
     """An export's calibration without the formula text export_document adds for readers."""
     if isinstance(cal, dict):

@@ -20,7 +20,6 @@ def scatter_rows(ptr, ids, buckets, values, cursor, out_idx, out_val):
         cursor[r] = c
 
 
-
 @nb.njit(cache=True)
 def take_rows(indptr, indices, data, rows):
     """Gather CSR rows ``rows`` (int64) into a new CSR (indptr, indices, data)."""
@@ -55,4 +54,3 @@ def keep_uniform(file_idx, raw, seed, pass_index):
         z = z ^ (z >> np.uint64(31))
         out[i] = np.float64(z >> np.uint64(11)) * (1.0 / 9007199254740992.0)
     return out
-

@@ -83,4 +83,3 @@ def _token_texts(tok: TokenTable, ids: np.ndarray) -> list[str]:
                 for i in range(len(ids))]
     arr = pc.replace_substring(pc.replace_substring(arr, "\x1f", "="), "\x1e", " & ")
     return [prefix + t for t in arr.to_pylist()]
-

@@ -145,7 +145,6 @@ def _numeric_tokens(arr: pa.Array, feat: Feature, prefix: np.ndarray, where: str
                    np.zeros(2, dtype=np.int64), values=values)
 
 
-
 class Featurizer:
     """Hashes the spec's features of a chunk of rows into CSR (``trainer.hashing`` contract).
 
@@ -269,4 +268,3 @@ def parse_weights(arr: pa.Array, where: str) -> np.ndarray:
         raise UserError(f"{where} has {int(bad.sum())} null, non-finite or non-positive row weights "
                         f"(e.g. {arr[int(np.flatnonzero(bad)[0])]}); weights must be finite and > 0")
     return w
-

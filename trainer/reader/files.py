@@ -32,7 +32,6 @@ class DataFile:
     schema: pa.Schema
 
 
-
 def parse_day(text: str | dt.date | None, what: str) -> dt.date | None:
     """Parse ``YYYY-MM-DD`` (a date or None passes through); raises UserError naming ``what`` (an
     option or a path)."""
@@ -135,7 +134,6 @@ def _stat_day(value) -> dt.date | None:
     if isinstance(value, dt.date):
         return value
     return None
-
 
 
 def row_group_outside(meta: pq.FileMetaData, group: int, column: str | None, start: dt.date | None,

@@ -64,7 +64,6 @@ class Batch:
     columns: pa.Table | None = None
 
 
-
 @dataclass
 class ReadCounts:
     """What the reader dropped on its way, for the user: rows with bad labels, negatives sampled out."""
@@ -72,7 +71,6 @@ class ReadCounts:
     bad_labels: int = 0
     sampled_out: int = 0
     rows: int = 0
-
 
 
 @dataclass
@@ -340,4 +338,3 @@ class Reader:
         after[:, 0] = fi
         after[:, 1] = raw + 1
         return _Rows(indptr, indices, data, y, w, np.full(raw.size, fi, dtype=np.int64), raw, after, cols)
-
