@@ -28,7 +28,6 @@ It prints every figure and the ratios the targets are stated in.
 from __future__ import annotations
 
 import argparse
-import json
 import subprocess
 import sys
 import tempfile
@@ -151,10 +150,9 @@ def run_hashcurve(logs: Path, spec_path: Path, train_end: str, hold_day: str, pa
     training seconds."""
     with tempfile.TemporaryDirectory(prefix="bench-model-") as out:
         t = time.perf_counter()
-        api.train(spec_path, logs / "logs", Path(out) / "m", end=train_end, holdout_start=hold_day,
-                  holdout_end=hold_day, epochs=passes, patience=passes)
+        rows = api.train(spec_path, logs / "logs", Path(out) / "m", end=train_end, holdout_start=hold_day,
+                         holdout_end=hold_day, epochs=passes, patience=passes).per_pass
         wall = time.perf_counter() - t
-        rows = [json.loads(x) for x in (Path(out) / "m" / "metrics.jsonl").read_text().splitlines()]
     spent, hist = 0.0, []
     for r in rows:
         spent += r["train_seconds"]

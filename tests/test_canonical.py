@@ -8,7 +8,9 @@ import pytest
 
 from trainer.canonical import canonical_json
 from trainer.errors import UserError
-from trainer.model import export_model, load_model, scoring_sha256
+from trainer.api import export as export_model
+from trainer.export import scoring_sha256
+from trainer.model import load_model
 from trainer.spec import parse_spec
 
 from conftest import SMALL_SPEC, make_model

@@ -65,7 +65,7 @@ def test_squared_hinge_training_gets_platt_probabilities(tmp_path):
     (tmp_path / "spec.json").write_text(json.dumps({"label": {"column": "y"}, "hashing": {"bits": 8},
                                                     "features": [{"column": "shop", "kind": "categorical"}]}))
     model = api.train(tmp_path / "spec.json", tmp_path / "train.parquet", tmp_path / "m", loss="squared-hinge",
-                      holdout=tmp_path / "hold.parquet", epochs=2)
+                      holdout=tmp_path / "hold.parquet", epochs=2).model
     assert model.has_probability and model.calibration["method"] == "platt"
     api.score(tmp_path / "m", tmp_path / "hold.parquet", tmp_path / "s.parquet")
     scored = pq.read_table(tmp_path / "s.parquet")

@@ -10,12 +10,13 @@ from sklearn.metrics import log_loss
 
 from conftest import batch_csr
 from trainer.errors import UserError
-from trainer.kernels import (CHUNK, batch_support, chunk_pointers, combine_pass, curvatures_into, fold_diagonal, lbfgs_direction,
-                             line_loss, line_residuals, margins_into, predict_margin, regularized_gradient,
-                             residuals_into, scatter_compact, scatter_compact_squares, sparse_dot)
+from trainer.kernels import (batch_support, curvatures_into, margins_into, predict_margin, regularized_gradient,
+                             residuals_into, scatter_compact, scatter_compact_squares)
 from trainer.losses import (loss_code, pointwise_curvature, pointwise_derivative, pointwise_loss)
 from trainer.model import LOSSES
 from trainer.reader import Batch
+from trainer.solvers._olbfgs_kernels import (CHUNK, chunk_pointers, combine_pass, fold_diagonal, lbfgs_direction,
+                                             line_loss, line_residuals, sparse_dot)
 
 
 def _batch(rng, rows=60, n=17, nnz=5):

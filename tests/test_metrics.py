@@ -11,8 +11,9 @@ from sklearn.metrics import brier_score_loss, confusion_matrix, log_loss, roc_au
 from statsmodels.stats.proportion import proportion_confint
 
 from trainer.errors import UserError
-from trainer.metrics import (EPS, BinaryMetrics, MarginMetrics, apply_platt, fit_platt,
-                             reliability_bin_count, wilson_interval)
+from trainer._metrics_kernels import EPS
+from trainer.metrics import (BinaryMetrics, MarginMetrics, apply_platt, fit_platt, reliability_bin_count,
+                             wilson_interval)
 
 FAST = settings(max_examples=40, deadline=None, database=None)
 

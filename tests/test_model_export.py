@@ -11,7 +11,9 @@ import pyarrow.parquet as pq
 import pytest
 
 from trainer.errors import UserError
-from trainer.model import Model, shared_bucket_share, export_model, format_inspect, inspect_model, load_model
+from trainer.api import export
+from trainer.cli import format_inspect
+from trainer.model import Model, inspect_model, load_model, shared_bucket_share
 from trainer.reader import Reader
 from trainer.spec import load_spec, parse_spec
 
@@ -51,7 +53,7 @@ def test_export_round_trip_and_weights_layout(tmp_path):
     cal = {**CAL, "fitted_on": "holdout/"}
     m = make_model(SPEC, loss="squared-hinge", calibration=cal, seed=3, info={"summary": {"data": tmp_path / "logs"}})
     m.save(tmp_path / "m")
-    out = export_model(tmp_path / "m", tmp_path / "export")
+    out = export(tmp_path / "m", tmp_path / "export")
     table = pq.read_table(out / "weights.parquet")
     # reference: numpy's flatnonzero of the weights, read back with pyarrow
     assert table.schema.names == ["bucket", "weight"]
@@ -62,7 +64,7 @@ def test_export_round_trip_and_weights_layout(tmp_path):
     assert np.array_equal(back.weights, m.weights) and back.intercept == m.intercept
     assert back.loss == "squared-hinge" and back.calibration == cal and back.spec == m.spec
     assert back.info["summary"]["data"] == str(tmp_path / "logs")  # paths are stored as text
-    again = export_model(out, tmp_path / "export2")  # an export re-exports to the same weights
+    again = export(out, tmp_path / "export2")  # an export re-exports to the same weights
     assert (again / "weights.parquet").read_bytes() == (out / "weights.parquet").read_bytes()
 
 
@@ -72,7 +74,7 @@ def test_model_json_validates_against_schema(tmp_path, loss, cal):
     jsonschema.Draft202012Validator.check_schema(SCHEMA)
     m = make_model(SPEC, loss=loss, calibration=cal, info={"holdout": {"auc": math.nan, "rows": 3}})
     m.save(tmp_path / "m")
-    doc = json.loads((export_model(tmp_path / "m", tmp_path / "e") / "model.json").read_text())
+    doc = json.loads((export(tmp_path / "m", tmp_path / "e") / "model.json").read_text())
     validator = jsonschema.Draft202012Validator(SCHEMA)
     validator.validate(doc)
     assert doc["nonzero"] == int(np.count_nonzero(m.weights)) and doc["n_buckets"] == 4096
@@ -83,7 +85,7 @@ def test_model_json_validates_against_schema(tmp_path, loss, cal):
 
 def test_tampered_export_refused(tmp_path):
     make_model(SPEC).save(tmp_path / "m")
-    out = export_model(tmp_path / "m", tmp_path / "e")
+    out = export(tmp_path / "m", tmp_path / "e")
     # reference: SHA-256 from hashlib over the file bytes (model.json's weights_sha256)
     t = pq.read_table(out / "weights.parquet")
     w = t.column("weight").to_numpy().copy()
@@ -112,23 +114,23 @@ def test_tampered_or_broken_training_folder_refused(tmp_path):
 def test_non_empty_out_dir_needs_force_and_nothing_is_written(tmp_path):
     make_model(SPEC, seed=1).save(tmp_path / "m1")
     make_model(SPEC, seed=2).save(tmp_path / "m2")
-    out = export_model(tmp_path / "m1", tmp_path / "e")
+    out = export(tmp_path / "m1", tmp_path / "e")
     before = snapshot(out)
     with pytest.raises(UserError, match="--force"):
-        export_model(tmp_path / "m2", out)
+        export(tmp_path / "m2", out)
     assert snapshot(out) == before
     assert sorted(p.name for p in tmp_path.iterdir()) == ["e", "m1", "m2"]  # no temporary sibling left
-    export_model(tmp_path / "m2", out, force=True)
+    export(tmp_path / "m2", out, force=True)
     assert np.array_equal(load_model(out).weights, load_model(tmp_path / "m2").weights)
     assert sorted(p.name for p in tmp_path.iterdir()) == ["e", "m1", "m2"]
     other = tmp_path / "notes"
     other.mkdir()
     (other / "keep.txt").write_text("mine")
     with pytest.raises(UserError, match="other than an export"):
-        export_model(tmp_path / "m1", other, force=True)
+        export(tmp_path / "m1", other, force=True)
     assert (other / "keep.txt").read_text() == "mine"
     with pytest.raises(UserError, match="model folder itself"):
-        export_model(tmp_path / "m1", tmp_path / "m1", force=True)
+        export(tmp_path / "m1", tmp_path / "m1", force=True)
 
 
 def test_margin_and_probability_against_scipy(small_log):
@@ -186,7 +188,7 @@ def test_inspect_reports_size_weights_and_examples(tmp_path):
     m = Model(SPEC, w, -0.5, "logistic", {"summary": {"rows": 100, "distinct_tokens": 900}, "options": {"l2_strength": 0.001},
                                           "examples": {top: ["shop=shop-3 & hour=7"], bottom: ["tags=t2"]}})
     m.save(tmp_path / "m")
-    export_model(tmp_path / "m", tmp_path / "e")
+    export(tmp_path / "m", tmp_path / "e")
     for folder, files in ((tmp_path / "m", ["model.json", "model.npz"]), (tmp_path / "e", ["model.json", "weights.parquet"])):
         d = inspect_model(folder, top=3)
         assert d["bytes"] == sum((folder / f).stat().st_size for f in files)  # reference: os.stat

@@ -13,7 +13,9 @@ import pytest
 import scipy.sparse as sp
 
 from trainer.errors import UserError
-from trainer.reader import BucketExamples, Reader, _token_texts, _Tokens
+from trainer.reader import Reader
+from trainer.reader.examples import BucketExamples, _token_texts
+from trainer.reader.featurize import TokenTable
 from trainer.spec import load_spec
 
 from conftest import SMALL_SPEC, batch_csr, make_table
@@ -99,7 +101,9 @@ def test_bucket_examples_are_tokens_of_their_bucket(small_log, dictionary):
     root, spec_path = small_log
     spec = load_spec(spec_path)
     examples = BucketExamples(spec.n_buckets)
-    list(Reader(spec, root, batch_rows=500, dictionary=dictionary, examples=examples).batches())
+    reader = Reader(spec, root, batch_rows=500, dictionary=dictionary)
+    reader.watch(examples)
+    list(reader.batches())
     seed, mask = SMALL_SPEC["hashing"]["seed"], (1 << SMALL_SPEC["hashing"]["bits"]) - 1
     assert examples.total == sum(len(v) for v in examples.values.values()) > 100
     for bucket, texts in examples.values.items():
@@ -114,8 +118,8 @@ def test_bucket_examples_are_tokens_of_their_bucket(small_log, dictionary):
 def test_example_texts_replace_bytes_that_are_not_utf8():
     # Reference: Python's bytes.decode(errors="replace") (from memory: U+FFFD for each bad byte).
     buf = np.frombuffer(b"ok\xffx\x1eb\x1fz", dtype=np.uint8)
-    tok = _Tokens(ptr=np.array([0, 2]), ids=np.array([0, 1]), prefix=np.frombuffer(b"c\x1f", dtype=np.uint8),
-                  buf=buf, off=np.array([0, 2, 8]))
+    tok = TokenTable(ptr=np.array([0, 2]), ids=np.array([0, 1]), prefix=np.frombuffer(b"c\x1f", dtype=np.uint8),
+                     buf=buf, off=np.array([0, 2, 8]))
     assert _token_texts(tok, np.array([1, 0])) == ["c=\ufffdx & b=z", "c=ok"]
 
 

@@ -12,7 +12,6 @@ from pathlib import Path
 
 import pyarrow as pa
 import pyarrow.parquet as pq
-import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 

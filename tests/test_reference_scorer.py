@@ -15,8 +15,8 @@ import pyarrow.parquet as pq
 import pytest
 
 from trainer.hashing import hash_bytes
-from trainer.model import export_model
-from trainer.reader import Featurizer
+from trainer.api import export
+from trainer.reader.featurize import Featurizer
 from trainer.scoring import score_to_parquet
 from trainer.spec import parse_spec
 
@@ -32,7 +32,7 @@ SPEC = parse_spec(SMALL_SPEC)
 
 def exported(tmp_path, **kw):
     make_model(SPEC, **kw).save(tmp_path / "m")
-    return export_model(tmp_path / "m", tmp_path / "e")
+    return export(tmp_path / "m", tmp_path / "e")
 
 
 def test_reference_imports_only_the_allowed_libraries():

@@ -140,3 +140,17 @@ def test_negative_downsampling_stays_calibrated(tmp_path):
               negative_keep_rate=0.2, epochs=3, batch_rows=2000)
     s = api.evaluate(tmp_path / "m", tmp_path / "hold.parquet")
     assert abs(s["calibration_ratio"] - 1) < 0.02
+
+
+def test_train_result_and_evaluation_result_match_the_files_written(small_log, tmp_path):
+    # reference: the model folder's metrics.jsonl and the --json document, read back with the
+    # standard library's json; weights read back by load_model
+    root, spec = small_log
+    r = api.train(spec, root, tmp_path / "m", holdout=root, epochs=2, patience=2, batch_rows=500)
+    lines = [json.loads(x) for x in (tmp_path / "m" / "metrics.jsonl").read_text().splitlines()]
+    assert r.per_pass == lines and r.passes == 2 and r.model_dir == tmp_path / "m" and not r.stopped_early
+    assert r.best_pass == min(lines, key=lambda x: x["holdout"]["log_loss"])["pass"]
+    assert r.train_seconds == sum(x["train_seconds"] for x in lines)
+    assert np.array_equal(r.model.weights, load_model(tmp_path / "m").weights)
+    s = api.evaluate(r.model_dir, root, json_out=tmp_path / "s.json")
+    assert s.log_loss == s["log_loss"] == json.loads((tmp_path / "s.json").read_text())["log_loss"]

@@ -12,20 +12,25 @@ from pathlib import Path
 
 from trainer.atomic import write_atomic
 from trainer.errors import UserError
-from trainer.evaluation import evaluate as _evaluate
-from trainer.model import Model, export_model, inspect_model, jsonable, load_model
-from trainer.reader import Reader, parse_day
+from trainer.evaluation import EvaluationResult, evaluate as _evaluate
+from trainer.export import write_export
+from trainer.json_values import jsonable
+from trainer.model import Model, inspect_model, load_model, model_folder
+from trainer.reader.files import parse_day
+from trainer.reader.stream import Reader
 from trainer.report import write_report
+from trainer.run_folder import RunFolder
 from trainer.scoring import score_to_parquet
 from trainer.spec import Spec, load_spec
-from trainer.training import TrainOptions, Trainer
+from trainer.training import TrainOptions, Trainer, TrainResult
 
-__all__ = ["train", "evaluate", "score", "export", "inspect", "report", "demo", "load_model", "TrainOptions"]
+__all__ = ["EvaluationResult", "TrainResult", "train", "evaluate", "score", "export", "inspect", "report", "demo", "load_model", "TrainOptions"]
 
 
 def train(spec: str | Path | Spec, data: str | Path, out: str | Path, *, holdout: str | Path | None = None,
-          resume: bool = False, force: bool = False, quiet: bool = False, **options) -> Model:
-    """Train a model from ``data`` into the folder ``out`` and return it.
+          resume: bool = False, force: bool = False, quiet: bool = False, **options) -> TrainResult:
+    """Train a model from ``data`` into the folder ``out``; returns a :class:`trainer.training.TrainResult`
+    (the model, its folder, passes run, per-pass metrics, best pass, stopping reason, timings).
 
     ``spec``: a spec file or Spec; ``holdout``: a holdout log (or use ``holdout_start``/``holdout_end``
     on the training path); ``options``: any TrainOptions field (dates as YYYY-MM-DD strings or
@@ -44,11 +49,13 @@ def train(spec: str | Path | Spec, data: str | Path, out: str | Path, *, holdout
 
 
 def evaluate(model: str | Path | Model, data: str | Path, *, start=None, end=None, by: str | None = None,
-             segments: int = 20, skip_bad_labels: bool = False, json_out: str | Path | None = None) -> dict:
+             segments: int = 20, skip_bad_labels: bool = False,
+             json_out: str | Path | None = None) -> EvaluationResult:
     """Metrics of ``model`` on the labelled log ``data`` (inclusive date filter ``start``..``end``).
 
     ``by`` adds one row per value of that column (the ``segments`` largest, the rest pooled).
-    ``json_out`` also writes the summary as JSON (atomically). Returns the summary dict.
+    ``json_out`` also writes the summary as JSON (atomically). Returns the summary, a
+    :class:`trainer.evaluation.EvaluationResult` (a dict whose keys read as attributes too).
     """
     model = model if isinstance(model, Model) else load_model(model)
     if segments < 1:
@@ -71,8 +78,11 @@ def score(model: str | Path, data: str | Path, out: str | Path, *, keep: tuple[s
 
 
 def export(model: str | Path, out: str | Path, *, force: bool = False) -> Path:
-    """Export a trained model folder to ``out`` (weights.parquet + model.json); returns ``out``."""
-    return export_model(model, out, force=force)
+    """Export a trained model folder (or an export folder) to ``out`` (weights.parquet + model.json,
+    :func:`trainer.export.write_export`); returns ``out``. Raises UserError for a bad model or
+    destination."""
+    source = model_folder(model)
+    return write_export(load_model(source), out, source=source, force=force)
 
 
 def inspect(model: str | Path) -> dict:
@@ -87,27 +97,19 @@ def report(model_dir: str | Path, out: str | Path | None = None, *, top: int = 1
     the reliability diagram (auto: log below a 10% base rate); UserError for another value."""
     if probability_axis not in ("auto", "linear", "log"):
         raise UserError(f"--probability-axis must be auto, linear or log; got {probability_axis!r}")
-    model_dir = Path(model_dir)
-    model = load_model(model_dir)
-    passes = []
-    metrics_path = model_dir / "metrics.jsonl"
-    if metrics_path.exists():
-        for line in metrics_path.read_text().splitlines():
-            if line.strip():
-                rec = json.loads(line)
-                passes.append({"pass": rec["pass"], "rows": rec["rows"], "progressive_loss": rec["progressive_loss"],
-                               "holdout": rec["holdout"]})
-    progress_path = model_dir / "progress.json"
-    progress = json.loads(progress_path.read_text()) if progress_path.exists() else []
+    folder = RunFolder(model_dir)
+    model = folder.load_model()
+    passes = [{"pass": rec["pass"], "rows": rec["rows"], "progressive_loss": rec["progressive_loss"],
+               "holdout": rec["holdout"]} for rec in folder.metrics()]
     top_weights = model.top_weights(top, 1) + model.top_weights(top, -1)
     summary = model.info.get("summary", {})
     run = {"title": f"hashcurve report: {model_dir}", "options": model.info.get("options", {}),
            "option_defaults": TrainOptions().as_json(),
            "resolved_options": {"step0": summary["step0"]} if "step0" in summary else {},
            "best_pass": summary.get("best_pass"),
-           "passes": passes, "progress": progress, "final_holdout": model.info.get("holdout"),
+           "passes": passes, "progress": folder.progress(), "final_holdout": model.info.get("holdout"),
            "top_weights": top_weights, "loss": model.loss}
-    path = Path(out) if out is not None else model_dir / "report.html"
+    path = Path(out) if out is not None else folder.report
     write_report(run, path, probability_axis)
     return path
 

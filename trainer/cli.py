@@ -15,7 +15,6 @@ import pyarrow as pa
 
 from trainer import __version__, api
 from trainer.errors import Interrupted, UserError
-from trainer.model import format_inspect
 
 
 class _Parser(argparse.ArgumentParser):
@@ -141,14 +140,67 @@ def format_summary(s: dict) -> str:
     return "\n".join(lines)
 
 
+def _fmt_value(v) -> str:
+    if v is None:
+        return "-"
+    if isinstance(v, float):
+        return f"{v:.6g}"
+    return str(v)
+
+
+def format_inspect(d: dict) -> str:
+    """Render an :func:`trainer.model.inspect_model` dict as compact plain text (one fact per line,
+    weights as a small table with up to three example tokens each, as the reader recorded them).
+    Returns the text (ending in a newline); raises KeyError when ``d`` lacks a key of inspect_model."""
+    lines = [f"model      {d['path']} ({d['form']} form, {d['bytes']:,} bytes on disk)",
+             f"loss       {d['loss']}; probabilities: "
+             + ("yes" if d["has_probability"] else "no (margins only)")
+             + (f"; Platt a={d['calibration']['a']:.6g} b={d['calibration']['b']:.6g}" if d["calibration"] else ""),
+             f"intercept  {d['intercept']:.6g} (negative keep rate {d['negative_keep_rate']:g})",
+             f"buckets    {d['buckets']:,} (2^{d['bits']}), non-zero {d['nonzero']:,} ({100 * d['nonzero_share']:.2f}%)"]
+    c = d["collision"]
+    if c is None:
+        lines.append("tokens     distinct count not recorded; collision rate unknown")
+    else:
+        lines.append(f"tokens     ~{c['tokens']:,} distinct (estimated from the non-zero buckets); expected "
+                     f"{100 * c['shared_bucket_share']:.2f}% of the occupied buckets hold two or more")
+    for title, rows in (("largest positive weights", d["top_positive"]), ("largest negative weights", d["top_negative"])):
+        lines.append(f"{title}:")
+        if not rows:
+            lines.append("  (none)")
+        for r in rows:
+            ex = ", ".join(r["examples"][:3]) or "(no example recorded)"
+            lines.append(f"  {r['weight']:+11.5f}  bucket {r['bucket']:>10}  {ex}")
+    if d["options"]:
+        lines.append("options    " + ", ".join(f"{k}={_fmt_value(v)}" for k, v in sorted(d["options"].items())))
+    if d["summary"]:
+        lines.append("training   " + ", ".join(f"{k}={_fmt_value(v)}" for k, v in sorted(d["summary"].items())
+                                               if not isinstance(v, (dict, list))))
+    h = d["holdout"]
+    if h:
+        keys = [k for k in ("rows", "log_loss", "normalized_entropy", "auc", "calibration_ratio", "error_rate")
+                if k in h]
+        lines.append("holdout    " + ", ".join(f"{k}={_fmt_value(h[k])}" for k in keys))
+    return "\n".join(lines) + "\n"
+
+
+def format_train_result(r) -> str:
+    """A finished training run (:class:`trainer.training.TrainResult`) in a few lines (our own layout)."""
+    lines = [f"{r.passes} pass(es), {r.train_seconds:.1f} s training + {r.eval_seconds:.1f} s holdout evaluation; "
+             f"{r.stopping_reason}"]
+    if r.best_pass is not None:
+        lines.append(f"best holdout pass {r.best_pass}")
+    lines.append(f"model written to {r.model_dir}")
+    return "\n".join(lines)
+
+
 def _train(a) -> None:
     options = {k: getattr(a, k) for k in ("epochs", "loss", "solver", "l2_strength", "history", "batch_rows", "step0",
                                           "seed", "shuffle_buffer", "negative_keep_rate", "patience",
                                           "checkpoint_every", "start", "end", "holdout_start", "holdout_end",
                                           "skip_bad_labels", "allow_one_class")}
-    api.train(a.spec, a.data, a.out, holdout=a.holdout, resume=a.resume, force=a.force,
-              quiet=a.quiet, **options)
-    print(f"model written to {a.out}")
+    print(format_train_result(api.train(a.spec, a.data, a.out, holdout=a.holdout, resume=a.resume,
+                                        force=a.force, quiet=a.quiet, **options)))
 
 
 def _demo(a) -> None:

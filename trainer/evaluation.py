@@ -7,11 +7,23 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from trainer.metrics import BinaryMetrics, MarginMetrics
-from trainer.reader import Reader
+from trainer.reader.stream import Reader
 
 MAX_TRACKED_SEGMENTS = 100_000
 OTHER = "(other values)"
 NULL = "(null)"
+
+
+class EvaluationResult(dict):
+    """The metrics of one evaluation, in the manner of ``scipy.optimize.OptimizeResult``: a dict (its
+    keys are those of the ``evaluate --json`` document, see :func:`evaluate`) whose keys also read as
+    attributes (``result.log_loss``)."""
+
+    def __getattr__(self, name):
+        try:
+            return self[name]
+        except KeyError:
+            raise AttributeError(name) from None
 
 
 class SegmentSums:
@@ -66,8 +78,9 @@ class SegmentSums:
                 "log_loss": wl / w if w else float("nan")}
 
 
-def evaluate(model, reader: Reader, *, by: str | None = None, segments: int = 20) -> dict:
-    """Score every row of ``reader`` with ``model`` and return the metrics summary.
+def evaluate(model, reader: Reader, *, by: str | None = None, segments: int = 20) -> EvaluationResult:
+    """Score every row of ``reader`` with ``model`` and return the metrics summary (an
+    :class:`EvaluationResult`).
 
     For logistic models (and squared-hinge models with a probability calibration) the summary is
     ``BinaryMetrics.summary()``; squared-hinge models add ``margin`` (``MarginMetrics.summary()``:
@@ -92,7 +105,7 @@ def evaluate(model, reader: Reader, *, by: str | None = None, segments: int = 20
                                  margins=margins if model.loss == "logistic" else None)
             if seg is not None:
                 seg.update(batch.columns.column(by).combine_chunks(), batch.labels, probs, batch.weights)
-    out = probs_metrics.summary() if probs_metrics is not None else {}
+    out = EvaluationResult(probs_metrics.summary() if probs_metrics is not None else {})
     if margin_metrics is not None:
         out["margin"] = margin_metrics.summary()
         out["squared_hinge_loss"] = hinge[0] / hinge[1] if hinge[1] else float("nan")

@@ -27,195 +27,20 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numba import njit
 from scipy.special import expit
 
+from trainer._metrics_kernels import (BRIER, FN, FP, LOSS, MARGIN_OCTAVES, N_SUMS, PRED, PROB_OCTAVES, PW, REL_ROWS,
+                                      REL_W2, REL_WP, TN, TP, W, accumulate_binary, accumulate_margin, platt_terms)
 from trainer.errors import UserError
-
-#: Predictions are clipped to ``[EPS, 1 - EPS]`` before taking logarithms. scikit-learn 1.9's
-#: ``log_loss`` clips at the machine epsilon of the input dtype (stated in its docstring; older
-#: releases used a fixed 1e-15); we use the float64 machine epsilon, 2.220446049250313e-16.
-EPS = float(np.finfo(np.float64).eps)
 
 #: Standard normal 0.975 quantile, for 95% Wilson intervals.
 WILSON_Z = 1.959963984540054
-
-# Probability scores: q = min(p, 1 - p) (exact in float64 for p >= 1/2) is binned over the octaves
-# [2^-64, 2^-1); q < 2^-64 falls in one end bin per side, p = 1/2 has a bin of its own.
-_PROB_LOW_EXP = 64
-_PROB_OCTAVES = 63
-# Margins: |m| is binned over the octaves [2^-32, 2^32), with one bin below and one above per sign.
-_MARGIN_LOW_EXP = 32
-_MARGIN_OCTAVES = 64
-
-# Slots of the weighted running sums.
-_W, _PW, _LOSS, _BRIER, _PRED, _TP, _FP, _TN, _FN = range(9)
-_N_SUMS = 9
-
-# Columns of the reliability sums kept per rank bin: rows, sum of w^2, sum of w * p.
-_REL_ROWS, _REL_W2, _REL_WP = range(3)
 
 #: The reliability table's automatic bin count: one bin per RELIABILITY_ROWS_PER_BIN effective
 #: rows, at least RELIABILITY_MIN_BINS and at most RELIABILITY_MAX_BINS.
 RELIABILITY_MIN_BINS = 10
 RELIABILITY_MAX_BINS = 20
 RELIABILITY_ROWS_PER_BIN = 1000
-
-
-@njit(cache=True)
-def _octave_index(bits, low_exp, octaves, res_bits):
-    """Monotone bin of a non-negative float64 given by its bit pattern.
-
-    0 below 2^-low_exp, 1 .. octaves << res_bits inside [2^-low_exp, 2^(octaves - low_exp)),
-    (octaves << res_bits) + 1 at or above the top.
-    """
-    k = np.int64(bits >> np.uint64(52 - res_bits)) - (np.int64(1023 - low_exp) << res_bits)
-    if k < 0:
-        return np.int64(0)
-    top = np.int64(octaves) << res_bits
-    if k >= top:
-        return top + 1
-    return k + 1
-
-
-@njit(cache=True)
-def _prob_bin(p, res_bits, buf, ubuf):
-    """Bin of a probability in [0, 1]; ascending in p; 2 * n_side + 1 bins in all."""
-    n_side = (np.int64(_PROB_OCTAVES) << res_bits) + 1
-    if p == 0.5:
-        return n_side
-    if p < 0.5:
-        buf[0] = p
-        return _octave_index(ubuf[0], _PROB_LOW_EXP, _PROB_OCTAVES, res_bits)
-    buf[0] = 1.0 - p
-    return 2 * n_side - _octave_index(ubuf[0], _PROB_LOW_EXP, _PROB_OCTAVES, res_bits)
-
-
-@njit(cache=True)
-def _margin_bin(m, res_bits, buf, ubuf):
-    """Bin of a finite margin; ascending in m; 2 * centre + 1 bins in all."""
-    centre = (np.int64(_MARGIN_OCTAVES) << res_bits) + 1
-    buf[0] = abs(m)
-    j = _octave_index(ubuf[0], _MARGIN_LOW_EXP, _MARGIN_OCTAVES, res_bits)
-    if j == 0:
-        return centre
-    if m < 0.0:
-        return centre - j
-    return centre + j
-
-
-@njit(cache=True)
-def _softplus(x):
-    """log(1 + exp(x)) without overflow."""
-    if x > 0.0:
-        return x + math.log1p(math.exp(-x))
-    return math.log1p(math.exp(x))
-
-
-@njit(cache=True, inline="always")
-def _count_row(counts, sums, y, w):
-    """Add one row to the row, positive and weight counts; return 1 for a positive, else 0."""
-    pos = 1 if y == 1.0 else 0
-    counts[0] += 1
-    counts[1] += pos
-    sums[_W] += w
-    sums[_PW] += w * y
-    return pos
-
-
-@njit(cache=True, inline="always")
-def _add_ranked(sums, auc_w, auc_lo, auc_hi, k, pos, w, called_positive, score):
-    """Add one row to the confusion sums and to rank bin ``k`` (weight, smallest and largest score)."""
-    if called_positive:
-        sums[_TP if pos else _FP] += w
-    else:
-        sums[_FN if pos else _TN] += w
-    auc_w[k, pos] += w
-    if score < auc_lo[k]:
-        auc_lo[k] = score
-    if score > auc_hi[k]:
-        auc_hi[k] = score
-
-
-@njit(cache=True)
-def _accumulate_binary(labels, probs, weights, margins, hist_edges, res_bits,
-                       counts, sums, hist, auc_w, auc_lo, auc_hi, rank_rel):
-    """Add one chunk of rows to the state arrays of a BinaryMetrics (in place)."""
-    buf = np.empty(1, np.float64)
-    ubuf = buf.view(np.uint64)
-    use_w = weights.size > 0
-    use_m = margins.size > 0
-    n_hist = hist.shape[0]
-    lo_clip = EPS
-    hi_clip = 1.0 - EPS
-    for i in range(labels.size):
-        y = labels[i]
-        p = probs[i]
-        w = weights[i] if use_w else 1.0
-        pos = _count_row(counts, sums, y, w)
-        if use_m:
-            loss = _softplus(-margins[i]) if pos else _softplus(margins[i])
-        else:
-            pc = min(max(p, lo_clip), hi_clip)
-            loss = -math.log(pc) if pos else -math.log1p(-pc)
-        sums[_LOSS] += w * loss
-        d = p - y
-        sums[_BRIER] += w * d * d
-        sums[_PRED] += w * p
-        h = np.searchsorted(hist_edges, p, side="right") - 1
-        if h >= n_hist:
-            h = n_hist - 1
-        hist[h, pos] += w
-        k = _prob_bin(p, res_bits, buf, ubuf)
-        _add_ranked(sums, auc_w, auc_lo, auc_hi, k, pos, w, p > 0.5, p)
-        rank_rel[k, _REL_ROWS] += 1.0
-        rank_rel[k, _REL_W2] += w * w
-        rank_rel[k, _REL_WP] += w * p
-
-
-@njit(cache=True)
-def _accumulate_margin(labels, margins, weights, res_bits, counts, sums, auc_w, auc_lo, auc_hi):
-    """Add one chunk of rows to the state arrays of a MarginMetrics (in place)."""
-    buf = np.empty(1, np.float64)
-    ubuf = buf.view(np.uint64)
-    use_w = weights.size > 0
-    for i in range(labels.size):
-        y = labels[i]
-        m = margins[i]
-        w = weights[i] if use_w else 1.0
-        pos = _count_row(counts, sums, y, w)
-        _add_ranked(sums, auc_w, auc_lo, auc_hi, _margin_bin(m, res_bits, buf, ubuf), pos, w, m > 0.0, m)
-
-
-@njit(cache=True)
-def _platt_terms(margins, targets, weights, a, b):
-    """Cross-entropy of sigmoid(a*m + b) against soft targets, with gradient and Hessian in a, b."""
-    f = 0.0
-    g1 = 0.0
-    g2 = 0.0
-    h11 = 0.0
-    h12 = 0.0
-    h22 = 0.0
-    for i in range(margins.size):
-        m = margins[i]
-        t = targets[i]
-        w = weights[i]
-        z = a * m + b
-        f += w * (_softplus(z) - t * z)
-        if z >= 0.0:
-            e = math.exp(-z)
-            s = 1.0 / (1.0 + e)
-        else:
-            e = math.exp(z)
-            s = e / (1.0 + e)
-        r = w * (s - t)
-        c = w * s * (1.0 - s)
-        g1 += r * m
-        g2 += r
-        h11 += c * m * m
-        h12 += c * m
-        h22 += c
-    return f, g1, g2, h11, h12, h22
 
 
 def _float_array(values, name, n=None):
@@ -288,8 +113,8 @@ def _rank_summary(auc_w, auc_lo, auc_hi):
 
 
 def _confusion(sums):
-    return {"tp": float(sums[_TP]), "fp": float(sums[_FP]), "tn": float(sums[_TN]),
-            "fn": float(sums[_FN])}
+    return {"tp": float(sums[TP]), "fp": float(sums[FP]), "tn": float(sums[TN]),
+            "fn": float(sums[FN])}
 
 
 def wilson_interval(successes, n, z=WILSON_Z):
@@ -340,23 +165,23 @@ def _reliability_bins(auc_w, auc_lo, auc_hi, rank_rel, n_bins):
     quantile rule; cuts that land in the same rank bin merge, so ties heavier than 1/n give fewer
     bins. ``n_bins`` None chooses the count with :func:`reliability_bin_count`.
     """
-    used = np.flatnonzero(rank_rel[:, _REL_ROWS] > 0)
+    used = np.flatnonzero(rank_rel[:, REL_ROWS] > 0)
     if used.size == 0:
         return [], math.nan
     weight = auc_w[used, 0] + auc_w[used, 1]
     cum = np.cumsum(weight)
     total = float(cum[-1])
-    w2_total = float(rank_rel[used, _REL_W2].sum())
+    w2_total = float(rank_rel[used, REL_W2].sum())
     if n_bins is None:
         n_bins = reliability_bin_count(total * total / w2_total if w2_total > 0 else 0.0)
     cuts = np.searchsorted(cum, total * np.arange(1, n_bins) / n_bins, side="left")
     ends = np.unique(np.append(np.minimum(cuts, used.size - 1), used.size - 1))
     starts = np.concatenate(([0], ends[:-1] + 1))
-    rows = np.add.reduceat(rank_rel[used, _REL_ROWS], starts)
+    rows = np.add.reduceat(rank_rel[used, REL_ROWS], starts)
     w = np.add.reduceat(weight, starts)
     wy = np.add.reduceat(auc_w[used, 1], starts)
-    w2 = np.add.reduceat(rank_rel[used, _REL_W2], starts)
-    wp = np.add.reduceat(rank_rel[used, _REL_WP], starts)
+    w2 = np.add.reduceat(rank_rel[used, REL_W2], starts)
+    wp = np.add.reduceat(rank_rel[used, REL_WP], starts)
     lo = auc_lo[used][starts]
     hi = auc_hi[used][ends]
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -431,9 +256,9 @@ class BinaryMetrics:
         self.histogram_bins = _check_int(histogram_bins, "histogram_bins", 3, 10000)
         self.auc_bits = _check_int(auc_bits, "auc_bits", 4, 14)
         self._hist_edges = _sigmoid_edges(self.histogram_bins)
-        n_rank = 2 * ((_PROB_OCTAVES << self.auc_bits) + 1) + 1
+        n_rank = 2 * ((PROB_OCTAVES << self.auc_bits) + 1) + 1
         self._counts = np.zeros(2, np.int64)
-        self._sums = np.zeros(_N_SUMS, np.float64)
+        self._sums = np.zeros(N_SUMS, np.float64)
         self._rank_rel = np.zeros((n_rank, 3), np.float64)
         self._hist = np.zeros((self.histogram_bins, 2), np.float64)
         self._auc_w = np.zeros((n_rank, 2), np.float64)
@@ -447,8 +272,8 @@ class BinaryMetrics:
         optional ``weights`` (row weights, finite and >= 0; default 1) and optional ``margins``
         (the model's log-odds z with p = 1/(1+exp(-z))). With margins, log-loss is computed from
         them as log(1 + exp(-z)) / log(1 + exp(z)) (no clipping needed); without, from the
-        probabilities clipped to [EPS, 1 - EPS] (see :data:`EPS`). All other metrics use
-        ``probs``. Returns None. Raises UserError for labels other than 0/1, probabilities outside
+        probabilities clipped to [EPS, 1 - EPS] (see :data:`trainer._metrics_kernels.EPS`). All other
+        metrics use ``probs``. Returns None. Raises UserError for labels other than 0/1, probabilities outside
         [0, 1] or NaN, bad weights, non-finite margins, or arrays of unequal length.
         """
         y = _check_labels(labels)
@@ -464,7 +289,7 @@ class BinaryMetrics:
                 raise UserError("margins: every margin must be finite")
         if y.size == 0:
             return
-        _accumulate_binary(y, p, w, m, self._hist_edges, self.auc_bits, self._counts, self._sums,
+        accumulate_binary(y, p, w, m, self._hist_edges, self.auc_bits, self._counts, self._sums,
                            self._hist, self._auc_w, self._auc_lo, self._auc_hi, self._rank_rel)
 
     def merge(self, other: BinaryMetrics) -> BinaryMetrics:
@@ -507,10 +332,10 @@ class BinaryMetrics:
         are NaN for an empty accumulator. Raises nothing.
         """
         s = self._sums
-        w_sum = float(s[_W])
-        p_w = float(s[_PW])
+        w_sum = float(s[W])
+        p_w = float(s[PW])
         base = _safe_div(p_w, w_sum)
-        log_loss = _safe_div(s[_LOSS], w_sum)
+        log_loss = _safe_div(s[LOSS], w_sum)
         if 0.0 < base < 1.0:
             entropy = -(base * math.log(base) + (1.0 - base) * math.log1p(-base))
             ne = log_loss / entropy
@@ -529,10 +354,10 @@ class BinaryMetrics:
             "normalized_entropy": ne,
             "auc": auc,
             "auc_error_bound": bound,
-            "brier": _safe_div(s[_BRIER], w_sum),
-            "calibration_ratio": _safe_div(s[_PRED], p_w),
+            "brier": _safe_div(s[BRIER], w_sum),
+            "calibration_ratio": _safe_div(s[PRED], p_w),
             "ece": ece,
-            "error_rate": _safe_div(s[_FP] + s[_FN], w_sum),
+            "error_rate": _safe_div(s[FP] + s[FN], w_sum),
             "error_rate_at_base_rate": err_base,
             "confusion": _confusion(s),
             "bins": bins,
@@ -556,9 +381,9 @@ class MarginMetrics:
 
     def __init__(self, auc_bits: int = 12):
         self.auc_bits = _check_int(auc_bits, "auc_bits", 4, 14)
-        n_rank = 2 * ((_MARGIN_OCTAVES << self.auc_bits) + 1) + 1
+        n_rank = 2 * ((MARGIN_OCTAVES << self.auc_bits) + 1) + 1
         self._counts = np.zeros(2, np.int64)
-        self._sums = np.zeros(_N_SUMS, np.float64)
+        self._sums = np.zeros(N_SUMS, np.float64)
         self._auc_w = np.zeros((n_rank, 2), np.float64)
         self._auc_lo = np.full(n_rank, np.inf)
         self._auc_hi = np.full(n_rank, -np.inf)
@@ -577,7 +402,7 @@ class MarginMetrics:
         w = _check_weights(weights, y.size)
         if y.size == 0:
             return
-        _accumulate_margin(y, m, w, self.auc_bits, self._counts, self._sums, self._auc_w,
+        accumulate_margin(y, m, w, self.auc_bits, self._counts, self._sums, self._auc_w,
                            self._auc_lo, self._auc_hi)
 
     def merge(self, other: MarginMetrics) -> MarginMetrics:
@@ -599,17 +424,17 @@ class MarginMetrics:
         :meth:`BinaryMetrics.summary`. Raises nothing.
         """
         s = self._sums
-        w_sum = float(s[_W])
+        w_sum = float(s[W])
         auc, bound, err_base = _rank_summary(self._auc_w, self._auc_lo, self._auc_hi)
         return {
             "rows": int(self._counts[0]),
             "positives": int(self._counts[1]),
             "weight_sum": w_sum,
-            "positive_weight": float(s[_PW]),
-            "base_rate": _safe_div(s[_PW], w_sum),
+            "positive_weight": float(s[PW]),
+            "base_rate": _safe_div(s[PW], w_sum),
             "auc": auc,
             "auc_error_bound": bound,
-            "error_rate": _safe_div(s[_FP] + s[_FN], w_sum),
+            "error_rate": _safe_div(s[FP] + s[FN], w_sum),
             "error_rate_at_base_rate": err_base,
             "confusion": _confusion(s),
         }
@@ -663,7 +488,7 @@ def fit_platt(margins, labels, weights=None, *, prior_correction: bool = True,
     ridge = 1e-12
     tol_a = 1e-11 * max(float(np.sum(w * np.abs(m))), 1e-300)
     tol_b = 1e-11 * (p_w + n_w)
-    f, g1, g2, h11, h12, h22 = _platt_terms(m, t, w, a, b)
+    f, g1, g2, h11, h12, h22 = platt_terms(m, t, w, a, b)
     for _ in range(max_iter):
         if abs(g1) <= tol_a and abs(g2) <= tol_b:
             break
@@ -676,7 +501,7 @@ def fit_platt(margins, labels, weights=None, *, prior_correction: bool = True,
         step = 1.0
         while step >= 1e-10:
             na, nb = a + step * da, b + step * db
-            terms = _platt_terms(m, t, w, na, nb)
+            terms = platt_terms(m, t, w, na, nb)
             if terms[0] < f + 1e-4 * step * slope:
                 a, b = na, nb
                 f, g1, g2, h11, h12, h22 = terms

@@ -1,92 +1,43 @@
-"""The trained model: bucket weights, intercept, spec and metadata; prediction, saving, export, inspect.
+"""The trained model: bucket weights, intercept, spec and metadata; prediction, saving, loading, inspection.
 
 Two on-disk forms exist:
 
 * a training model folder (``MODEL_DIR``): ``model.npz`` (arrays ``weights``, ``intercept``) and
   ``model.json`` (format tag, spec, loss, info, the SHA-256 of ``model.npz`` and ``scoring_sha256``),
   written by :meth:`Model.save`;
-* an export folder (``EXPORT_DIR``): ``weights.parquet`` (columns ``bucket`` int64, ``weight``
-  float64, non-zero weights only, sorted by bucket) and ``model.json`` (the self-describing document
-  of ``schemas/model.schema.json``: hashing contract, intercept, link, calibration, training options,
-  holdout metrics, the SHA-256 of ``weights.parquet`` and ``scoring_sha256``), written by
-  :func:`export_model`. Anything
-  that implements the hashing contract can score with these two files alone
-  (``reference/score_reference.py`` is the executable form).
+* an export folder (``EXPORT_DIR``), the portable form of ``trainer.export``.
 
 :func:`load_model` reads either form and refuses a folder whose checksums do not match.
 ``scoring_sha256`` is the SHA-256 of the RFC 8785 canonical JSON (:mod:`trainer.canonical`) of the
-fields of ``model.json`` that decide a score (:func:`scoring_fields`), so an edited intercept,
+fields of ``model.json`` that decide a score (:func:`trainer.export.scoring_fields`), so an edited intercept,
 calibration, link, loss, hashing section or spec is refused like a changed weights file.
 """
 
 from __future__ import annotations
 
-import datetime as dt
-import hashlib
 import json
 import math
-import os
-import shutil
-import tempfile
 import zipfile
 from pathlib import Path
 
 import numpy as np
-import pyarrow as pa
-import pyarrow.parquet as pq
 from scipy.special import expit
 
 from trainer import __version__
-from trainer.atomic import atomic_path, fsync_dir, fsync_file, write_atomic
-from trainer.canonical import canonical_json
+from trainer.atomic import atomic_path, write_atomic
 from trainer.errors import UserError
+from trainer.export import (EXPORT_FILES, EXPORT_FORMAT, FORMAT_VERSION, META_FILE, read_export, require_key,
+                            scoring_sha256, sha256_file)
+from trainer.json_values import jsonable
 from trainer.kernels import predict_margin
 from trainer.spec import Spec, parse_spec
 
 LOSSES = ("logistic", "squared-hinge")
 TRAINING_FORMAT = "hashcurve-training-model"
-EXPORT_FORMAT = "hashcurve-export"
-FORMAT_VERSION = 2
-META_FILE = "model.json"
 ARRAYS_FILE = "model.npz"
-WEIGHTS_FILE = "weights.parquet"
-EXPORT_FILES = (META_FILE, WEIGHTS_FILE)
-LINKS = {"logistic": "logistic", "squared-hinge": "identity-margin"}
-#: The keys of an export's model.json that decide a score; ``scoring_sha256`` covers exactly these.
-EXPORT_SCORING_KEYS = ("format", "version", "loss", "link", "score", "calibration", "intercept", "hashing",
-                       "spec", "n_buckets", "weights_file", "weights_columns", "absent_bucket_weight",
-                       "weights_sha256")
-#: The same for a training folder's model.json, plus ``info.calibration`` (the intercept and weights
-#: live in model.npz, covered by ``arrays_sha256``).
-TRAINING_SCORING_KEYS = ("format", "version", "spec", "loss", "arrays_file", "arrays_sha256")
 
 _INFO_DEFAULTS = {"options": {}, "negative_keep_rate": 1.0, "summary": {}, "holdout": None,
                   "calibration": None, "examples": {}}
-
-
-def jsonable(obj):
-    """A copy of ``obj`` that strict JSON can hold: numpy scalars and arrays become Python numbers
-    and lists, tuples become lists, paths and dates become text, non-finite floats (undefined
-    metrics) become None."""
-    if isinstance(obj, str):
-        return obj
-    if isinstance(obj, dict):
-        return {str(k): jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [jsonable(v) for v in obj]
-    if isinstance(obj, np.ndarray):
-        return [jsonable(v) for v in obj.tolist()]
-    if isinstance(obj, (bool, np.bool_)):
-        return bool(obj)
-    if isinstance(obj, (int, np.integer)):
-        return int(obj)
-    if isinstance(obj, (float, np.floating)):
-        return float(obj) if math.isfinite(obj) else None
-    if isinstance(obj, os.PathLike):
-        return os.fspath(obj)
-    if isinstance(obj, dt.date):
-        return obj.isoformat()
-    return obj
 
 
 def _check_calibration(cal, loss: str) -> dict | None:
@@ -229,7 +180,7 @@ class Model:
             folder.mkdir(parents=True, exist_ok=True)
             with atomic_path(folder / ARRAYS_FILE) as tmp, open(tmp, "wb") as f:
                 np.savez(f, weights=self.weights, intercept=np.float64(self.intercept))
-            digest = _sha256(folder / ARRAYS_FILE)
+            digest = sha256_file(folder / ARRAYS_FILE)
             meta = {"format": TRAINING_FORMAT, "version": FORMAT_VERSION, "generator": f"hashcurve {__version__}",
                     "spec": self.spec.raw, "loss": self.loss, "info": jsonable(self.info),
                     "arrays_file": ARRAYS_FILE, "arrays_sha256": digest}
@@ -240,42 +191,18 @@ class Model:
         return folder
 
 
-def scoring_fields(meta: dict) -> dict:
-    """The fields of a ``model.json`` document (export or training form) that decide a score: the
-    export's :data:`EXPORT_SCORING_KEYS`, or a training folder's :data:`TRAINING_SCORING_KEYS` plus
-    ``calibration`` taken from ``info``. An absent key counts as null. Raises nothing."""
-    if meta.get("format") == TRAINING_FORMAT:
-        info = meta.get("info")
-        return {**{k: meta.get(k) for k in TRAINING_SCORING_KEYS},
-                "calibration": info.get("calibration") if isinstance(info, dict) else None}
-    return {k: meta.get(k) for k in EXPORT_SCORING_KEYS}
-
-
-def scoring_sha256(meta: dict) -> str:
-    """Hex SHA-256 of the RFC 8785 canonical JSON ("JSON Canonicalization Scheme (JCS)", 2020) of
-    :func:`scoring_fields` of ``meta``. Raises ValueError when a field has no canonical form (NaN,
-    infinity, an integer beyond 2^53)."""
-    return hashlib.sha256(canonical_json(scoring_fields(meta))).hexdigest()
-
-
 def _no_calibration() -> UserError:
     return UserError("model: this squared-hinge model has no probability calibration (Platt); use its "
                      "margins, or retrain with a calibration slice")
-
-
-def _sha256(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as f:
-        for block in iter(lambda: f.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
 
 
 # ----------------------------------------------------------------------------------------------
 # loading
 
 
-def _model_folder(path: str | Path) -> Path:
+def model_folder(path: str | Path) -> Path:
+    """The model folder that ``path`` names (the folder, or the ``model.json`` in it). Raises
+    UserError when it is missing, a file, or holds no ``model.json``."""
     p = Path(path)
     if p.is_file() and p.name == META_FILE:
         p = p.parent
@@ -311,13 +238,6 @@ def _read_meta(folder: Path) -> dict:
     return meta
 
 
-def _require(meta: dict, key: str, types, path: Path):
-    value = meta.get(key)
-    if isinstance(value, bool) or not isinstance(value, types):
-        raise UserError(f"{path}: key '{key}' is missing or has the wrong type")
-    return value
-
-
 def _build(path: Path, spec: Spec, weights: np.ndarray, intercept, loss, info) -> Model:
     try:
         return Model(spec, weights, intercept, loss, info)
@@ -327,14 +247,14 @@ def _build(path: Path, spec: Spec, weights: np.ndarray, intercept, loss, info) -
 
 def _load_training(folder: Path, meta: dict) -> Model:
     meta_path = folder / META_FILE
-    spec = parse_spec(_require(meta, "spec", dict, meta_path), f"{meta_path}: spec")
-    loss = _require(meta, "loss", str, meta_path)
-    info = _require(meta, "info", dict, meta_path)
-    digest = _require(meta, "arrays_sha256", str, meta_path)
+    spec = parse_spec(require_key(meta, "spec", dict, meta_path), f"{meta_path}: spec")
+    loss = require_key(meta, "loss", str, meta_path)
+    info = require_key(meta, "info", dict, meta_path)
+    digest = require_key(meta, "arrays_sha256", str, meta_path)
     arrays = folder / ARRAYS_FILE
     if not arrays.is_file():
         raise UserError(f"{arrays}: missing; the model folder is incomplete")
-    if _sha256(arrays) != digest:
+    if sha256_file(arrays) != digest:
         raise UserError(f"{arrays}: checksum does not match {META_FILE}; the file was changed or damaged")
     try:
         with np.load(arrays, allow_pickle=False) as z:
@@ -342,50 +262,6 @@ def _load_training(folder: Path, meta: dict) -> Model:
             intercept = float(z["intercept"])
     except (OSError, KeyError, ValueError, zipfile.BadZipFile) as exc:
         raise UserError(f"{arrays}: unreadable model arrays ({exc})") from None
-    return _build(folder, spec, weights, intercept, loss, info)
-
-
-def _stored_calibration(cal):
-    """An export's calibration without the formula text export_document adds for readers."""
-    if isinstance(cal, dict):
-        return {k: v for k, v in cal.items() if k != "probability"}
-    return cal
-
-
-def _load_export(folder: Path, meta: dict) -> Model:
-    meta_path = folder / META_FILE
-    spec = parse_spec(_require(meta, "spec", dict, meta_path), f"{meta_path}: spec")
-    hashing = _require(meta, "hashing", dict, meta_path)
-    if (hashing.get("algorithm"), hashing.get("bits"), hashing.get("seed")) != ("murmur3_x86_32", spec.bits, spec.seed):
-        raise UserError(f"{meta_path}: key 'hashing' disagrees with key 'spec' (algorithm, bits or seed)")
-    loss = _require(meta, "loss", str, meta_path)
-    intercept = _require(meta, "intercept", (int, float), meta_path)
-    digest = _require(meta, "weights_sha256", str, meta_path)
-    training = _require(meta, "training", dict, meta_path)
-    wpath = folder / WEIGHTS_FILE
-    try:
-        data = wpath.read_bytes()
-    except OSError:
-        raise UserError(f"{wpath}: missing or unreadable; the export is incomplete") from None
-    if hashlib.sha256(data).hexdigest() != digest:
-        raise UserError(f"{wpath}: checksum does not match {META_FILE}; the file was changed or damaged")
-    try:
-        table = pq.read_table(pa.BufferReader(data))
-    except pa.ArrowException as exc:
-        raise UserError(f"{wpath}: not a readable Parquet file ({str(exc).splitlines()[0]})") from None
-    if table.schema.names != ["bucket", "weight"] or table.schema.types != [pa.int64(), pa.float64()]:
-        raise UserError(f"{wpath}: expected exactly the columns bucket (int64) and weight (float64)")
-    buckets = table.column("bucket").to_numpy()
-    values = table.column("weight").to_numpy()
-    if table.column("bucket").null_count or table.column("weight").null_count:
-        raise UserError(f"{wpath}: columns bucket and weight must hold no nulls")
-    if buckets.size and (buckets[0] < 0 or buckets[-1] >= spec.n_buckets or np.any(np.diff(buckets) <= 0)):
-        raise UserError(f"{wpath}: column bucket must be strictly increasing within [0, {spec.n_buckets})")
-    weights = np.zeros(spec.n_buckets, dtype=np.float64)
-    weights[buckets] = values
-    info = {"options": training.get("options") or {}, "summary": training.get("summary") or {},
-            "negative_keep_rate": training.get("negative_keep_rate", 1.0), "holdout": meta.get("holdout"),
-            "calibration": _stored_calibration(meta.get("calibration")), "examples": meta.get("examples") or {}}
     return _build(folder, spec, weights, intercept, loss, info)
 
 
@@ -397,119 +273,11 @@ def load_model(path: str | Path) -> Model:
     Raises UserError naming the file when the folder is missing, incomplete, corrupt, tampered with
     (checksum mismatch) or of an unsupported format version.
     """
-    folder = _model_folder(path)
+    folder = model_folder(path)
     meta = _read_meta(folder)
     if meta["format"] == TRAINING_FORMAT:
         return _load_training(folder, meta)
-    return _load_export(folder, meta)
-
-
-# ----------------------------------------------------------------------------------------------
-# export
-
-
-def _utc_now() -> str:
-    return dt.datetime.now(dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
-
-
-def export_document(model: Model, weights_sha256: str, nonzero: int) -> dict:
-    """The export's ``model.json`` document for ``model`` (see ``schemas/model.schema.json``), given the
-    SHA-256 of the written ``weights.parquet`` and its row count. Returns a JSON-ready dict; raises
-    nothing."""
-    link = LINKS[model.loss]
-    cal = model.calibration
-    doc = jsonable({
-        "format": EXPORT_FORMAT,
-        "version": FORMAT_VERSION,
-        "generator": f"hashcurve {__version__}",
-        "created": _utc_now(),
-        "loss": model.loss,
-        "link": link,
-        "score": ("probability = 1 / (1 + exp(-margin))" if link == "logistic" else "margin"),
-        "calibration": (None if cal is None else
-                        {**cal, "probability": "1 / (1 + exp(-(a * margin + b)))"}),
-        "intercept": model.intercept,
-        "hashing": model.spec.contract(),
-        "spec": model.spec.raw,
-        "n_buckets": model.spec.n_buckets,
-        "nonzero": nonzero,
-        "weights_file": WEIGHTS_FILE,
-        "weights_sha256": weights_sha256,
-        "weights_columns": {"bucket": "int64", "weight": "float64"},
-        "absent_bucket_weight": 0.0,
-        "training": {"options": model.info["options"], "summary": model.info["summary"],
-                     "negative_keep_rate": model.info["negative_keep_rate"]},
-        "holdout": model.info["holdout"],
-        "examples": model.info["examples"],
-    })
-    doc["scoring_sha256"] = scoring_sha256(doc)
-    return doc
-
-
-def _write_export(model: Model, folder: Path) -> None:
-    nz = np.flatnonzero(model.weights).astype(np.int64)
-    table = pa.table({"bucket": pa.array(nz, pa.int64()), "weight": pa.array(model.weights[nz], pa.float64())})
-    wpath = folder / WEIGHTS_FILE
-    pq.write_table(table, wpath, compression="snappy")
-    fsync_file(wpath)
-    doc = export_document(model, _sha256(wpath), int(nz.size))
-    (folder / META_FILE).write_bytes(json.dumps(doc, indent=1, allow_nan=False).encode("utf-8"))
-    fsync_file(folder / META_FILE)
-    fsync_dir(folder)
-
-
-def export_model(model_path: str | Path, out_dir: str | Path, force: bool = False) -> Path:
-    """Export the model at ``model_path`` (training model folder or export folder) to ``out_dir``.
-
-    Writes ``out_dir/weights.parquet`` (bucket int64, weight float64; non-zero weights only, sorted by
-    bucket) and ``out_dir/model.json`` (:func:`export_document`) into a temporary sibling folder, then
-    renames it into place, so ``out_dir`` holds either nothing new or a complete export. An existing
-    non-empty ``out_dir`` is refused unless ``force``; even then only a previous export (model.json
-    and weights.parquet alone) is replaced. Returns ``out_dir`` as a Path. Raises UserError for a
-    bad model, an ``out_dir`` that is a file, the model's own folder, a non-empty folder without
-    ``force``, or a folder that cannot be written.
-    """
-    src = _model_folder(model_path)
-    model = load_model(src)
-    out = Path(out_dir)
-    if out.exists() and not out.is_dir():
-        raise UserError(f"{out}: export destination is a file; give a folder path")
-    if out.resolve() == src.resolve():
-        raise UserError(f"{out}: export destination is the model folder itself; choose another folder")
-    existing = sorted(p.name for p in out.iterdir()) if out.is_dir() else []
-    if existing and not force:
-        raise UserError(f"{out}: export folder is not empty ({len(existing)} entries); use --force to "
-                        "replace a previous export")
-    if existing and not set(existing) <= set(EXPORT_FILES):
-        raise UserError(f"{out}: holds files other than an export's ({', '.join(existing[:5])}); --force "
-                        "only replaces a previous export, choose an empty or new folder")
-    try:
-        out.parent.mkdir(parents=True, exist_ok=True)
-        tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".tmp", dir=out.parent))
-    except OSError as exc:
-        raise UserError(f"{out}: cannot create the export folder ({exc.strerror or exc})") from None
-    old = None
-    try:
-        _write_export(model, tmp)
-        if out.is_dir():
-            old = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".old", dir=out.parent))
-            os.replace(out, old)
-        try:
-            os.replace(tmp, out)
-        except OSError:
-            if old is not None:
-                os.replace(old, out)
-                old = None
-            raise
-        fsync_dir(out.parent)
-    except OSError as exc:
-        raise UserError(f"{out}: cannot write the export ({exc.strerror or exc})") from None
-    finally:
-        if tmp.exists():
-            shutil.rmtree(tmp, ignore_errors=True)
-        if old is not None:
-            shutil.rmtree(old, ignore_errors=True)
-    return out
+    return _build(folder, *read_export(folder, meta))
 
 
 # ----------------------------------------------------------------------------------------------
@@ -544,7 +312,7 @@ def inspect_model(path: str | Path, top: int = 10) -> dict:
     ``calibration``, ``negative_keep_rate``, ``options``, ``summary`` and ``holdout``.
     Raises UserError like :func:`load_model`.
     """
-    folder = _model_folder(path)
+    folder = model_folder(path)
     model = load_model(folder)
     form = "training" if _read_meta(folder)["format"] == TRAINING_FORMAT else "export"
     files = (META_FILE, ARRAYS_FILE) if form == "training" else EXPORT_FILES
@@ -577,47 +345,3 @@ def inspect_model(path: str | Path, top: int = 10) -> dict:
         "summary": model.info["summary"],
         "holdout": model.info["holdout"],
     })
-
-
-def _fmt(v) -> str:
-    if v is None:
-        return "-"
-    if isinstance(v, float):
-        return f"{v:.6g}"
-    return str(v)
-
-
-def format_inspect(d: dict) -> str:
-    """Render an :func:`inspect_model` dict as compact plain text (one fact per line, weights as a
-    small table with up to three example tokens each, as the reader recorded them).
-    Returns the text (ending in a newline); raises KeyError when ``d`` lacks a key of inspect_model."""
-    lines = [f"model      {d['path']} ({d['form']} form, {d['bytes']:,} bytes on disk)",
-             f"loss       {d['loss']}; probabilities: "
-             + ("yes" if d["has_probability"] else "no (margins only)")
-             + (f"; Platt a={d['calibration']['a']:.6g} b={d['calibration']['b']:.6g}" if d["calibration"] else ""),
-             f"intercept  {d['intercept']:.6g} (negative keep rate {d['negative_keep_rate']:g})",
-             f"buckets    {d['buckets']:,} (2^{d['bits']}), non-zero {d['nonzero']:,} ({100 * d['nonzero_share']:.2f}%)"]
-    c = d["collision"]
-    if c is None:
-        lines.append("tokens     distinct count not recorded; collision rate unknown")
-    else:
-        lines.append(f"tokens     ~{c['tokens']:,} distinct (estimated from the non-zero buckets); expected "
-                     f"{100 * c['shared_bucket_share']:.2f}% of the occupied buckets hold two or more")
-    for title, rows in (("largest positive weights", d["top_positive"]), ("largest negative weights", d["top_negative"])):
-        lines.append(f"{title}:")
-        if not rows:
-            lines.append("  (none)")
-        for r in rows:
-            ex = ", ".join(r["examples"][:3]) or "(no example recorded)"
-            lines.append(f"  {r['weight']:+11.5f}  bucket {r['bucket']:>10}  {ex}")
-    if d["options"]:
-        lines.append("options    " + ", ".join(f"{k}={_fmt(v)}" for k, v in sorted(d["options"].items())))
-    if d["summary"]:
-        lines.append("training   " + ", ".join(f"{k}={_fmt(v)}" for k, v in sorted(d["summary"].items())
-                                               if not isinstance(v, (dict, list))))
-    h = d["holdout"]
-    if h:
-        keys = [k for k in ("rows", "log_loss", "normalized_entropy", "auc", "calibration_ratio", "error_rate")
-                if k in h]
-        lines.append("holdout    " + ", ".join(f"{k}={_fmt(h[k])}" for k in keys))
-    return "\n".join(lines) + "\n"

@@ -16,7 +16,8 @@ import pyarrow.parquet as pq
 from trainer.atomic import atomic_path
 from trainer.errors import UserError
 from trainer.model import Model, load_model
-from trainer.reader import Reader, parse_day
+from trainer.reader.files import parse_day
+from trainer.reader.stream import Reader
 
 SCORE = "score"
 PROBABILITY = "probability"

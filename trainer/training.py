@@ -1,15 +1,6 @@
 """The pass loop: progressive validation, per-pass holdout evaluation, early stop, checkpoints, resume.
 
-One training run owns one model folder:
-
-- ``run.json``: spec, options and fingerprint of the run (written first, so another run is refused);
-  while a run works in the folder it holds an exclusive ``flock`` on the folder, released by the
-  kernel when the process ends however it ends, so a live run is never disturbed by another;
-- ``checkpoint.bin``: the complete state (``trainer.checkpoint``), every ``checkpoint_every`` rows
-  and at each pass end;
-- ``metrics.jsonl``: one line per finished pass (progressive loss, holdout metrics);
-- ``progress.json``: the progressive-validation curve;
-- ``model.json`` + ``model.npz``: the model (the best pass's when a holdout decides).
+One training run owns one model folder, whose files ``trainer.run_folder`` reads and writes.
 
 A refused run leaves nothing behind: when a UserError stops a run before it wrote a checkpoint, the
 files it wrote are removed (and the folder, when the run created it); after a checkpoint the folder
@@ -25,10 +16,7 @@ from __future__ import annotations
 
 import dataclasses
 import datetime as dt
-import fcntl
-import json
 import math
-import os
 import signal
 import sys
 import time
@@ -38,19 +26,17 @@ from pathlib import Path
 import numpy as np
 from tqdm import tqdm
 
-from trainer.atomic import write_atomic
-from trainer.checkpoint import load_checkpoint, save_checkpoint
 from trainer.errors import Diverged, Interrupted, UserError
-from trainer.hashing import hash_bytes
 from trainer.evaluation import evaluate
+from trainer.hashing import hash_bytes
 from trainer.metrics import fit_platt
-from trainer.model import Model, jsonable, load_model
-from trainer.reader import BucketExamples, Position, Reader
+from trainer.model import Model
+from trainer.reader.examples import BucketExamples
+from trainer.reader.stream import Position, Reader
+from trainer.run_folder import RunFolder
 from trainer.solvers import check_choice, check_float, check_int, make_solver, SOLVER_NAMES
 from trainer.spec import Spec
 
-RUN_FILES = ("run.json", "checkpoint.bin", "metrics.jsonl", "progress.json", "model.json", "model.npz",
-             "report.html")
 PROGRESS_POINTS_PER_PASS = 200
 #: Platt scaling of squared-hinge models is fitted on at most this many holdout rows (in file
 #: order), so memory does not grow with the holdout.
@@ -134,6 +120,30 @@ class _State:
     negatives: int = 0
 
 
+@dataclass
+class TrainResult:
+    """What a finished training run did, in the manner of ``scipy.optimize.OptimizeResult``.
+
+    ``model``: the final Model (the best pass's when a holdout decides); ``model_dir``: the model
+    folder it was written to; ``passes``: passes finished (also by earlier sessions of a resumed
+    run); ``per_pass``: one record per finished pass as in ``metrics.jsonl`` (``pass``, ``rows``,
+    ``rows_total``, ``progressive_loss``, ``holdout``, ``train_seconds``, ``eval_seconds``);
+    ``best_pass``: the pass of the best holdout loss (None without a holdout); ``stopped_early`` and
+    ``stopping_reason``: why training ended; ``train_seconds`` / ``eval_seconds``: the passes' time
+    reading and stepping / evaluating the holdout, summed.
+    """
+
+    model: Model
+    model_dir: Path
+    passes: int
+    per_pass: list[dict]
+    best_pass: int | None
+    stopped_early: bool
+    stopping_reason: str
+    train_seconds: float
+    eval_seconds: float
+
+
 class _StopFlag:
     """Turns SIGINT/SIGTERM into a flag the loop checks between steps, so a step is never cut."""
 
@@ -165,7 +175,7 @@ def _holdout_score(summary: dict, loss: str) -> float:
 
 
 class Trainer:
-    """One training run into ``out``; ``run()`` returns the final Model.
+    """One training run into ``out``; ``run()`` returns its :class:`TrainResult`.
 
     ``spec``: the feature spec; ``data``: training log path; ``holdout``: holdout log path or None
     (with ``options.holdout_start/end`` it may be the training path itself); ``resume``: continue
@@ -180,7 +190,7 @@ class Trainer:
                  holdout: str | Path | None = None, resume: bool = False, force: bool = False,
                  quiet: bool = False):
         options.validate()
-        self.spec, self.opt, self.out = spec, options, Path(out)
+        self.spec, self.opt = spec, options
         self.quiet = quiet
         self.data = str(data)
         self.holdout_path = str(holdout) if holdout is not None else (
@@ -188,23 +198,23 @@ class Trainer:
         self.reader = Reader(spec, data, options.start, options.end, batch_rows=options.batch_rows,
                              shuffle_rows=options.shuffle_buffer, seed=options.seed,
                              negative_keep_rate=options.negative_keep_rate,
-                             skip_bad_labels=options.skip_bad_labels, examples=BucketExamples(spec.n_buckets))
+                             skip_bad_labels=options.skip_bad_labels)
         self.holdout = (Reader(spec, self.holdout_path, options.holdout_start, options.holdout_end,
                                batch_rows=65536, skip_bad_labels=options.skip_bad_labels)
                         if self.holdout_path else None)
         self.solver = make_solver(options.solver, spec.n_buckets, options.loss, options.l2_strength,
                                   history=options.history, step0=options.step0, seed=options.seed)
         self.state = _State()
-        self.ckpt = self.out / "checkpoint.bin"
+        self.folder = RunFolder(out)
         self.resume = resume
-        self._lock_fd: int | None = None
-        self._created_dirs: list[Path] = []
+        self.examples = BucketExamples(spec.n_buckets)
         self._saved: tuple[int, int] | None = None
         try:
             self._prepare_folder(force)
         except BaseException:
-            self._release()
+            self.folder.release()
             raise
+        self.reader.watch(self.examples)
 
     # -- the model folder -------------------------------------------------------------------------
 
@@ -223,133 +233,81 @@ class Trainer:
                 return f"{what} differs ({theirs.get(key)!r} there, {ours[key]!r} now)"
         return None
 
-    def _lock(self) -> None:
-        """Take the folder's exclusive lock, or refuse when another process holds it."""
-        fd = os.open(self.out, os.O_RDONLY)
-        try:
-            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-        except OSError:
-            os.close(fd)
-            raise UserError(f"{self.out}: another hashcurve run is working in this folder right now; "
-                            "wait for it to end or choose another --out") from None
-        self._lock_fd = fd
-
-    def _release(self) -> None:
-        if self._lock_fd is not None:
-            os.close(self._lock_fd)
-            self._lock_fd = None
-
-    def _read_run(self) -> dict | None:
-        """The folder's run.json, or None when absent or unreadable."""
-        try:
-            run = json.loads((self.out / "run.json").read_text(encoding="utf-8"))
-        except (OSError, UnicodeDecodeError, json.JSONDecodeError):
-            return None
-        return run if isinstance(run, dict) else None
-
     def _prepare_folder(self, force: bool) -> None:
-        if self.out.exists() and not self.out.is_dir():
-            raise UserError(f"{self.out}: exists and is not a folder")
-        if self.resume and not self.out.is_dir():
-            raise UserError(f"{self.ckpt}: no checkpoint to resume from (no such folder)")
-        missing = [p for p in (self.out, *self.out.parents) if not p.exists()]
-        try:
-            self.out.mkdir(parents=True, exist_ok=True)
-        except OSError as exc:
-            raise UserError(f"{self.out}: cannot create the model folder ({exc.strerror or exc})") from None
-        self._created_dirs = missing
-        self._lock()
-        for name in RUN_FILES:  # temporaries of writes a kill interrupted (no live run: the lock is ours)
-            for stale in self.out.glob(f".{name}.*.tmp"):
-                stale.unlink(missing_ok=True)
-        run = self._read_run()
-        restart = (run is not None and not self.ckpt.exists()
-                   and isinstance(run.get("fingerprint"), dict) and self._difference(run["fingerprint"]) is None)
-        if self.resume and self.ckpt.exists():
+        folder = self.folder
+        if self.resume and not folder.path.is_dir():
+            raise UserError(f"{folder.checkpoint}: no checkpoint to resume from (no such folder)")
+        folder.claim()
+        run = folder.read_run()
+        fingerprint = run.get("fingerprint") if run is not None else None
+        restart = (isinstance(fingerprint, dict) and not folder.checkpoint.exists()
+                   and self._difference(fingerprint) is None)
+        if self.resume and folder.checkpoint.exists():
             self._load_checkpoint()
             return
         if self.resume and run is None:
-            raise UserError(f"{self.ckpt}: no checkpoint to resume from")
+            raise UserError(f"{folder.checkpoint}: no checkpoint to resume from")
         if self.resume and not restart:
-            why = self._difference(run.get("fingerprint") or {}) or "run.json holds no fingerprint"
-            raise UserError(f"{self.out / 'run.json'}: cannot resume: {why}")
+            why = self._difference(fingerprint) if isinstance(fingerprint, dict) else "run.json holds no fingerprint"
+            raise UserError(f"{folder.path / 'run.json'}: cannot resume: {why}")
         if restart:
-            self.log(f"{self.out}: its run of the same spec and options ended before its first checkpoint; "
+            self.log(f"{folder.path}: its run of the same spec and options ended before its first checkpoint; "
                      "starting it again from the beginning")
             self.resume = False
-            self._remove_run_files()
-        elif any(self.out.iterdir()):
+            folder.clear()
+        elif not folder.is_empty():
             if not force:
-                why = self._difference(run["fingerprint"]) if run and isinstance(run.get("fingerprint"), dict) else None
-                raise UserError(f"{self.out}: folder is not empty (another run{'; ' + why if why else '?'}); use "
+                why = self._difference(fingerprint) if isinstance(fingerprint, dict) else None
+                raise UserError(f"{folder.path}: folder is not empty (another run{'; ' + why if why else '?'}); use "
                                 "--resume to continue it or --force to replace its files")
-            if run is None and not (self.out / "run.json").exists():
-                raise UserError(f"{self.out}: not a hashcurve model folder (no run.json); --force only "
+            if not folder.has_run_file():
+                raise UserError(f"{folder.path}: not a hashcurve model folder (no run.json); --force only "
                                 "replaces a model folder, choose an empty or new --out")
-            self._remove_run_files()
-        run = {"format": "hashcurve-run", "version": 2, "spec": self.spec.raw, "data": self.data,
-               "holdout": self.holdout_path, "options": self.opt.as_json(), "fingerprint": self._fingerprint(),
-               "created": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds")}
-        write_atomic(self.out / "run.json", [json.dumps(run, indent=2).encode()])
-
-    def _remove_run_files(self) -> None:
-        for name in RUN_FILES:
-            (self.out / name).unlink(missing_ok=True)
+            folder.clear()
+        folder.write_run({"format": "hashcurve-run", "version": 2, "spec": self.spec.raw, "data": self.data,
+                          "holdout": self.holdout_path, "options": self.opt.as_json(),
+                          "fingerprint": self._fingerprint(),
+                          "created": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds")})
 
     def _load_checkpoint(self) -> None:
-        arrays, meta = load_checkpoint(self.ckpt)
+        arrays, meta = self.folder.read_checkpoint()
         why = self._difference(meta["fingerprint"])
         if why:
-            raise UserError(f"{self.ckpt}: cannot resume: {why}")
+            raise UserError(f"{self.folder.checkpoint}: cannot resume: {why}")
         self.solver.load_state({k[7:]: (v.item() if v.ndim == 0 else v)
                                 for k, v in arrays.items() if k.startswith("solver.")})
         ex = meta["examples"]
-        self.reader.examples = self.reader.featurizer.examples = BucketExamples(
-            self.spec.n_buckets, max_rows=ex["rows_left"], values=ex["values"])
+        self.examples = BucketExamples(self.spec.n_buckets, max_rows=ex["rows_left"], values=ex["values"])
         s = meta["state"]
         s["position"] = Position(*s["position"]) if s["position"] is not None else None
         self.state = _State(**s)
         self._saved = (self.state.pass_index, self.state.rows_in_pass)
-        self._trim_metrics()
+        self.folder.keep_metrics(self.state.pass_index)
 
     def _refused(self, exc: UserError) -> UserError:
         """After a UserError stopped the run: remove what a run without a checkpoint wrote (and the
         folders it created), or keep a checkpointed folder; return the error with what was kept."""
         if self._saved is None:
-            self._remove_run_files()
-            for folder in self._created_dirs:
-                try:
-                    folder.rmdir()
-                except OSError:
-                    break
+            self.folder.remove_new()
             kept = "nothing was kept (no checkpoint had been written)"
         else:
             p, rows = self._saved
             where = f"after pass {p}" if rows == 0 else f"in pass {p + 1} after {rows:,} rows"
-            kept = f"{self.ckpt} ({where}) is kept"
-            if (self.out / "model.json").exists() and self.state.best_pass:
+            kept = f"{self.folder.checkpoint} ({where}) is kept"
+            if (self.folder.path / "model.json").exists() and self.state.best_pass:
                 kept += f", and model.json holds the weights of pass {self.state.best_pass}"
             kept += "; continue with --resume once the cause is fixed, or start over with --force"
         return type(exc)(f"{exc}; {kept}")
-
-    def _trim_metrics(self) -> None:
-        """After a resume, drop metric lines of passes the checkpoint does not count as finished."""
-        path = self.out / "metrics.jsonl"
-        if not path.exists():
-            return
-        lines = [ln for ln in path.read_text().splitlines()
-                 if ln.strip() and json.loads(ln)["pass"] <= self.state.pass_index]
-        write_atomic(path, [("\n".join(lines) + "\n" if lines else "").encode()])
 
     def _save_checkpoint(self) -> None:
         arrays = {f"solver.{k}": np.asarray(v) for k, v in self.solver.state(copy=False).items()}
         s = dataclasses.asdict(self.state)
         s["position"] = list(dataclasses.astuple(self.state.position)) if self.state.position else None
-        ex = self.reader.examples
-        save_checkpoint(self.ckpt, arrays, {"fingerprint": self._fingerprint(), "state": s,
-                                            "examples": {"values": ex.values, "rows_left": ex.rows_left}})
+        ex = self.examples
+        self.folder.write_checkpoint(arrays, {"fingerprint": self._fingerprint(), "state": s,
+                                              "examples": {"values": ex.values, "rows_left": ex.rows_left}},
+                                     self.state.progress)
         self._saved = (self.state.pass_index, self.state.rows_in_pass)
-        write_atomic(self.out / "progress.json", [json.dumps(self.state.progress).encode()])
 
     # -- the model --------------------------------------------------------------------------------
 
@@ -369,13 +327,14 @@ class Trainer:
                             "steps": self.state.steps, "step0": self.solver.step0, "data": self.data,
                             "holdout_data": self.holdout_path,
                             "stopped_early": self.state.stopped_early, "best_pass": self.state.best_pass},
-                "holdout": holdout, "calibration": calibration, "examples": self.reader.examples.values}
+                "holdout": holdout, "calibration": calibration, "examples": self.examples.values}
         return Model(self.spec, weights, intercept, self.opt.loss, info)
 
     # -- the loop ---------------------------------------------------------------------------------
 
-    def run(self) -> Model:
-        """Train to the requested passes (or an early stop) and return the final model.
+    def run(self) -> TrainResult:
+        """Train to the requested passes (or an early stop); return the final model and what the run
+        did (:class:`TrainResult`).
 
         Raises Interrupted after saving a checkpoint on SIGINT/SIGTERM, and Diverged (a UserError) or
         UserError for bad data met on the way, whose message says what the folder keeps (see the
@@ -390,11 +349,11 @@ class Trainer:
                     started = time.monotonic()
                     self._one_pass(stop)
                     self._finish_pass(time.monotonic() - started)
-            return self._final_model()
+            return self._result(self._final_model())
         except UserError as exc:
             raise self._refused(exc) from None
         finally:
-            self._release()
+            self.folder.release()
 
     def _diverged(self, exc: Diverged, batch) -> Diverged:
         """The solver's Diverged message, naming a numeric column without edges whose huge values in
@@ -457,7 +416,7 @@ class Trainer:
                 self._save_checkpoint()
                 name = signal.Signals(stop.signal).name
                 raise Interrupted(f"{name}: stopped in pass {st.pass_index + 1} after {st.rows_in_pass:,} rows; "
-                                  f"checkpoint saved in {self.ckpt}; continue with the same command plus --resume")
+                                  f"checkpoint saved in {self.folder.checkpoint}; continue with the same command plus --resume")
         bar.close()
 
     def _finish_pass(self, train_seconds: float) -> None:
@@ -478,14 +437,12 @@ class Trainer:
             score = _holdout_score(holdout, self.opt.loss)
             if st.best_score is None or score < st.best_score:
                 st.best_score, st.best_pass, st.bad_passes = score, st.pass_index, 0
-                self.current_model(holdout).save(self.out)
+                self.folder.save_model(self.current_model(holdout))
             else:
                 st.bad_passes += 1
                 if st.bad_passes >= self.opt.patience and st.pass_index < self.opt.epochs:
                     st.stopped_early = True
-        path = self.out / "metrics.jsonl"
-        before = path.read_bytes() if path.exists() else b""
-        write_atomic(path, [before, (json.dumps(jsonable(record), allow_nan=False) + "\n").encode()])
+        self.folder.append_metrics(record)
         self.log(self._table_row(record))
         ratio = _off_calibration(holdout)
         if ratio is not None:
@@ -502,7 +459,7 @@ class Trainer:
         if self.holdout is None:
             model = self.current_model()
         else:
-            model = load_model(self.out)
+            model = self.folder.load_model()
         if self.opt.loss == "squared-hinge" and self.holdout is not None:
             margins, labels, weights = [], [], []
             rows = 0
@@ -519,8 +476,19 @@ class Trainer:
                           {**model.info, "calibration": calibration})
         model.info["summary"].update({"passes": st.pass_index, "stopped_early": st.stopped_early,
                                       "best_pass": st.best_pass})
-        model.save(self.out)
+        self.folder.save_model(model)
         return model
+
+    def _result(self, model: Model) -> TrainResult:
+        st = self.state
+        records = self.folder.metrics()
+        if st.stopped_early:
+            reason = (f"early stop: holdout loss did not improve for {st.bad_passes} pass(es); "
+                      f"kept the weights of pass {st.best_pass}")
+        else:
+            reason = f"reached --epochs {self.opt.epochs}"
+        return TrainResult(model, self.folder.path, st.pass_index, records, st.best_pass, st.stopped_early, reason,
+                           sum(r["train_seconds"] for r in records), sum(r["eval_seconds"] for r in records))
 
     # -- the per-pass table -------------------------------------------------------------------------
 

@@ -14,11 +14,11 @@ from __future__ import annotations
 
 import numpy as np
 
-from trainer.kernels import adagrad_candidate, adagrad_commit
-from trainer.solvers import LinearSolver, check_float
+from trainer.solvers import check_float
+from trainer.solvers._first_order import RULE_ADAGRAD, FirstOrderSolver
 
 
-class AdaGrad(LinearSolver):
+class AdaGrad(FirstOrderSolver):
     """Diagonal AdaGrad (composite mirror descent form).
 
     Options: ``step0`` = eta ((0, inf), default 0.2, constant; chosen on the benchmark of
@@ -29,6 +29,7 @@ class AdaGrad(LinearSolver):
 
     method = "adagrad"
     OPTIONS = ("delta",)
+    rule = RULE_ADAGRAD
 
     def __init__(self, n_features: int, loss: str, l2: float, *, step0: float | None = None,
                  delta: float = 1e-6):
@@ -40,22 +41,11 @@ class AdaGrad(LinearSolver):
     def _options(self) -> dict:
         return {"step0": self.step0, "delta": self.delta}
 
-    def step(self, batch) -> float:
-        """One AdaGrad update from ``batch``; returns the weighted mean data loss before the update.
+    def _step_size(self) -> float:
+        return self.step0
 
-        Raises ``Diverged`` (state unchanged) when the loss, gradient or new weights are non-finite,
-        and ``ValueError`` for an empty batch or a bucket id out of range.
-        """
-        g = self._gradient(batch)
-        m = g.cols.shape[0] + 1
-        new_x = np.empty(m, dtype=np.float64)
-        new_acc = np.empty(m, dtype=np.float64)
-        if not adagrad_candidate(self._x, self._acc, self.n, self.step0, self.l2, self.delta, g.cols, g.gsp,
-                                 g.gb, new_x, new_acc):
-            self._diverged("the new weights")
-        adagrad_commit(self._x, self._acc, self.n, self.step0, self.l2, self.delta, g.cols, new_x, new_acc)
-        self.t += 1
-        return g.loss
+    def _accumulators(self) -> np.ndarray:
+        return self._acc
 
     def _extra_state(self) -> dict:
         return {"accumulators": self._acc}

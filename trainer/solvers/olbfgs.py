@@ -11,7 +11,8 @@ Each step, on one batch:
    two-loop recursion ("Updating Quasi-Newton Matrices with Limited Storage", Mathematics of
    Computation, 1980) taken from a small matrix of s_i.y_k products kept pair by pair (the
    vector-free form of "Large-scale L-BFGS using MapReduce", NeurIPS 2014): two dense passes over
-   the stored steps per step, split in chunks over all cores (``trainer.kernels.lbfgs_direction``);
+   the stored steps per step, split in chunks over all cores
+   (``trainer.solvers._olbfgs_kernels.lbfgs_direction``);
 3. x_{t+1} = x_t - eps d, where eps starts at the schedule eps_t = step0 * t0 / (t0 + t) and is
    halved until the Armijo condition F_B(x - eps d) <= F_B(x) - armijo * eps * g.d holds on the
    batch objective F_B (backtracking line search of "Painless Stochastic Gradient: Interpolation,
@@ -69,10 +70,10 @@ import time
 import numpy as np
 
 from trainer.errors import UserError
-from trainer.kernels import (CHUNK, chunk_pointers, commit_step, curvatures_into, dot, fold_diagonal, lbfgs_direction,
-                             line_loss, line_residuals, margins_into, pair_products, record_pair, scatter_compact,
-                             scatter_compact_squares)
+from trainer.kernels import curvatures_into, dot, margins_into, scatter_compact, scatter_compact_squares
 from trainer.solvers import LinearSolver, check_choice, check_float, check_int, schedule
+from trainer.solvers._olbfgs_kernels import (CHUNK, chunk_pointers, commit_step, fold_diagonal, lbfgs_direction,
+                                             line_loss, line_residuals, pair_products, record_pair)
 
 
 class OnlineLBFGS(LinearSolver):

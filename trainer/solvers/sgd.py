@@ -8,13 +8,11 @@ the l2 shrink.
 
 from __future__ import annotations
 
-import numpy as np
-
-from trainer.kernels import sgd_candidate, sgd_commit
-from trainer.solvers import LinearSolver, check_float, schedule
+from trainer.solvers import check_float, schedule
+from trainer.solvers._first_order import RULE_SGD, FirstOrderSolver
 
 
-class SGD(LinearSolver):
+class SGD(FirstOrderSolver):
     """Stochastic gradient descent with a decaying step.
 
     Options: ``step0`` ((0, inf), default 10) and ``t0`` ((0, 1e12], default 100 steps), chosen on
@@ -24,6 +22,7 @@ class SGD(LinearSolver):
 
     method = "sgd"
     OPTIONS = ("t0",)
+    rule = RULE_SGD
 
     def __init__(self, n_features: int, loss: str, l2: float, *, step0: float | None = None,
                  t0: float = 100.0):
@@ -34,17 +33,5 @@ class SGD(LinearSolver):
     def _options(self) -> dict:
         return {"step0": self.step0, "t0": self.t0}
 
-    def step(self, batch) -> float:
-        """One SGD update from ``batch``; returns the weighted mean data loss before the update.
-
-        Raises ``Diverged`` (state unchanged) when the loss, gradient or new weights are non-finite,
-        and ``ValueError`` for an empty batch or a bucket id out of range.
-        """
-        g = self._gradient(batch)
-        eps = schedule(self.step0, self.t0, self.t)
-        new_vals = np.empty(g.cols.shape[0] + 1, dtype=np.float64)
-        if not sgd_candidate(self._x, self.n, eps, self.l2, g.cols, g.gsp, g.gb, new_vals):
-            self._diverged("the new weights")
-        sgd_commit(self._x, self.n, eps, self.l2, g.cols, new_vals)
-        self.t += 1
-        return g.loss
+    def _step_size(self) -> float:
+        return schedule(self.step0, self.t0, self.t)

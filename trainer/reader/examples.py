@@ -1,0 +1,85 @@
+"""Readable token values per bucket, for reports: an observer of the featurizer that training attaches
+(:meth:`trainer.reader.featurize.Featurizer.watch`) and saves with its checkpoint."""
+
+from __future__ import annotations
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from trainer.reader.featurize import TokenTable
+
+
+class BucketExamples:
+    """A few readable token values per bucket, from the first ``max_rows`` rows hashed, so reports can
+    say which field values a weight came from: at most ``per_bucket`` values per bucket and
+    ``max_values`` in all (frequent values come first, as they fill the first chunks)."""
+
+    def __init__(self, n_buckets: int, per_bucket: int = 2, max_rows: int = 131_072,
+                 values: dict[str, list[str]] | None = None, max_values: int = 100_000):
+        self.per_bucket, self.rows_left, self.max_values = per_bucket, max_rows, max_values
+        self.total = 0
+        self.values: dict[str, list[str]] = values or {}
+        self.count = np.zeros(n_buckets, dtype=np.uint8)
+        for b, v in self.values.items():
+            self.count[int(b)] = len(v)
+            self.total += len(v)
+
+    def observe(self, tables: list[TokenTable], n_rows: int) -> None:
+        """Record values from a chunk of ``n_rows`` rows hashed into the token ``tables`` (the
+        featurizer's observer protocol); nothing once ``max_rows`` rows were seen."""
+        if self.rows_left <= 0:
+            return
+        for tok in tables:
+            self.add(tok, tok.buckets)
+        self.rows_left -= n_rows
+
+    def add(self, tok: TokenTable, buckets: np.ndarray) -> None:
+        """Record values of the tokens ``tok`` uses whose buckets have room."""
+        used = np.zeros(tok.off.shape[0] - 1, dtype=bool)
+        used[tok.ids] = True
+        ids = np.flatnonzero(used)
+        b = buckets[ids]
+        room = self.count[b] < self.per_bucket
+        ids, b = ids[room], b[room]
+        _, first = np.unique(b, return_index=True)
+        first = first[: max(self.max_values - self.total, 0)]
+        ids, b = ids[first], b[first]
+        added = []
+        values = self.values
+        for text, bucket in zip(_token_texts(tok, ids), b.tolist()):
+            key = str(bucket)
+            seen = values.get(key)
+            if seen is None:
+                values[key] = [text]
+            elif text not in seen:
+                seen.append(text)
+            else:
+                continue
+            added.append(bucket)
+        self.count[np.asarray(added, dtype=np.int64)] += 1
+        self.total += len(added)
+
+
+def _readable(text: str) -> str:
+    """A token as reports show it: field = value, crossed parts joined by ' & '."""
+    return text.replace("\x1f", "=").replace("\x1e", " & ")
+
+
+def _token_texts(tok: TokenTable, ids: np.ndarray) -> list[str]:
+    """Readable texts of tokens ``ids`` of a token table (prefix + bytes), decoded in one Arrow call;
+    bytes that are not UTF-8 are decoded one by one with replacement characters."""
+    starts, lengths = tok.off[ids], tok.off[ids + 1] - tok.off[ids]
+    offsets = np.zeros(len(ids) + 1, dtype=np.int64)
+    np.cumsum(lengths, out=offsets[1:])
+    gather = np.repeat(starts - offsets[:-1], lengths) + np.arange(offsets[-1])
+    data = tok.buf[gather]
+    prefix = _readable(tok.prefix.tobytes().decode("utf-8", errors="replace"))
+    arr = pa.LargeStringArray.from_buffers(len(ids), pa.py_buffer(offsets), pa.py_buffer(data))
+    try:
+        arr.validate(full=True)
+    except pa.ArrowInvalid:
+        return [prefix + _readable(data[offsets[i]:offsets[i + 1]].tobytes().decode("utf-8", errors="replace"))
+                for i in range(len(ids))]
+    arr = pc.replace_substring(pc.replace_substring(arr, "\x1f", "="), "\x1e", " & ")
+    return [prefix + t for t in arr.to_pylist()]

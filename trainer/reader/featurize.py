@@ -1,0 +1,274 @@
+"""Arrow columns -> tokens -> buckets: one chunk of rows hashed into CSR, and its labels and weights.
+
+Each feature's column becomes a token table (dictionary-aware: each distinct value of a dictionary
+or non-string column is hashed once), crosses combine token tables, and the tables' buckets
+(``trainer.hashing``) are scattered into the rows' CSR entries. Observers attached with
+:meth:`Featurizer.watch` see every hashed token table (``trainer.reader.examples`` records readable
+values per bucket that way).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from trainer.errors import UserError
+from trainer.hashing import cross_tokens, hash_tokens
+from trainer.reader._kernels import scatter_rows
+from trainer.spec import Feature, Spec
+
+_EMPTY_BYTES = np.zeros(0, dtype=np.uint8)
+
+
+@dataclass
+class TokenTable:
+    """A feature's tokens for one chunk: row r owns ids[ptr[r]:ptr[r+1]] into a token table whose
+    token k is prefix + buf[off[k]:off[k+1]] and hashes to buckets[k]; ``values`` per entry or None
+    (all 1.0); ``dictionary``, the Arrow dictionary the table came from, if any."""
+
+    ptr: np.ndarray
+    ids: np.ndarray
+    prefix: np.ndarray
+    buf: np.ndarray
+    off: np.ndarray
+    buckets: np.ndarray | None = None
+    values: np.ndarray | None = None
+    dictionary: pa.Array | None = None
+
+
+def _valid_mask(arr: pa.Array) -> np.ndarray:
+    if arr.null_count == 0:
+        return np.ones(len(arr), dtype=bool)
+    return arr.is_valid().to_numpy(zero_copy_only=False)
+
+
+def _string_table(arr: pa.Array) -> tuple[np.ndarray, np.ndarray]:
+    """(bytes, int64 offsets) of a plain string array, without copying the bytes."""
+    bufs = arr.buffers()
+    odt = np.int64 if pa.types.is_large_string(arr.type) else np.int32
+    off = np.frombuffer(bufs[1], dtype=odt)[arr.offset: arr.offset + len(arr) + 1].astype(np.int64)
+    data = np.frombuffer(bufs[2], dtype=np.uint8) if bufs[2] is not None else _EMPTY_BYTES
+    return data, off
+
+
+def _canonical_strings(arr: pa.Array, where: str) -> pa.Array:
+    """Values as canonical strings (the hashing contract): strings as they are, integers in decimal,
+    booleans true/false, dates YYYY-MM-DD. Other types raise UserError."""
+    t = arr.type
+    if pa.types.is_string(t) or pa.types.is_large_string(t):
+        return arr
+    if pa.types.is_integer(t) or pa.types.is_boolean(t) or pa.types.is_date32(t):
+        return pc.cast(arr, pa.string())
+    if pa.types.is_date64(t):
+        return pc.cast(pc.cast(arr, pa.date32()), pa.string())
+    raise UserError(f"{where} is {t}; categorical and multi columns take strings, integers, booleans "
+                    "or dates (cast floats or timestamps before hashing)")
+
+
+def _token_source(values: pa.Array, where: str):
+    """(buf, off, codes, dictionary): a token table of canonical strings, and per-element codes into it
+    when the column is dictionary-encoded or not made of strings (each distinct value hashed once),
+    else None (one token per element); ``dictionary`` is the column's own Arrow dictionary or None."""
+    t = values.type
+    if pa.types.is_string(t) or pa.types.is_large_string(t):
+        buf, off = _string_table(values)
+        return buf, off, None, None
+    encoded = values if pa.types.is_dictionary(t) else pc.dictionary_encode(values)
+    if encoded is values:
+        codes = pc.min_max(values.indices).as_py()
+        if codes["min"] is not None and (codes["min"] < 0 or codes["max"] >= len(values.dictionary)):
+            raise UserError(f"{where} holds dictionary codes outside its dictionary; the file is damaged")
+    buf, off = _string_table(_canonical_strings(encoded.dictionary, where))
+    codes = encoded.indices.fill_null(0).to_numpy(zero_copy_only=False).astype(np.int64, copy=False)
+    return buf, off, codes, encoded.dictionary if encoded is values else None
+
+
+def _categorical_tokens(arr: pa.Array, prefix: np.ndarray, where: str) -> TokenTable:
+    valid = _valid_mask(arr)
+    buf, off, codes, dictionary = _token_source(arr, where)
+    rows = np.flatnonzero(valid)
+    ids = rows if codes is None else codes[rows]
+    ptr = np.zeros(len(arr) + 1, dtype=np.int64)
+    np.cumsum(valid, out=ptr[1:])
+    return TokenTable(ptr, ids.astype(np.int64, copy=False), prefix, buf, off, dictionary=dictionary)
+
+
+def _multi_tokens(arr: pa.Array, prefix: np.ndarray, where: str) -> TokenTable:
+    if not (pa.types.is_list(arr.type) or pa.types.is_large_list(arr.type)):
+        raise UserError(f"{where} is {arr.type}; multi features take list columns")
+    loff = arr.offsets.to_numpy(zero_copy_only=False).astype(np.int64)
+    lengths = np.diff(loff)
+    row_valid = _valid_mask(arr)
+    lengths = np.where(row_valid, lengths, 0) if arr.null_count else lengths
+    child = arr.values
+    lo, hi = int(loff[0]), int(loff[-1])
+    elem_valid = _valid_mask(child)[lo:hi]
+    if arr.null_count:
+        in_valid_row = np.repeat(row_valid, np.diff(loff))
+        elem_valid = elem_valid & in_valid_row
+    buf, off, codes, dictionary = _token_source(child, where)
+    elems = lo + np.flatnonzero(elem_valid)
+    ids = elems if codes is None else codes[elems]
+    cv = np.zeros(hi - lo + 1, dtype=np.int64)
+    np.cumsum(elem_valid, out=cv[1:])
+    ptr = cv[loff - lo]
+    return TokenTable(ptr, ids.astype(np.int64, copy=False), prefix, buf, off, dictionary=dictionary)
+
+
+def _numeric_values(arr: pa.Array, where: str) -> tuple[np.ndarray, np.ndarray]:
+    """(valid mask, float64 values of the valid rows); NaN or infinite values raise UserError."""
+    t = arr.type
+    if not (pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t)):
+        raise UserError(f"{where} is {t}; numeric features take integer or floating columns")
+    valid = _valid_mask(arr)
+    x = pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False)[valid]
+    bad = ~np.isfinite(x)
+    if bad.any():
+        raise UserError(f"{where} has {int(bad.sum())} NaN or infinite values (e.g. {x[bad][0]}); "
+                        "numeric features must be finite or null")
+    return valid, x
+
+
+def _numeric_tokens(arr: pa.Array, feat: Feature, prefix: np.ndarray, where: str) -> TokenTable:
+    valid, x = _numeric_values(arr, where)
+    ptr = np.zeros(len(arr) + 1, dtype=np.int64)
+    np.cumsum(valid, out=ptr[1:])
+    if feat.edges is not None:
+        labels = [f"#{i}".encode() for i in range(len(feat.edges) + 1)]
+        buf = np.frombuffer(b"".join(labels), dtype=np.uint8)
+        off = np.zeros(len(labels) + 1, dtype=np.int64)
+        np.cumsum([len(s) for s in labels], out=off[1:])
+        ids = np.searchsorted(np.asarray(feat.edges), x, side="right").astype(np.int64)
+        return TokenTable(ptr, ids, prefix, buf, off)
+    values = np.sign(x) * np.log1p(np.abs(x)) if feat.transform == "log1p" else x
+    name = prefix[:-1]
+    return TokenTable(ptr, np.zeros(x.size, dtype=np.int64), name, _EMPTY_BYTES,
+                   np.zeros(2, dtype=np.int64), values=values)
+
+
+class Featurizer:
+    """Hashes the spec's features of a chunk of rows into CSR (``trainer.hashing`` contract).
+
+    Observers attached with :meth:`watch` are shown every chunk's hashed token tables."""
+
+    def __init__(self, spec: Spec):
+        self.spec = spec
+        self.observers: list = []
+        self._last_dictionary: dict[str, tuple[pa.Array, np.ndarray]] = {}
+        self.seed = np.uint32(spec.seed)
+        self.mask = np.uint32(spec.n_buckets - 1)
+        self.prefixes = {f.column: np.frombuffer(f.column.encode("utf-8") + b"\x1f", dtype=np.uint8)
+                         for f in spec.features}
+
+    def watch(self, observer) -> None:
+        """Show ``observer`` every chunk hashed from now on: ``observer.observe(tables, n_rows)`` is
+        called with the chunk's token tables (their ``buckets`` set) and its row count."""
+        self.observers.append(observer)
+
+    def _feature_tokens(self, feat: Feature, arr: pa.Array, where: str) -> TokenTable:
+        prefix = self.prefixes[feat.column]
+        if feat.kind == "categorical":
+            if pa.types.is_list(arr.type) or pa.types.is_large_list(arr.type):
+                raise UserError(f"{where} is a list column; declare it as kind 'multi'")
+            return _categorical_tokens(arr, prefix, where)
+        if feat.kind == "multi":
+            return _multi_tokens(arr, prefix, where)
+        return _numeric_tokens(arr, feat, prefix, where)
+
+    def _hash(self, tok: TokenTable, column: str | None) -> np.ndarray:
+        """Buckets of the token table; a column's dictionary equal to the one of the previous chunk
+        (Parquet repeats a row group's dictionary in every batch read from it) is not hashed again."""
+        if tok.buckets is None:
+            last = self._last_dictionary.get(column)
+            if tok.dictionary is not None and last is not None and last[0].equals(tok.dictionary):
+                tok.buckets = last[1]
+            else:
+                tok.buckets = hash_tokens(tok.prefix, tok.buf, tok.off, self.seed, self.mask)
+                if tok.dictionary is not None:
+                    self._last_dictionary[column] = (tok.dictionary, tok.buckets)
+        return tok.buckets
+
+    def transform(self, table: pa.Table | pa.RecordBatch, source: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Hash the rows of ``table`` into CSR ``(indptr int64, indices int32, data float64)``.
+
+        Row r holds the features in spec order, then the crosses. ``source`` (the file) names the
+        place in error messages. Raises UserError for a column of the wrong type or bad numerics.
+        """
+        n = table.num_rows
+        toks: dict[str, TokenTable] = {}
+        for feat in self.spec.features:
+            col = table.column(feat.column)
+            arr = col.combine_chunks() if isinstance(col, pa.ChunkedArray) else col
+            toks[feat.column] = self._feature_tokens(feat, arr, f"{source}: column '{feat.column}'")
+        parts = [toks[f.column] for f in self.spec.features]
+        names = [f.column for f in self.spec.features] + [None] * len(self.spec.crosses)
+        for cross in self.spec.crosses:
+            acc = toks[cross[0]]
+            for name in cross[1:]:
+                b = toks[name]
+                ptr, buf, off = cross_tokens(acc.ptr, acc.ids, acc.prefix, acc.buf, acc.off,
+                                             b.ptr, b.ids, b.prefix, b.buf, b.off)
+                acc = TokenTable(ptr, np.arange(ptr[-1], dtype=np.int64), _EMPTY_BYTES, buf, off)
+            parts.append(acc)
+        counts = np.zeros(n, dtype=np.int64)
+        for t in parts:
+            counts += np.diff(t.ptr)
+        indptr = np.zeros(n + 1, dtype=np.int64)
+        np.cumsum(counts, out=indptr[1:])
+        indices = np.empty(indptr[-1], dtype=np.int32)
+        data = np.empty(indptr[-1], dtype=np.float64)
+        cursor = indptr[:-1].copy()
+        empty = np.zeros(0, dtype=np.float64)
+        for name, t in zip(names, parts):
+            scatter_rows(t.ptr, t.ids, self._hash(t, name), empty if t.values is None else t.values,
+                         cursor, indices, data)
+        for observer in self.observers:
+            observer.observe(parts, n)
+        return indptr, indices, data
+
+
+def parse_labels(arr: pa.Array, spec: Spec, where: str) -> tuple[np.ndarray, np.ndarray]:
+    """(y float64 in {0,1}, ok mask): nulls and values outside the accepted set are not ok."""
+    t = arr.type
+    if pa.types.is_dictionary(t):
+        arr = arr.cast(t.value_type)
+        t = arr.type
+    valid = _valid_mask(arr)
+    if pa.types.is_boolean(t):
+        y = arr.fill_null(False).to_numpy(zero_copy_only=False).astype(np.float64)
+        return y, valid
+    if pa.types.is_integer(t) or pa.types.is_floating(t):
+        x = pc.cast(arr, pa.float64()).fill_null(0.0).to_numpy(zero_copy_only=False)
+        ok = valid & ((x == 0) | (x == 1) | (x == -1))
+        return (x == 1).astype(np.float64), ok
+    if pa.types.is_string(t) or pa.types.is_large_string(t):
+        if spec.positive is None:
+            raise UserError(f"{where} holds strings; list the positive values in spec key 'label.positive'")
+        y = pc.is_in(arr, value_set=pa.array(spec.positive)).fill_null(False).to_numpy(zero_copy_only=False)
+        ok = valid
+        if spec.negative is not None:
+            known = pc.is_in(arr, value_set=pa.array(spec.positive + spec.negative)).fill_null(False)
+            ok = valid & known.to_numpy(zero_copy_only=False)
+        return y.astype(np.float64), ok
+    raise UserError(f"{where} is {t}; labels must be 0/1, -1/1, booleans or strings")
+
+
+def accepted_labels(spec: Spec) -> str:
+    if spec.positive is None:
+        return "0/1, -1/1 or true/false"
+    neg = ", ".join(spec.negative) if spec.negative else "any other string"
+    return f"positive {', '.join(spec.positive)}; negative {neg}"
+
+
+def parse_weights(arr: pa.Array, where: str) -> np.ndarray:
+    if not (pa.types.is_integer(arr.type) or pa.types.is_floating(arr.type)):
+        raise UserError(f"{where} is {arr.type}; row weights must be numbers")
+    w = pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False)
+    bad = ~(np.isfinite(w) & (w > 0)) | ~_valid_mask(arr)
+    if bad.any():
+        raise UserError(f"{where} has {int(bad.sum())} null, non-finite or non-positive row weights "
+                        f"(e.g. {arr[int(np.flatnonzero(bad)[0])]}); weights must be finite and > 0")
+    return w

@@ -1,0 +1,167 @@
+"""A training run's model folder: its layout and the reading and writing of every file in it.
+
+One training run owns one model folder (``MODEL_DIR``):
+
+- ``run.json``: spec, options and fingerprint of the run (written first, so another run is refused);
+  while a run works in the folder it holds an exclusive ``flock`` on the folder, released by the
+  kernel when the process ends however it ends, so a live run is never disturbed by another;
+- ``checkpoint.bin``: the complete state (``trainer.checkpoint``), every ``checkpoint_every`` rows
+  and at each pass end;
+- ``metrics.jsonl``: one line per finished pass (progressive loss, holdout metrics);
+- ``progress.json``: the progressive-validation curve;
+- ``model.json`` + ``model.npz``: the model (the best pass's when a holdout decides), written by
+  :meth:`trainer.model.Model.save`;
+- ``report.html``: the report's default place.
+"""
+
+from __future__ import annotations
+
+import fcntl
+import json
+import os
+from pathlib import Path
+
+import numpy as np
+
+from trainer.atomic import write_atomic
+from trainer.checkpoint import load_checkpoint, save_checkpoint
+from trainer.errors import UserError
+from trainer.export import META_FILE
+from trainer.json_values import jsonable
+from trainer.model import ARRAYS_FILE, Model, load_model
+
+RUN_FILE = "run.json"
+CHECKPOINT_FILE = "checkpoint.bin"
+METRICS_FILE = "metrics.jsonl"
+PROGRESS_FILE = "progress.json"
+REPORT_FILE = "report.html"
+RUN_FILES = (RUN_FILE, CHECKPOINT_FILE, METRICS_FILE, PROGRESS_FILE, META_FILE, ARRAYS_FILE, REPORT_FILE)
+
+
+class RunFolder:
+    """The model folder at ``path``: where each of its files lives and how it is read and written."""
+
+    def __init__(self, path: str | Path):
+        self.path = Path(path)
+        self._lock_fd: int | None = None
+        self._made: list[Path] = []
+
+    @property
+    def checkpoint(self) -> Path:
+        """The checkpoint file's path."""
+        return self.path / CHECKPOINT_FILE
+
+    @property
+    def report(self) -> Path:
+        """The HTML report's default path."""
+        return self.path / REPORT_FILE
+
+    def claim(self) -> None:
+        """Make the folder (remembering which folders this made, for :meth:`remove_new`) and take its
+        exclusive lock; then remove the temporaries of writes that a kill interrupted (no live run
+        holds the folder). Raises UserError for a path that is a file, a folder that cannot be made,
+        or a folder another process is working in."""
+        if self.path.exists() and not self.path.is_dir():
+            raise UserError(f"{self.path}: exists and is not a folder")
+        missing = [p for p in (self.path, *self.path.parents) if not p.exists()]
+        try:
+            self.path.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise UserError(f"{self.path}: cannot create the model folder ({exc.strerror or exc})") from None
+        self._made = missing
+        fd = os.open(self.path, os.O_RDONLY)
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            os.close(fd)
+            raise UserError(f"{self.path}: another hashcurve run is working in this folder right now; "
+                            "wait for it to end or choose another --out") from None
+        self._lock_fd = fd
+        for name in RUN_FILES:
+            for stale in self.path.glob(f".{name}.*.tmp"):
+                stale.unlink(missing_ok=True)
+
+    def release(self) -> None:
+        """Give up the folder's lock (a no-op when not held)."""
+        if self._lock_fd is not None:
+            os.close(self._lock_fd)
+            self._lock_fd = None
+
+    def is_empty(self) -> bool:
+        """True when the folder holds no file at all."""
+        return not any(self.path.iterdir())
+
+    def read_run(self) -> dict | None:
+        """The folder's ``run.json``, or None when absent or unreadable."""
+        try:
+            run = json.loads((self.path / RUN_FILE).read_text(encoding="utf-8"))
+        except (OSError, UnicodeDecodeError, json.JSONDecodeError):
+            return None
+        return run if isinstance(run, dict) else None
+
+    def has_run_file(self) -> bool:
+        """True when ``run.json`` exists (readable or not)."""
+        return (self.path / RUN_FILE).exists()
+
+    def write_run(self, run: dict) -> None:
+        """Write ``run`` as the folder's ``run.json`` (atomically)."""
+        write_atomic(self.path / RUN_FILE, [json.dumps(run, indent=2).encode()])
+
+    def clear(self) -> None:
+        """Remove every file a run writes (other files are left alone)."""
+        for name in RUN_FILES:
+            (self.path / name).unlink(missing_ok=True)
+
+    def remove_new(self) -> None:
+        """Remove the run's files and the folders :meth:`claim` made (a refused run leaves nothing)."""
+        self.clear()
+        for folder in self._made:
+            try:
+                folder.rmdir()
+            except OSError:
+                break
+
+    def read_checkpoint(self) -> tuple[dict[str, np.ndarray], dict]:
+        """The checkpoint's arrays and meta (``trainer.checkpoint.load_checkpoint``)."""
+        return load_checkpoint(self.checkpoint)
+
+    def write_checkpoint(self, arrays: dict[str, np.ndarray], meta: dict, progress: list) -> None:
+        """Write the checkpoint (atomically) and the progressive-validation curve ``progress``."""
+        save_checkpoint(self.checkpoint, arrays, meta)
+        write_atomic(self.path / PROGRESS_FILE, [json.dumps(progress).encode()])
+
+    def append_metrics(self, record: dict) -> None:
+        """Append one finished pass's ``record`` to ``metrics.jsonl`` (non-finite values as null); the
+        file is rewritten atomically, so a kill never leaves half a line."""
+        path = self.path / METRICS_FILE
+        before = path.read_bytes() if path.exists() else b""
+        write_atomic(path, [before, (json.dumps(jsonable(record), allow_nan=False) + "\n").encode()])
+
+    def metrics(self) -> list[dict]:
+        """The records of ``metrics.jsonl``, one per finished pass (empty without the file)."""
+        path = self.path / METRICS_FILE
+        if not path.exists():
+            return []
+        return [json.loads(line) for line in path.read_text().splitlines() if line.strip()]
+
+    def keep_metrics(self, last_pass: int) -> None:
+        """Drop the records of passes after ``last_pass`` (after a resume, the passes the checkpoint
+        does not count as finished)."""
+        path = self.path / METRICS_FILE
+        if not path.exists():
+            return
+        lines = [ln for ln in path.read_text().splitlines() if ln.strip() and json.loads(ln)["pass"] <= last_pass]
+        write_atomic(path, [("\n".join(lines) + "\n" if lines else "").encode()])
+
+    def progress(self) -> list:
+        """The progressive-validation curve of ``progress.json`` (empty without the file)."""
+        path = self.path / PROGRESS_FILE
+        return json.loads(path.read_text()) if path.exists() else []
+
+    def save_model(self, model: Model) -> None:
+        """Write ``model.json`` + ``model.npz`` (:meth:`trainer.model.Model.save`)."""
+        model.save(self.path)
+
+    def load_model(self) -> Model:
+        """The folder's model (:func:`trainer.model.load_model`)."""
+        return load_model(self.path)
