@@ -124,7 +124,8 @@ def select_features(df):
 
 def test_grid_search_in_a_pipeline_on_demo_frame(demo_frame):
     # Reference: scikit-learn's GridSearchCV and Pipeline; each fold's score is checked against
-    # sklearn.metrics.log_loss on a fit made by hand.
+    # sklearn.metrics.log_loss on a fit made by hand. KFold keeps the days apart (rows are in day
+    # order).
     X, y = demo_frame
     pipe = Pipeline([("select", FunctionTransformer(select_features)),
                      ("clf", HashedLogisticClassifier(bits=16, epochs=1))])
