@@ -197,6 +197,18 @@ def test_partial_fit_after_fit_continues_the_run(demo_frame):
     assert two.intercept_[0] == three.intercept_[0] and two.n_iter_ == 3
 
 
+def test_partial_fit_takes_a_chunk_of_one_class():
+    # Reference: scikit-learn's partial_fit convention (common practice): `classes` on the first
+    # call names both labels, so a chunk may hold only one of them; fit still refuses one class.
+    rng = np.random.default_rng(0)
+    X = rng.normal(size=(64, 3))
+    clf = HashedLogisticClassifier(bits=8).partial_fit(X, np.zeros(64, dtype=int), classes=[0, 1])
+    clf.partial_fit(X, (X[:, 0] > 0).astype(int))
+    assert clf.n_iter_ == 2 and list(clf.classes_) == [0, 1]
+    with pytest.raises(ValueError, match="two classes"):
+        HashedLogisticClassifier(bits=8).fit(X, np.zeros(64, dtype=int))
+
+
 def test_inferred_spec_follows_the_column_types():
     # Reference: schemas/feature-spec.schema.json, checked with jsonschema; the kinds are README
     # "Feature spec" (strings, booleans, dates categorical; lists multi; numbers numeric).

@@ -218,7 +218,7 @@ class HashedLogisticClassifier(ClassifierMixin, BaseEstimator):
             return self._fit_path(Path(X))
         table = self._table(X, reset=not more)
         n = table.num_rows
-        table, spec_label, spec_weight = self._attach(table, y, sample_weight, classes, more)
+        table, spec_label, spec_weight = self._attach(table, y, sample_weight, classes, more, partial)
         if table.num_rows == 0:
             raise ValueError(f"sample_weight: all {n} weights are zero; no rows to train on")
         if more:
@@ -239,7 +239,7 @@ class HashedLogisticClassifier(ClassifierMixin, BaseEstimator):
                 out.mkdir()
                 (out / "checkpoint.bin").write_bytes(self._state)
             epochs = self.n_iter_ + 1 if more else (1 if partial else self.epochs)
-            self._set_model(self._train(data, out, epochs, resume=more))
+            self._set_model(self._train(data, out, epochs, resume=more, allow_one_class=partial))
             self._state = (out / "checkpoint.bin").read_bytes()
         finally:
             shutil.rmtree(stream, ignore_errors=True)
@@ -255,15 +255,16 @@ class HashedLogisticClassifier(ClassifierMixin, BaseEstimator):
         self.n_features_in_ = len(names)
         self.feature_names_in_ = np.array(names, dtype=object)
         with tempfile.TemporaryDirectory(prefix="hashcurve-estimator-") as tmp:
-            self._set_model(self._train(path, Path(tmp) / "model", self.epochs, resume=False))
+            self._set_model(self._train(path, Path(tmp) / "model", self.epochs, resume=False, allow_one_class=False))
         self._state = None
         return self
 
-    def _train(self, data: Path, out: Path, epochs: int, resume: bool) -> Model:
+    def _train(self, data: Path, out: Path, epochs: int, resume: bool, allow_one_class: bool) -> Model:
         options = {"epochs": epochs, "loss": self.loss, "solver": self.solver, "l2_strength": self.l2_strength,
                    "history": self.history, "batch_rows": self.batch_rows, "step0": self.step0, "seed": self.seed,
                    "shuffle_buffer": self.shuffle_buffer, "negative_keep_rate": self.negative_keep_rate,
-                   "patience": self.patience, "skip_bad_labels": self.skip_bad_labels}
+                   "patience": self.patience, "skip_bad_labels": self.skip_bad_labels,
+                   "allow_one_class": allow_one_class}
         days = {k: getattr(self, k) for k in ("start", "end", "holdout_start", "holdout_end")
                 if getattr(self, k) is not None}
         if days and parse_spec(self.spec_).time_column is None:
@@ -293,9 +294,10 @@ class HashedLogisticClassifier(ClassifierMixin, BaseEstimator):
                  else [f"x{j}" for j in range(arr.shape[1])])
         return pa.table({name: pa.array(arr[:, j]) for j, name in enumerate(names)})
 
-    def _attach(self, table: pa.Table, y, sample_weight, classes, more: bool):
+    def _attach(self, table: pa.Table, y, sample_weight, classes, more: bool, partial: bool):
         """The table the trainer reads: ``y`` as 0/1 and the non-zero weights appended. Returns it
-        and the label and weight columns the spec must name (None: the spec's own)."""
+        and the label and weight columns the spec must name (None: the spec's own). A fit needs
+        both classes among the rows of positive weight; a partial_fit chunk may hold one."""
         given = self._given_spec() if not more else parse_spec(self.spec_)
         if y is None:
             if given is None:
@@ -342,6 +344,9 @@ class HashedLogisticClassifier(ClassifierMixin, BaseEstimator):
         if not np.all(np.isfinite(w)) or np.any(w < 0):
             raise ValueError("sample_weight must be finite and >= 0")
         keep = w > 0
+        if not partial and keep.any() and np.unique(y[keep]).size < 2:
+            raise ValueError("sample_weight leaves rows of one class only; the classifier needs both classes "
+                             "among the rows of positive weight")
         table = table.append_column(weight, pa.array(w))
         return (table if keep.all() else table.filter(pa.array(keep))), label, weight
 
