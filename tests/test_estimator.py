@@ -44,7 +44,8 @@ EXPECTED_FAILED = {
 }
 
 
-@parametrize_with_checks([HashedLogisticClassifier(bits=8, epochs=1)], expected_failed_checks=lambda est: EXPECTED_FAILED)
+@parametrize_with_checks([HashedLogisticClassifier(bits=8, epochs=1)],
+                         expected_failed_checks=lambda est: EXPECTED_FAILED)
 def test_sklearn_estimator_checks(estimator, check):
     # Reference: scikit-learn's estimator checks (sklearn.utils.estimator_checks).
     check(estimator)

@@ -61,14 +61,15 @@ _PARAMS_KEY = "estimator"
 
 def infer_spec(schema: pa.Schema, label: str, weight: str | None = None, bits: int = DEFAULT_BITS) -> dict:
     """A feature spec (as a JSON object) for the columns of ``schema`` other than ``label`` and
-    ``weight``: strings, booleans and dates are ``categorical``, lists of those ``multi``,
-    integers and floats ``numeric`` with the ``log1p`` transform sign(x) ln(1 + |x|), dictionary
-    columns by their values. Hashing seed 0, ``bits`` bits, no crosses. log1p because the numbers of
-    response logs are mostly heavy-tailed counts and amounts, whose raw outliers dominate a margin:
-    on the demo's first two days (train on one, score the other, 2 epochs) it gave holdout log-loss
-    0.16612 / 0.17631 against 0.16627 / 0.17902 for identity. Integer codes are numbers here: cast
-    them to strings, or pass a spec, to hash them as categories. Raises ValueError naming a column of any other type (timestamps,
-    binary, nested structs), or when no feature column is left."""
+    ``weight``: strings, booleans and dates are ``categorical``, lists of those or of integers
+    ``multi``, integers and floats ``numeric`` with the ``log1p`` transform sign(x) ln(1 + |x|),
+    dictionary columns by their values. Hashing seed 0, ``bits`` bits, no crosses. log1p because the
+    numbers of response logs are mostly heavy-tailed counts and amounts, whose raw outliers dominate
+    a margin: on the demo's first two days (train on one, score the other, 2 epochs) it gave holdout
+    log-loss 0.16612 / 0.17631 against 0.16627 / 0.17902 for identity. Integer codes are numbers
+    here: cast them to strings, or pass a spec, to hash them as categories. Raises ValueError naming
+    a column of any other type (timestamps, binary, nested structs), or when no feature column is
+    left."""
     features = []
     for field in schema:
         if field.name in (label, weight):
