@@ -48,6 +48,7 @@ from trainer import api
 from trainer.errors import UserError
 from trainer.model import Model, load_model
 from trainer.reader import Reader
+from trainer.run_folder import RunFolder
 from trainer.spec import Spec, load_spec, parse_spec
 
 #: Hash bits of a spec inferred from the columns when neither ``spec`` nor ``bits`` says (2^18 buckets).
@@ -238,10 +239,10 @@ class HashedLogisticClassifier(ClassifierMixin, BaseEstimator):
             pq.write_table(table, data)
             if more:
                 out.mkdir()
-                (out / "checkpoint.bin").write_bytes(self._state)
+                RunFolder(out).checkpoint.write_bytes(self._state)
             epochs = self.n_iter_ + 1 if more else (1 if partial else self.epochs)
             self._set_model(self._train(data, out, epochs, resume=more, allow_one_class=partial))
-            self._state = (out / "checkpoint.bin").read_bytes()
+            self._state = RunFolder(out).checkpoint.read_bytes()
         finally:
             shutil.rmtree(stream, ignore_errors=True)
         return self
@@ -256,7 +257,8 @@ class HashedLogisticClassifier(ClassifierMixin, BaseEstimator):
         self.n_features_in_ = len(names)
         self.feature_names_in_ = np.array(names, dtype=object)
         with tempfile.TemporaryDirectory(prefix="hashcurve-estimator-") as tmp:
-            self._set_model(self._train(path, Path(tmp) / "model", self.epochs, resume=False, allow_one_class=False))
+            self._set_model(self._train(path, Path(tmp) / "model", self.epochs, resume=False,
+                                        allow_one_class=False))
         self._state = None
         return self
 
@@ -272,7 +274,7 @@ class HashedLogisticClassifier(ClassifierMixin, BaseEstimator):
             raise ValueError(f"{', '.join(days)} need a spec with a time column (key 'time')")
         options.update(days)
         return api.train(parse_spec(self.spec_, "spec_"), data, out, resume=resume, quiet=not self.verbose,
-                         **options)
+                         **options).model
 
     def _set_model(self, model: Model) -> None:
         self.model_ = model
