@@ -130,3 +130,40 @@ def make_model(spec, loss: str = "logistic", calibration: dict | None = None, se
     w = rng.normal(0.0, 0.7, spec.n_buckets)
     w[rng.random(spec.n_buckets) < 0.3] = 0.0
     return Model(spec, w, float(rng.normal(-1.0, 0.3)), loss, {"calibration": calibration, **(info or {})})
+
+
+def hashed_demo(spec, day_from: str, day_to: str):
+    """The demo logs of days ``day_from``..``day_to`` hashed by the reader, as one scipy CSR matrix and labels."""
+    from trainer.api import demo_data_dir
+    from trainer.reader import Reader
+
+    reader = Reader(spec, demo_data_dir() / "logs", dt.date.fromisoformat(day_from), dt.date.fromisoformat(day_to),
+                    batch_rows=1 << 20)
+    parts, labels = [], []
+    for b in reader.batches():
+        parts.append(batch_csr(b, spec.n_buckets))
+        labels.append(b.labels)
+    return sp.vstack(parts).tocsr(), np.concatenate(labels)
+
+
+@pytest.fixture(scope="session")
+def demo_optimum():
+    """The full-batch optimum of the demo's default objective (mean log-loss + l2/2 ||w||^2, intercept
+    free, default l2) over all days but the last, by :func:`reference_optimum` (scipy L-BFGS-B), and
+    its holdout log-loss on the last day by sklearn.metrics.log_loss: {"train_days", "holdout_day",
+    "x", "ll_star"}. Computed once per session; it is the slowest reference of the suite."""
+    from sklearn.metrics import log_loss
+
+    from trainer.api import demo_data_dir
+    from trainer.spec import load_spec
+    from trainer.training import TrainOptions
+
+    root = demo_data_dir()
+    spec = load_spec(root / "spec.json")
+    days = sorted(p.name.split("=", 1)[1] for p in (root / "logs").iterdir() if "=" in p.name)
+    X, y = hashed_demo(spec, days[0], days[-2])
+    Xh, yh = hashed_demo(spec, days[-1], days[-1])
+    n = X.shape[1]
+    opt = reference_optimum(reference_objective("logistic", X, y, np.ones(X.shape[0]), TrainOptions().l2_strength), n + 1)
+    return {"train_days": f"{days[0]}..{days[-2]}", "holdout_day": days[-1], "x": opt.x,
+            "ll_star": log_loss(yh, expit(Xh @ opt.x[:n] + opt.x[n]))}

@@ -1,37 +1,19 @@
 """`hashcurve demo` end to end on the shipped logs, and the quality of its default model against the
 full-batch optimum of the same objective found by scipy.optimize (L-BFGS-B)."""
 
-import datetime as dt
 import json
 
 import numpy as np
 import pyarrow.parquet as pq
 import pytest
-import scipy.sparse as sp
-from scipy.special import expit
-from sklearn.metrics import log_loss
 
-from conftest import batch_csr, reference_objective, reference_optimum
-from trainer.api import demo, demo_data_dir
+from trainer.api import demo
 from trainer.cli import main
-from trainer.reader import Reader
-from trainer.spec import load_spec
-from trainer.training import TrainOptions
 
 
 @pytest.fixture(scope="module")
 def result(tmp_path_factory):
     return demo(tmp_path_factory.mktemp("demo"))
-
-
-def hashed(spec, day_from, day_to):
-    reader = Reader(spec, demo_data_dir() / "logs", dt.date.fromisoformat(day_from), dt.date.fromisoformat(day_to),
-                    batch_rows=1 << 20)
-    parts, labels = [], []
-    for b in reader.batches():
-        parts.append(batch_csr(b, spec.n_buckets))
-        labels.append(b.labels)
-    return sp.vstack(parts).tocsr(), np.concatenate(labels)
 
 
 def test_demo_writes_every_output(result):
@@ -45,18 +27,13 @@ def test_demo_writes_every_output(result):
     assert saved["rows"] == 25_000 and 0 < saved["log_loss"] < 1
 
 
-def test_demo_model_close_to_full_batch_optimum(result):
+def test_demo_model_close_to_full_batch_optimum(result, demo_optimum):
     # Reference: the same objective (mean log-loss + l2/2 ||w||^2, intercept free) on the same hashed
     # rows, minimized over the whole training set by scipy.optimize L-BFGS-B; holdout log-loss by
-    # sklearn.metrics.log_loss.
-    spec = load_spec(demo_data_dir() / "spec.json")
-    X, y = hashed(spec, *result["train_days"].split(".."))
-    Xh, yh = hashed(spec, result["holdout_day"], result["holdout_day"])
-    n = X.shape[1]
-    opt = reference_optimum(reference_objective("logistic", X, y, np.ones(X.shape[0]), TrainOptions().l2_strength), n + 1)
-    ll_star = log_loss(yh, expit(Xh @ opt.x[:n] + opt.x[n]))
+    # sklearn.metrics.log_loss (conftest.demo_optimum).
+    assert (result["train_days"], result["holdout_day"]) == (demo_optimum["train_days"], demo_optimum["holdout_day"])
     # the one-pass quality target of the README's Performance table: within 1% of LL*
-    assert result["summary"]["log_loss"] <= 1.01 * ll_star
+    assert result["summary"]["log_loss"] <= 1.01 * demo_optimum["ll_star"]
 
 
 def test_demo_command_line(tmp_path, capsys):

@@ -20,7 +20,7 @@ from trainer.reader.files import parse_day
 from trainer.reader.stream import Reader
 from trainer.report import write_report
 from trainer.run_folder import RunFolder
-from trainer.scoring import score_to_parquet
+from trainer.scoring import check_keep, check_paths, score_to_parquet
 from trainer.spec import Spec, load_spec
 from trainer.training import TrainOptions, Trainer, TrainResult
 
@@ -28,13 +28,16 @@ __all__ = ["EvaluationResult", "TrainResult", "train", "evaluate", "score", "exp
 
 
 def train(spec: str | Path | Spec, data: str | Path, out: str | Path, *, holdout: str | Path | None = None,
-          resume: bool = False, force: bool = False, quiet: bool = False, **options) -> TrainResult:
+          resume: bool = False, force: bool = False, quiet: bool = False, cluster=None,
+          **options) -> TrainResult:
     """Train a model from ``data`` into the folder ``out``; returns a :class:`trainer.training.TrainResult`
     (the model, its folder, passes run, per-pass metrics, best pass, stopping reason, timings).
 
     ``spec``: a spec file or Spec; ``holdout``: a holdout log (or use ``holdout_start``/``holdout_end``
     on the training path); ``options``: any TrainOptions field (dates as YYYY-MM-DD strings or
-    dates). Raises UserError for bad options, data or folders; Interrupted on SIGINT/SIGTERM.
+    dates); ``cluster``: a Dask scheduler address, ``local:N`` or a ``distributed.Client`` to train
+    over (one online pass per shard, averaged, then full-batch L-BFGS; see ``trainer.cluster``).
+    Raises UserError for bad options, data or folders; Interrupted on SIGINT/SIGTERM.
     """
     spec = spec if isinstance(spec, Spec) else load_spec(spec)
     for key in ("start", "end", "holdout_start", "holdout_end"):
@@ -43,6 +46,11 @@ def train(spec: str | Path | Spec, data: str | Path, out: str | Path, *, holdout
     unknown = set(options) - {f for f in TrainOptions.__dataclass_fields__}
     if unknown:
         raise UserError(f"train: unknown option(s) {', '.join(sorted(unknown))}")
+    if cluster is not None:
+        from trainer import cluster as dask_cluster
+
+        return dask_cluster.train(cluster, spec, data, out, TrainOptions(**options), holdout=holdout, resume=resume,
+                                  force=force, quiet=quiet)
     trainer = Trainer(spec, data, out, TrainOptions(**options), holdout=holdout, resume=resume, force=force,
                       quiet=quiet)
     return trainer.run()
@@ -50,7 +58,7 @@ def train(spec: str | Path | Spec, data: str | Path, out: str | Path, *, holdout
 
 def evaluate(model: str | Path | Model, data: str | Path, *, start=None, end=None, by: str | None = None,
              segments: int = 20, skip_bad_labels: bool = False,
-             json_out: str | Path | None = None) -> EvaluationResult:
+             json_out: str | Path | None = None, cluster=None) -> EvaluationResult:
     """Metrics of ``model`` on the labelled log ``data`` (inclusive date filter ``start``..``end``).
 
     ``by`` adds one row per value of that column (the ``segments`` largest, the rest pooled).
@@ -62,19 +70,40 @@ def evaluate(model: str | Path | Model, data: str | Path, *, start=None, end=Non
         raise UserError(f"--segments must be an integer >= 1; got {segments}")
     reader = Reader(model.spec, data, parse_day(start, "--start"), parse_day(end, "--end"), batch_rows=65536,
                     skip_bad_labels=skip_bad_labels, keep=(by,) if by else (), keep_option="--by")
-    summary = _evaluate(model, reader, by=by, segments=segments)
-    if reader.counts.bad_labels:
-        summary["skipped_bad_labels"] = reader.counts.bad_labels
+    if cluster is not None:
+        from trainer import cluster as dask_cluster
+
+        summary, bad_labels = dask_cluster.evaluate(cluster, model, reader, by=by, segments=segments)
+    else:
+        summary = _evaluate(model, reader, by=by, segments=segments)
+        bad_labels = reader.counts.bad_labels
+    if bad_labels:
+        summary["skipped_bad_labels"] = bad_labels
     if json_out is not None:
         write_atomic(Path(json_out), [json.dumps(jsonable(summary), indent=2, allow_nan=False).encode()])
     return summary
 
 
 def score(model: str | Path, data: str | Path, out: str | Path, *, keep: tuple[str, ...] = (),
-          missing_as_null: bool = False, start=None, end=None) -> dict:
-    """Score ``data`` with the model (training folder or export) into the Parquet file ``out``."""
-    return score_to_parquet(model, data, out, keep=tuple(keep), missing_as_null=missing_as_null,
-                            start=start, end=end)
+          missing_as_null: bool = False, start=None, end=None, cluster=None, force: bool = False) -> dict:
+    """Score ``data`` with the model (training folder or export) into the Parquet file ``out``.
+
+    With ``cluster`` (a Dask scheduler address, ``local:N`` or a ``distributed.Client``), ``out`` is
+    a dataset folder instead: one Parquet file per input part and the manifest ``_parts.json``
+    written last (see ``trainer.cluster.score``); ``force`` replaces an earlier one there.
+    """
+    if cluster is None:
+        return score_to_parquet(model, data, out, keep=tuple(keep), missing_as_null=missing_as_null,
+                                start=start, end=end)
+    from trainer import cluster as dask_cluster
+
+    loaded = model if isinstance(model, Model) else load_model(model)
+    keep = check_keep(keep)
+    data, out = Path(data), Path(out)
+    check_paths(data, out, folder=True)
+    reader = Reader(loaded.spec, data, parse_day(start, "--start"), parse_day(end, "--end"), batch_rows=65536,
+                    with_labels=False, keep=keep, missing_as_null=missing_as_null)
+    return dask_cluster.score(cluster, loaded, reader, out, keep=keep, model_path=None if isinstance(model, Model) else str(model), force=force)
 
 
 def export(model: str | Path, out: str | Path, *, force: bool = False) -> Path:

@@ -29,6 +29,10 @@ def _add_dates(p: argparse.ArgumentParser, what: str) -> None:
     p.add_argument("--end", metavar="YYYY-MM-DD", help=f"last day of {what} (inclusive)")
 
 
+CLUSTER_HELP = ("run on a Dask cluster: a scheduler address tcp://HOST:PORT, or local:N to start N worker "
+                "processes for this command (needs the dask extra)")
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The full argument parser (also used to document the commands)."""
     d = api.TrainOptions()
@@ -69,6 +73,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--skip-bad-labels", action="store_true", help="drop rows with null or unaccepted labels")
     p.add_argument("--allow-one-class", action="store_true",
                    help="train even when every training label is 0, or every one is 1")
+    p.add_argument("--refine-iterations", type=int, default=d.refine_iterations,
+                   help="with --cluster: full-batch L-BFGS iterations after the online pass (default: %(default)s)")
+    p.add_argument("--cluster", metavar="ADDRESS", help=CLUSTER_HELP)
     p.add_argument("--resume", action="store_true", help="continue from the checkpoint in --out")
     p.add_argument("--force", action="store_true", help="replace the files of another run in --out")
     p.add_argument("--quiet", action="store_true", help="no progress bars or per-pass table")
@@ -81,6 +88,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--segments", type=int, default=20, help="largest values listed with --by (default: %(default)s)")
     p.add_argument("--skip-bad-labels", action="store_true", help="drop rows with null or unaccepted labels")
     p.add_argument("--json", metavar="FILE", help="also write the summary as JSON")
+    p.add_argument("--cluster", metavar="ADDRESS", help=CLUSTER_HELP)
 
     p = sub.add_parser("report", help="self-contained HTML report of a training folder")
     p.add_argument("--model", required=True, help="model folder (from train)")
@@ -96,10 +104,13 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("score", help="score a Parquet log into a Parquet file")
     p.add_argument("--model", required=True, help="model folder or export folder")
     p.add_argument("--data", required=True, help="Parquet file, folder or hive-partitioned folder")
-    p.add_argument("--out", required=True, help="output Parquet file (appears only when complete)")
+    p.add_argument("--out", required=True, help="output Parquet file (appears only when complete); with --cluster, "
+                   "a dataset folder (one file per input part, manifest _parts.json written last)")
     p.add_argument("--keep", nargs="+", default=[], metavar="COLUMN", help="input columns to copy beside the score")
     p.add_argument("--missing-as-null", action="store_true", help="read absent feature columns as all null")
     _add_dates(p, "the data")
+    p.add_argument("--cluster", metavar="ADDRESS", help=CLUSTER_HELP)
+    p.add_argument("--force", action="store_true", help="with --cluster: replace the score dataset already in --out")
 
     p = sub.add_parser("inspect", help="size, collisions, largest weights and options of a model")
     p.add_argument("--model", required=True, help="model folder or export folder")
@@ -198,9 +209,9 @@ def _train(a) -> None:
     options = {k: getattr(a, k) for k in ("epochs", "loss", "solver", "l2_strength", "history", "batch_rows", "step0",
                                           "seed", "shuffle_buffer", "negative_keep_rate", "patience",
                                           "checkpoint_every", "start", "end", "holdout_start", "holdout_end",
-                                          "skip_bad_labels", "allow_one_class")}
+                                          "skip_bad_labels", "allow_one_class", "refine_iterations")}
     print(format_train_result(api.train(a.spec, a.data, a.out, holdout=a.holdout, resume=a.resume,
-                                        force=a.force, quiet=a.quiet, **options)))
+                                        force=a.force, quiet=a.quiet, cluster=a.cluster, **options)))
 
 
 def _demo(a) -> None:
@@ -215,7 +226,7 @@ def _demo(a) -> None:
 
 def _evaluate(a) -> None:
     s = api.evaluate(a.model, a.data, start=a.start, end=a.end, by=a.by, segments=a.segments,
-                     skip_bad_labels=a.skip_bad_labels, json_out=a.json)
+                     skip_bad_labels=a.skip_bad_labels, json_out=a.json, cluster=a.cluster)
     print(format_summary(s))
 
 
@@ -229,8 +240,9 @@ def _export(a) -> None:
 
 def _score(a) -> None:
     r = api.score(a.model, a.data, a.out, keep=tuple(a.keep), missing_as_null=a.missing_as_null,
-                  start=a.start, end=a.end)
-    print(f"{r['rows']:,} rows scored into {r['out']}")
+                  start=a.start, end=a.end, cluster=a.cluster, force=a.force)
+    parts = f" ({r['parts']} part files)" if "parts" in r else ""
+    print(f"{r['rows']:,} rows scored into {r['out']}{parts}")
 
 
 def _inspect(a) -> None:

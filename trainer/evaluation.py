@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
@@ -77,6 +79,72 @@ class SegmentSums:
                 "calibration_ratio": wp / wy if wy else float("nan"),
                 "log_loss": wl / w if w else float("nan")}
 
+    def merge(self, other: "SegmentSums") -> "SegmentSums":
+        """Add ``other``'s sums into this one (values new to this one join in ``other``'s order, and
+        pool into one row past ``MAX_TRACKED_SEGMENTS``); returns self."""
+        names = sorted(other.ids, key=other.ids.get)
+        for name in names:
+            if name not in self.ids:
+                self.ids.setdefault(name if len(self.ids) < MAX_TRACKED_SEGMENTS else OTHER, len(self.ids))
+        size = len(self.ids)
+        if self.sums.shape[0] < size:
+            self.sums = np.vstack([self.sums, np.zeros((size - self.sums.shape[0], 5))])
+        target = np.array([self.ids.get(n, self.ids.get(OTHER)) for n in names], dtype=np.int64)
+        np.add.at(self.sums, target, other.sums[: len(names)])
+        return self
+
+
+@dataclass
+class EvalState:
+    """The mergeable state of an evaluation: the metric accumulators of one slice of rows."""
+
+    probs: BinaryMetrics | None
+    margins: MarginMetrics | None
+    segments: SegmentSums | None
+    hinge: np.ndarray
+
+    def merge(self, other: "EvalState") -> "EvalState":
+        """The state of both slices together (exact: counts, sums and rank histograms add up)."""
+        seg = self.segments.merge(other.segments) if self.segments is not None else None
+        return EvalState(self.probs.merge(other.probs) if self.probs is not None else None,
+                         self.margins.merge(other.margins) if self.margins is not None else None,
+                         seg, self.hinge + other.hinge)
+
+
+def accumulate(model, batches, *, by: str | None = None) -> EvalState:
+    """Score every batch of the iterable ``batches`` with ``model`` into a new EvalState (with
+    ``by``, the batches must carry that column)."""
+    state = EvalState(BinaryMetrics() if model.has_probability else None,
+                      MarginMetrics() if model.loss == "squared-hinge" else None,
+                      SegmentSums() if by else None, np.zeros(2))
+    for batch in batches:
+        margins = model.margin(batch)
+        if state.margins is not None:
+            state.margins.update(batch.labels, margins, batch.weights)
+            slack = np.maximum(0.0, 1.0 - (2.0 * batch.labels - 1.0) * margins)
+            state.hinge += (float(batch.weights @ slack**2), float(batch.weights.sum()))
+        if state.probs is not None:
+            probs = model.probability_from_margin(margins)
+            state.probs.update(batch.labels, probs, batch.weights,
+                               margins=margins if model.loss == "logistic" else None)
+            if state.segments is not None:
+                state.segments.update(batch.columns.column(by).combine_chunks(), batch.labels, probs, batch.weights)
+    return state
+
+
+def summarize(state: EvalState, segments: int = 20) -> EvaluationResult:
+    """The metrics summary of an EvalState (see :func:`evaluate` for its keys)."""
+    out = EvaluationResult(state.probs.summary() if state.probs is not None else {})
+    if state.margins is not None:
+        hinge = state.hinge
+        out["margin"] = state.margins.summary()
+        out["squared_hinge_loss"] = hinge[0] / hinge[1] if hinge[1] else float("nan")
+        out.setdefault("rows", out["margin"]["rows"])
+        out.setdefault("positives", out["margin"]["positives"])
+    if state.segments is not None:
+        out["segments"] = state.segments.table(segments)
+    return out
+
 
 def evaluate(model, reader: Reader, *, by: str | None = None, segments: int = 20) -> EvaluationResult:
     """Score every row of ``reader`` with ``model`` and return the metrics summary (an
@@ -89,28 +157,4 @@ def evaluate(model, reader: Reader, *, by: str | None = None, segments: int = 20
     must keep that column, and ``segments`` lists the largest ``segments`` values (rows, observed
     rate, mean prediction, calibration ratio, log-loss), the rest pooled.
     """
-    probs_metrics = BinaryMetrics() if model.has_probability else None
-    margin_metrics = MarginMetrics() if model.loss == "squared-hinge" else None
-    seg = SegmentSums() if by else None
-    hinge = np.zeros(2)
-    for batch in reader.batches():
-        margins = model.margin(batch)
-        if margin_metrics is not None:
-            margin_metrics.update(batch.labels, margins, batch.weights)
-            slack = np.maximum(0.0, 1.0 - (2.0 * batch.labels - 1.0) * margins)
-            hinge += (float(batch.weights @ slack**2), float(batch.weights.sum()))
-        if probs_metrics is not None:
-            probs = model.probability_from_margin(margins)
-            probs_metrics.update(batch.labels, probs, batch.weights,
-                                 margins=margins if model.loss == "logistic" else None)
-            if seg is not None:
-                seg.update(batch.columns.column(by).combine_chunks(), batch.labels, probs, batch.weights)
-    out = EvaluationResult(probs_metrics.summary() if probs_metrics is not None else {})
-    if margin_metrics is not None:
-        out["margin"] = margin_metrics.summary()
-        out["squared_hinge_loss"] = hinge[0] / hinge[1] if hinge[1] else float("nan")
-        out.setdefault("rows", out["margin"]["rows"])
-        out.setdefault("positives", out["margin"]["positives"])
-    if seg is not None:
-        out["segments"] = seg.table(segments)
-    return out
+    return summarize(accumulate(model, reader.batches(), by=by), segments)

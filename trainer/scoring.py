@@ -36,8 +36,10 @@ def _plain(arr: pa.ChunkedArray) -> pa.ChunkedArray:
     return arr
 
 
-def _check_paths(data: Path, out: Path) -> None:
-    if out.exists() and out.is_dir():
+def check_paths(data: Path, out: Path, folder: bool = False) -> None:
+    """Refuse an output path that is the input, lies inside the input folder, or whose folder does
+    not exist; unless ``folder`` (a dataset folder is written), refuse an existing folder."""
+    if out.exists() and out.is_dir() and not folder:
         raise UserError(f"--out {out}: is a folder; give the path of the Parquet file to write")
     d, o = data.resolve(), out.resolve()
     if o == d:
@@ -70,6 +72,22 @@ def score_to_parquet(model_path: str | Path | Model, data: str | Path, out: str 
     model = model_path if isinstance(model_path, Model) else load_model(model_path)
     if isinstance(batch_rows, bool) or not isinstance(batch_rows, int) or not 1 <= batch_rows <= 1 << 24:
         raise UserError(f"--batch-rows must be an integer from 1 to {1 << 24}, got {batch_rows!r}")
+    keep = check_keep(keep)
+    data, out = Path(data), Path(out)
+    check_paths(data, out)
+    reader = Reader(model.spec, data, start=parse_day(start, "--start"), end=parse_day(end, "--end"), batch_rows=batch_rows,
+                    with_labels=False, keep=keep, missing_as_null=missing_as_null)
+    try:
+        with atomic_path(out) as tmp:
+            rows = write_scores(model, reader, keep, tmp, data)
+    except OSError as exc:
+        raise UserError(f"--out {out}: cannot write the scores ({exc.strerror or exc})") from None
+    return {"rows": rows, "out": str(out)}
+
+
+def check_keep(keep) -> tuple[str, ...]:
+    """``keep`` as a tuple of distinct column names that do not clash with the output columns;
+    raises UserError naming the bad name."""
     keep = tuple(keep)
     reserved = {SCORE, PROBABILITY}
     for c in keep:
@@ -79,39 +97,39 @@ def score_to_parquet(model_path: str | Path | Model, data: str | Path, out: str 
             raise UserError(f"--keep: column '{c}' would clash with an output column ({', '.join(sorted(reserved))})")
     if len(set(keep)) != len(keep):
         raise UserError(f"--keep: names a column twice ({', '.join(keep)})")
-    data, out = Path(data), Path(out)
-    _check_paths(data, out)
-    reader = Reader(model.spec, data, start=parse_day(start, "--start"), end=parse_day(end, "--end"), batch_rows=batch_rows,
-                    with_labels=False, keep=keep, missing_as_null=missing_as_null)
+    return keep
+
+
+def write_scores(model: Model, reader: Reader, keep: tuple[str, ...], path: Path, data: Path) -> int:
+    """Score every batch of ``reader`` into the Parquet file ``path`` (kept columns, ``score``,
+    and ``probability`` for a calibrated squared-hinge model; see :func:`score_to_parquet`) and
+    return the rows written. A reader that yields no rows leaves ``path`` untouched. ``data``
+    names the input in error messages."""
     with_probability = model.loss == "squared-hinge" and model.has_probability
     rows = 0
+    writer = None
     try:
-        with atomic_path(out) as tmp:
-            writer = None
+        for batch in reader.batches():
+            z = model.margin(batch)
+            cols = {c: _plain(batch.columns.column(c)) for c in keep}
+            cols[SCORE] = pa.array(model.probability_from_margin(z) if model.loss == "logistic" else z,
+                                   pa.float64())
+            if with_probability:
+                cols[PROBABILITY] = pa.array(model.probability_from_margin(z), pa.float64())
+            table = pa.table(cols)
+            if writer is None:
+                schema = table.schema.with_metadata({"hashcurve.loss": model.loss,
+                                                     "hashcurve.score": "probability"
+                                                     if model.loss == "logistic" else "margin"})
+                writer = pq.ParquetWriter(path, schema)
             try:
-                for batch in reader.batches():
-                    z = model.margin(batch)
-                    cols = {c: _plain(batch.columns.column(c)) for c in keep}
-                    cols[SCORE] = pa.array(model.probability_from_margin(z) if model.loss == "logistic" else z,
-                                           pa.float64())
-                    if with_probability:
-                        cols[PROBABILITY] = pa.array(model.probability_from_margin(z), pa.float64())
-                    table = pa.table(cols)
-                    if writer is None:
-                        schema = table.schema.with_metadata({"hashcurve.loss": model.loss,
-                                                             "hashcurve.score": "probability"
-                                                             if model.loss == "logistic" else "margin"})
-                        writer = pq.ParquetWriter(tmp, schema)
-                    try:
-                        table = table.cast(writer.schema)
-                    except (pa.ArrowInvalid, pa.ArrowNotImplementedError) as exc:
-                        raise UserError(f"{data}: a kept column changes type between files "
-                                        f"({str(exc).splitlines()[0]}); --keep columns must share one type") from None
-                    writer.write_table(table)
-                    rows += batch.n_rows
-            finally:
-                if writer is not None:
-                    writer.close()
-    except OSError as exc:
-        raise UserError(f"--out {out}: cannot write the scores ({exc.strerror or exc})") from None
-    return {"rows": rows, "out": str(out)}
+                table = table.cast(writer.schema)
+            except (pa.ArrowInvalid, pa.ArrowNotImplementedError) as exc:
+                raise UserError(f"{data}: a kept column changes type between files "
+                                f"({str(exc).splitlines()[0]}); --keep columns must share one type") from None
+            writer.write_table(table)
+            rows += batch.n_rows
+    finally:
+        if writer is not None:
+            writer.close()
+    return rows

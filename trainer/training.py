@@ -51,7 +51,8 @@ HUGE_NUMERIC = 1e3
 
 @dataclass
 class TrainOptions:
-    """Training options; the ones in ``TRAJECTORY`` decide the weights and must match on resume."""
+    """Training options; the ones in ``TRAJECTORY`` decide the weights and must match on resume.
+    ``refine_iterations`` applies to training over a cluster only (``trainer.cluster``)."""
 
     epochs: int = 3
     loss: str = "logistic"
@@ -71,6 +72,7 @@ class TrainOptions:
     holdout_end: dt.date | None = None
     skip_bad_labels: bool = False
     allow_one_class: bool = False
+    refine_iterations: int = 20
 
     TRAJECTORY = ("loss", "solver", "l2_strength", "history", "batch_rows", "step0", "seed", "shuffle_buffer",
                   "negative_keep_rate", "start", "end", "skip_bad_labels")
@@ -90,6 +92,7 @@ class TrainOptions:
         check_float("--negative-keep-rate", self.negative_keep_rate, 0.0, 1.0, lo_open=True)
         check_int("--checkpoint-every", self.checkpoint_every, 1, 10**15)
         check_int("--patience", self.patience, 1, 10_000)
+        check_int("--refine-iterations", self.refine_iterations, 0, 100_000)
 
     def as_json(self) -> dict:
         """Options as JSON values (dates as YYYY-MM-DD)."""

@@ -2,6 +2,6 @@
 hashes columns into buckets, ``stream`` yields the batches; ``examples`` is the report's observer."""
 
 from trainer.reader.files import DataFile, discover, parse_day
-from trainer.reader.stream import Batch, Position, ReadCounts, Reader
+from trainer.reader.stream import Batch, Part, Position, ReadCounts, Reader
 
-__all__ = ["Batch", "DataFile", "Position", "ReadCounts", "Reader", "discover", "parse_day"]
+__all__ = ["Batch", "DataFile", "Part", "Position", "ReadCounts", "Reader", "discover", "parse_day"]

@@ -13,6 +13,7 @@ so the stream of rows, and hence every batch, is the same whatever the chunking.
 
 from __future__ import annotations
 
+import copy
 import datetime as dt
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -62,6 +63,17 @@ class Batch:
     n_rows: int
     position: Position | None = None
     columns: pa.Table | None = None
+
+
+@dataclass(frozen=True)
+class Part:
+    """A slice of the input read on its own (one task of a cluster run): row groups
+    ``first_group`` .. ``end_group - 1`` of file number ``file`` of the reader's files."""
+
+    file: int
+    first_group: int
+    end_group: int
+    rows: int
 
 
 @dataclass
@@ -148,6 +160,7 @@ class Reader:
     dictionary: bool = True
     chunk_rows: int = CHUNK_ROWS
     counts: ReadCounts = field(default_factory=ReadCounts)
+    part: Part | None = None
 
     def __post_init__(self):
         if self.start and self.end and self.start > self.end:
@@ -177,6 +190,31 @@ class Reader:
         """Show ``observer`` every chunk of rows hashed from now on (:meth:`Featurizer.watch`)."""
         self.featurizer.watch(observer)
 
+    def parts(self, max_rows: int) -> list[Part]:
+        """The input cut into parts in file order: whole row groups of one file, at most
+        ``max_rows`` rows each (a larger row group is a part of its own). Reads footers only."""
+        out = []
+        for fi, f in enumerate(self.files):
+            meta = pq.ParquetFile(f.path).metadata
+            first, rows = 0, 0
+            for g in range(meta.num_row_groups):
+                n = meta.row_group(g).num_rows
+                if rows and rows + n > max_rows:
+                    out.append(Part(fi, first, g, rows))
+                    first, rows = g, 0
+                rows += n
+            if meta.num_row_groups:
+                out.append(Part(fi, first, meta.num_row_groups, rows))
+        return out
+
+    def for_part(self, part: Part) -> "Reader":
+        """A reader of the same input and options that reads only ``part`` (rows, sampling and
+        shuffling exactly as this reader reads them there), with its own counts and no observers;
+        an empty part yields no batch instead of raising."""
+        r = copy.copy(self)
+        r.part, r.counts, r.featurizer = part, ReadCounts(), Featurizer(self.spec)
+        return r
+
     @property
     def total_rows(self) -> int:
         """Rows in the selected files before row filters (an upper bound for progress bars)."""
@@ -201,7 +239,7 @@ class Reader:
         if have:
             emitted += have
             yield self._batch(_Rows.concat(pending))
-        if emitted == 0 and start == Position():
+        if emitted == 0 and start == Position() and self.part is None:
             raise UserError(f"{self.path}: no rows left after the filters (dates {self.start or '...'} to "
                             f"{self.end or '...'})")
 
@@ -247,7 +285,7 @@ class Reader:
 
     def _chunks(self, pass_index: int, first_file: int, first_row: int) -> Iterator[_Rows]:
         """Filtered, hashed chunks of rows in file order from (first_file, first_row)."""
-        for fi in range(first_file, len(self.files)):
+        for fi in range(first_file, len(self.files)) if self.part is None else (self.part.file,):
             f = self.files[fi]
             skip_to = first_row if fi == first_file else 0
             try:
@@ -256,7 +294,8 @@ class Reader:
                 base = 0
                 for g in range(pf.metadata.num_row_groups):
                     rg_rows = pf.metadata.row_group(g).num_rows
-                    if base + rg_rows <= skip_to or row_group_outside(pf.metadata, g, self.spec.time_column,
+                    outside = self.part is not None and not self.part.first_group <= g < self.part.end_group
+                    if outside or base + rg_rows <= skip_to or row_group_outside(pf.metadata, g, self.spec.time_column,
                                                                       self.start, self.end):
                         base += rg_rows
                         continue
