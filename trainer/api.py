@@ -62,7 +62,9 @@ def evaluate(model: str | Path | Model, data: str | Path, *, start=None, end=Non
     """Metrics of ``model`` on the labelled log ``data`` (inclusive date filter ``start``..``end``).
 
     ``by`` adds one row per value of that column (the ``segments`` largest, the rest pooled).
-    ``json_out`` also writes the summary as JSON (atomically). Returns the summary, a
+    ``json_out`` also writes the summary as JSON (atomically). ``cluster`` (a Dask scheduler
+    address, ``local:N`` or a ``distributed.Client``) computes it there, one task per file or row
+    groups, with the same result. Returns the summary, a
     :class:`trainer.evaluation.EvaluationResult` (a dict whose keys read as attributes too).
     """
     model = model if isinstance(model, Model) else load_model(model)
