@@ -145,19 +145,20 @@ def run_peer(X, y, Xh, yh, lam: float, target_ll: float) -> list[dict]:
     return out
 
 
-def run_hashcurve(logs: Path, spec_path: Path, train_end: str, hold_day: str, passes: int) -> list[dict]:
-    """Default-option training from Parquet (patience = passes); per-pass holdout LL and cumulative
-    training seconds."""
+def run_hashcurve(spec_path: Path, data: Path, passes: int, quiet: bool = False, **options) -> list[dict]:
+    """Training from Parquet with default options except ``options`` (api.train keywords; patience =
+    passes); per-pass holdout LL, cumulative training seconds and the pass's phase."""
     with tempfile.TemporaryDirectory(prefix="bench-model-") as out:
         t = time.perf_counter()
-        rows = api.train(spec_path, logs / "logs", Path(out) / "m", end=train_end, holdout_start=hold_day,
-                         holdout_end=hold_day, epochs=passes, patience=passes).per_pass
+        rows = api.train(spec_path, data, Path(out) / "m", epochs=passes, patience=passes, quiet=quiet,
+                         **options).per_pass
         wall = time.perf_counter() - t
     spent, hist = 0.0, []
     for r in rows:
         spent += r["train_seconds"]
-        hist.append({"pass": r["pass"], "ll": r["holdout"]["log_loss"], "seconds": spent})
-    print(f"  hashcurve wall time incl. holdout scoring: {wall:.1f} s")
+        hist.append({"pass": r["pass"], "ll": r["holdout"]["log_loss"], "seconds": spent, "phase": r.get("phase")})
+    if not quiet:
+        print(f"  hashcurve wall time incl. holdout scoring: {wall:.1f} s")
     return hist
 
 
@@ -225,7 +226,8 @@ def main() -> None:
           f"(L-BFGS-B {nit} iterations, {secs:.0f} s)", flush=True)
     target = TARGET * ll_star
 
-    ours = run_hashcurve(folder, spec_path, train_end, hold_day, a.epochs)
+    ours = run_hashcurve(spec_path, folder / "logs", a.epochs, end=train_end, holdout_start=hold_day,
+                         holdout_end=hold_day)
     for h in ours:
         print(f"  hashcurve pass {h['pass']}: LL {h['ll']:.5f} = {h['ll'] / ll_star:.4f} LL*, "
               f"{h['seconds']:.1f} s cumulative training time", flush=True)

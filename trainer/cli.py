@@ -198,7 +198,7 @@ def _train(a) -> None:
     options = {k: getattr(a, k) for k in ("epochs", "loss", "solver", "l2_strength", "history", "batch_rows", "step0",
                                           "seed", "shuffle_buffer", "negative_keep_rate", "patience",
                                           "checkpoint_every", "start", "end", "holdout_start", "holdout_end",
-                                          "skip_bad_labels", "allow_one_class")}
+                                          "skip_bad_labels", "allow_one_class", "full_batch_memory")}
     print(format_train_result(api.train(a.spec, a.data, a.out, holdout=a.holdout, resume=a.resume,
                                         force=a.force, quiet=a.quiet, **options)))
 
