@@ -28,6 +28,7 @@ It prints every figure and the ratios the targets are stated in.
 from __future__ import annotations
 
 import argparse
+import json
 import subprocess
 import sys
 import tempfile
@@ -45,6 +46,7 @@ sys.path.insert(0, str(HERE))
 import loggen  # noqa: E402
 
 from trainer import api  # noqa: E402
+from trainer.atomic import atomic_path  # noqa: E402
 from trainer.cli import configure_process  # noqa: E402
 from trainer.losses import pointwise_loss  # noqa: E402
 from trainer.reader import Reader, parse_day  # noqa: E402
@@ -114,6 +116,26 @@ def reference_optimum(X, y, lam: float):
                                   options={"maxiter": 20000, "maxfun": 40000, "ftol": 1e-15, "gtol": 1e-10,
                                            "maxcor": 20})
     return res.x[:n], res.x[n], res.fun, time.perf_counter() - t, res.nit
+
+
+def cached_optimum(cache: Path | None, settings: dict, X, y, lam: float):
+    """(w, b) of :func:`reference_optimum`, read from the npz ``cache`` when it was computed under
+    the same ``settings`` (a JSON-ready dict naming everything the optimum depends on), else
+    computed and, with a cache path, written. Raises SystemExit naming both settings when the cache
+    holds another problem's optimum."""
+    key = json.dumps(settings, sort_keys=True)
+    if cache is not None and cache.exists():
+        with np.load(cache) as stored:
+            if str(stored["settings"]) != key:
+                raise SystemExit(f"optimum cache {cache}: computed for {stored['settings']}, not {key}")
+            return stored["w"], float(stored["b"])
+    w, b, fstar, secs, nit = reference_optimum(X, y, lam)
+    print(f"  full-batch optimum: objective {fstar:.8f} (L-BFGS-B {nit} iterations, {secs:.0f} s)", flush=True)
+    if cache is not None:
+        cache.parent.mkdir(parents=True, exist_ok=True)
+        with atomic_path(cache) as tmp, open(tmp, "wb") as fh:
+            np.savez(fh, w=w, b=b, settings=key)
+    return w, b
 
 
 def run_peer(X, y, Xh, yh, lam: float, target_ll: float) -> list[dict]:

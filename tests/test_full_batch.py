@@ -30,7 +30,7 @@ def test_tiny_log_reaches_the_scipy_optimum(tmp_path):
     pq.write_table(make_table(rng, 6000), tmp_path / "log.parquet")
     spec_path = tmp_path / "spec.json"
     spec_path.write_text(json.dumps({k: v for k, v in SMALL_SPEC.items() if k != "time"}))
-    model = api.train(spec_path, tmp_path / "log.parquet", tmp_path / "m", l2_strength=1e-3)
+    model = api.train(spec_path, tmp_path / "log.parquet", tmp_path / "m", l2_strength=1e-3).model
     spec = model.spec
     X, y, c = hashed(spec, tmp_path / "log.parquet")
     fg = reference_objective("logistic", X, y, c, 1e-3)
@@ -61,7 +61,7 @@ def test_breast_cancer_matches_scikit_learn(tmp_path):
     (tmp_path / "spec.json").write_text(json.dumps(spec))
     l2 = 1e-3
     model = api.train(tmp_path / "spec.json", tmp_path / "train.parquet", tmp_path / "m", l2_strength=l2,
-                      holdout=tmp_path / "hold.parquet")
+                      holdout=tmp_path / "hold.parquet").model
     assert np.count_nonzero(model.weights) == len(names)  # no two columns share a bucket
     ref = LogisticRegression(C=1.0 / (len(train) * l2), tol=1e-10, max_iter=10_000).fit(X[train], y[train] == 0)
     ll_ref = log_loss(y[hold] == 0, ref.predict_proba(X[hold])[:, 1])
