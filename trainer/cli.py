@@ -66,6 +66,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="passes without holdout improvement before stopping (default: %(default)s)")
     p.add_argument("--checkpoint-every", type=int, default=d.checkpoint_every,
                    help="rows between checkpoints (default: %(default)s)")
+    p.add_argument("--full-batch-memory", type=int, default=d.full_batch_memory, metavar="MB",
+                   help="passes after the first run full-batch when the hashed log fits in this many MB; "
+                        "0: online passes only (default: %(default)s)")
     p.add_argument("--skip-bad-labels", action="store_true", help="drop rows with null or unaccepted labels")
     p.add_argument("--allow-one-class", action="store_true",
                    help="train even when every training label is 0, or every one is 1")

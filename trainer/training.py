@@ -8,7 +8,8 @@ is kept for ``--resume`` and the message says what it holds. A folder whose run 
 checkpoint (killed in its first seconds) starts that run afresh on ``--resume`` or on the same
 command again; other options are refused, naming the first that differs.
 
-Iterate averaging of the default solver (``olbfgs``): the model of an online pass is the mean of
+Iterate averaging of the default solver (``olbfgs``; ``full_batch_memory`` 0 turns it off with the
+full-batch phase, leaving plain online passes): the model of an online pass is the mean of
 the solver's iterates over the last ``AVERAGE_FRACTION`` of the pass's rows ("Acceleration of
 stochastic approximation by averaging", SIAM Journal on Control and Optimization 30, 1992); the
 solver itself goes on from its last iterate.
@@ -236,7 +237,8 @@ class Trainer:
         self.examples = BucketExamples(spec.n_buckets)
         self._saved: tuple[int, int] | None = None
         self.memory = None
-        self.average = np.zeros(spec.n_buckets + 1) if options.solver == "olbfgs" else None
+        averaged = options.solver == "olbfgs" and options.full_batch_memory > 0
+        self.average = np.zeros(spec.n_buckets + 1) if averaged else None
         try:
             self._prepare_folder(force)
         except BaseException:
