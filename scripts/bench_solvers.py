@@ -20,7 +20,6 @@ those settings and is refused when they differ.
 from __future__ import annotations
 
 import argparse
-import json
 import time
 from pathlib import Path
 
@@ -28,7 +27,7 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.special import expit
 
-from bench_train import reference_optimum
+from bench_train import cached_optimum
 from loggen import sample_ranks, zipf_probs
 from trainer.kernels import predict_margin
 from trainer.losses import pointwise_loss
@@ -99,18 +98,10 @@ def main() -> None:
           f"base rate {labels.mean():.4f}, l2 {args.l2_strength:g}, batch {args.batch}")
     t = time.perf_counter()
     cache = Path(args.optimum_cache) if args.optimum_cache else None
-    settings = json.dumps({k: getattr(args, k) for k in ("rows", "holdout", "bits", "fields", "l2_strength", "seed")})
-    if cache is not None and cache.exists():
-        with np.load(cache) as stored:
-            if str(stored["settings"]) != settings:
-                ap.error(f"--optimum-cache {cache}: computed for {stored['settings']}, not {settings}")
-            w, b = stored["w"], float(stored["b"])
-    else:
-        whole = as_batch(train_cols, train_labels)
-        X = sp.csr_matrix((whole.data, whole.indices, whole.indptr), shape=(whole.n_rows, n))
-        w, b = reference_optimum(X, train_labels, args.l2_strength)[:2]
-        if cache is not None:
-            np.savez(cache, w=w, b=b, settings=settings)
+    settings = {k: getattr(args, k) for k in ("rows", "holdout", "bits", "fields", "l2_strength", "seed")}
+    whole = as_batch(train_cols, train_labels)
+    X = sp.csr_matrix((whole.data, whole.indices, whole.indptr), shape=(whole.n_rows, n))
+    w, b = cached_optimum(cache, settings, X, train_labels, args.l2_strength)
     best = holdout_log_loss(holdout, w, b)
     print(f"full-batch optimum: holdout log-loss {best:.5f} ({time.perf_counter() - t:.0f} s)")
 

@@ -28,6 +28,7 @@ It prints every figure and the ratios the targets are stated in.
 from __future__ import annotations
 
 import argparse
+import json
 import subprocess
 import sys
 import tempfile
@@ -45,6 +46,7 @@ sys.path.insert(0, str(HERE))
 import loggen  # noqa: E402
 
 from trainer import api  # noqa: E402
+from trainer.atomic import atomic_path  # noqa: E402
 from trainer.cli import configure_process  # noqa: E402
 from trainer.losses import pointwise_loss  # noqa: E402
 from trainer.reader import Reader, parse_day  # noqa: E402
@@ -116,6 +118,26 @@ def reference_optimum(X, y, lam: float):
     return res.x[:n], res.x[n], res.fun, time.perf_counter() - t, res.nit
 
 
+def cached_optimum(cache: Path | None, settings: dict, X, y, lam: float):
+    """(w, b) of :func:`reference_optimum`, read from the npz ``cache`` when it was computed under
+    the same ``settings`` (a JSON-ready dict naming everything the optimum depends on), else
+    computed and, with a cache path, written. Raises SystemExit naming both settings when the cache
+    holds another problem's optimum."""
+    key = json.dumps(settings, sort_keys=True)
+    if cache is not None and cache.exists():
+        with np.load(cache) as stored:
+            if str(stored["settings"]) != key:
+                raise SystemExit(f"optimum cache {cache}: computed for {stored['settings']}, not {key}")
+            return stored["w"], float(stored["b"])
+    w, b, fstar, secs, nit = reference_optimum(X, y, lam)
+    print(f"  full-batch optimum: objective {fstar:.8f} (L-BFGS-B {nit} iterations, {secs:.0f} s)", flush=True)
+    if cache is not None:
+        cache.parent.mkdir(parents=True, exist_ok=True)
+        with atomic_path(cache) as tmp, open(tmp, "wb") as fh:
+            np.savez(fh, w=w, b=b, settings=key)
+    return w, b
+
+
 def run_peer(X, y, Xh, yh, lam: float, target_ll: float) -> list[dict]:
     """SGDClassifier over the grid; per setting the holdout LL and cumulative fit time per pass."""
     from sklearn.linear_model import SGDClassifier
@@ -145,19 +167,20 @@ def run_peer(X, y, Xh, yh, lam: float, target_ll: float) -> list[dict]:
     return out
 
 
-def run_hashcurve(logs: Path, spec_path: Path, train_end: str, hold_day: str, passes: int) -> list[dict]:
-    """Default-option training from Parquet (patience = passes); per-pass holdout LL and cumulative
-    training seconds."""
+def run_hashcurve(spec_path: Path, data: Path, passes: int, quiet: bool = False, **options) -> list[dict]:
+    """Training from Parquet with default options except ``options`` (api.train keywords; patience =
+    passes); per-pass holdout LL, cumulative training seconds and the pass's phase."""
     with tempfile.TemporaryDirectory(prefix="bench-model-") as out:
         t = time.perf_counter()
-        rows = api.train(spec_path, logs / "logs", Path(out) / "m", end=train_end, holdout_start=hold_day,
-                         holdout_end=hold_day, epochs=passes, patience=passes).per_pass
+        rows = api.train(spec_path, data, Path(out) / "m", epochs=passes, patience=passes, quiet=quiet,
+                         **options).per_pass
         wall = time.perf_counter() - t
     spent, hist = 0.0, []
     for r in rows:
         spent += r["train_seconds"]
-        hist.append({"pass": r["pass"], "ll": r["holdout"]["log_loss"], "seconds": spent})
-    print(f"  hashcurve wall time incl. holdout scoring: {wall:.1f} s")
+        hist.append({"pass": r["pass"], "ll": r["holdout"]["log_loss"], "seconds": spent, "phase": r.get("phase")})
+    if not quiet:
+        print(f"  hashcurve wall time incl. holdout scoring: {wall:.1f} s")
     return hist
 
 
@@ -225,7 +248,8 @@ def main() -> None:
           f"(L-BFGS-B {nit} iterations, {secs:.0f} s)", flush=True)
     target = TARGET * ll_star
 
-    ours = run_hashcurve(folder, spec_path, train_end, hold_day, a.epochs)
+    ours = run_hashcurve(spec_path, folder / "logs", a.epochs, end=train_end, holdout_start=hold_day,
+                         holdout_end=hold_day)
     for h in ours:
         print(f"  hashcurve pass {h['pass']}: LL {h['ll']:.5f} = {h['ll'] / ll_star:.4f} LL*, "
               f"{h['seconds']:.1f} s cumulative training time", flush=True)

@@ -29,6 +29,7 @@ Command line::
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import datetime as dt
 import json
 import shutil
@@ -593,7 +594,82 @@ BENCH20 = LogConfig(
     bits=20,
 )
 
-CONFIGS = {GROCERY_PUSH.name: GROCERY_PUSH, BENCH20.name: BENCH20}
+#: Regimes of scripts/bench_regimes.py. ``drift12``: a response log whose hour, weekday and campaign
+#: effects move day by day (a random walk), read in time order or shuffled. ``ordinal80``: 80 dense
+#: ordinal columns of 2-10 levels, nearly every column set in every row. ``rare20``: the benchmark's
+#: 20 fields at a base rate of 0.4%. ``tags200``: two long multi-valued tag lists (about 120 tags a
+#: row) beside eight categorical fields; the regime's spec adds tag x field crosses (200+ entries a row).
+DRIFT12 = LogConfig(
+    name="drift12",
+    label="responded",
+    fields=(
+        Categorical("campaign", vocab=300, zipf=1.1, prefix="cmp-", effect_sd=0.4, drift_sd=0.06),
+        Categorical("hour", labels=tuple(range(24)), probs=_HOUR_WEIGHTS, dtype="int32", effect_sd=0.3,
+                    drift_sd=0.08),
+        Categorical("weekday", by_day="weekday", effect_sd=0.15, drift_sd=0.05),
+        Categorical("segment", labels=("new", "active", "lapsed", "loyal", "bargain", "premium"), zipf=0.6,
+                    effect_sd=0.4),
+        Categorical("region", vocab=50, zipf=0.8, prefix="r", effect_sd=0.2),
+        Categorical("device", labels=("android", "ios", "web"), zipf=1.2, effect_sd=0.15),
+        Categorical("placement", vocab=1000, zipf=1.0, prefix="pl", effect_sd=0.25, drift_sd=0.02),
+        Categorical("app_version", vocab=30, zipf=1.4, prefix="9.", effect_sd=0.08, null_rate=0.03),
+        Categorical("item", vocab=20_000, zipf=1.0, prefix="it", effect_sd=0.3),
+        Categorical("cohort", vocab=50_000, zipf=0.8, prefix="co", effect_sd=0.4),
+        Categorical("channel", vocab=12, zipf=0.9, prefix="ch", effect_sd=0.3, drift_sd=0.04),
+        Categorical("locale", vocab=40, zipf=1.1, prefix="lc", effect_sd=0.1),
+    ),
+    interactions=(Interaction(("campaign", "hour"), 0.2),),
+    base_rate=0.04,
+    start_day="2024-06-03",
+    bits=20,
+)
+
+ORDINAL80 = LogConfig(
+    name="ordinal80",
+    label="bought",
+    fields=tuple(
+        Categorical(f"q{i + 1:02d}", labels=tuple(range(2 + i % 9)), dtype="int32", zipf=0.5,
+                    effect_sd=0.12, null_rate=0.01)
+        for i in range(80)
+    ),
+    interactions=(Interaction(("q01", "q02"), 0.2),),
+    base_rate=0.06,
+    start_day="2024-06-03",
+    bits=18,
+)
+
+RARE20 = dataclasses.replace(BENCH20, name="rare20", base_rate=0.004)
+
+
+def _uniform_lengths(low: int, high: int) -> tuple[float, ...]:
+    """List-length probabilities, uniform on low..high."""
+    return tuple(0.0 if k < low else 1.0 for k in range(high + 1))
+
+
+TAGS200 = LogConfig(
+    name="tags200",
+    label="clicked",
+    fields=(
+        Categorical("device", labels=("android", "ios", "web"), zipf=1.2, effect_sd=0.15),
+        Categorical("slot", vocab=6, zipf=0.8, prefix="s", effect_sd=0.3),
+        Categorical("site", vocab=400, zipf=1.1, prefix="site", effect_sd=0.3),
+        Categorical("advertiser", vocab=2000, zipf=1.0, prefix="adv", effect_sd=0.3),
+        Categorical("creative", vocab=20_000, zipf=1.0, prefix="cr", effect_sd=0.25),
+        Categorical("user_bucket", vocab=30_000, zipf=0.8, prefix="u", effect_sd=0.3),
+        Categorical("hour", labels=tuple(range(24)), probs=_HOUR_WEIGHTS, dtype="int32", effect_sd=0.2),
+        Categorical("country", vocab=60, zipf=1.2, prefix="cc", effect_sd=0.15),
+        Multi("interests", vocab=5000, zipf=1.0, lengths=_uniform_lengths(50, 110), prefix="in",
+              effect_sd=0.05),
+        Multi("context_tags", vocab=300, zipf=0.9, lengths=_uniform_lengths(20, 60), prefix="ct",
+              effect_sd=0.05),
+    ),
+    interactions=(Interaction(("advertiser", "slot"), 0.2),),
+    base_rate=0.03,
+    start_day="2024-06-03",
+    bits=20,
+)
+
+CONFIGS = {c.name: c for c in (GROCERY_PUSH, BENCH20, DRIFT12, ORDINAL80, RARE20, TAGS200)}
 
 
 def int_option(low: int):

@@ -181,7 +181,7 @@ def test_partial_fit_chunks_equal_one_pass_of_train(tmp_path, capsys):
         pq.write_table(chunk, folder / f"part-{i}.parquet")
     (tmp_path / "spec.json").write_text(json.dumps(spec))
     assert main(["train", "--spec", str(tmp_path / "spec.json"), "--data", str(folder), "--out", str(tmp_path / "m"),
-                 "--epochs", "1", "--batch-rows", "512", "--quiet"]) == 0
+                 "--epochs", "1", "--batch-rows", "512", "--full-batch-memory", "0", "--quiet"]) == 0
     one_pass = load_model(tmp_path / "m")
     np.testing.assert_array_equal(clf.coef_[0], one_pass.weights)
     assert clf.intercept_[0] == one_pass.intercept
@@ -247,7 +247,7 @@ def test_fit_on_a_parquet_path_reads_the_spec_label(tmp_path):
     clf = HashedLogisticClassifier(spec=spec, epochs=1).fit(path)
     (tmp_path / "spec.json").write_text(json.dumps(spec))
     assert main(["train", "--spec", str(tmp_path / "spec.json"), "--data", str(path), "--out", str(tmp_path / "m"),
-                 "--epochs", "1", "--quiet"]) == 0
+                 "--epochs", "1", "--full-batch-memory", "0", "--quiet"]) == 0
     np.testing.assert_array_equal(clf.coef_[0], load_model(tmp_path / "m").weights)
     assert list(clf.classes_) == [0, 1]
     with pytest.raises(ValueError, match="partial_fit takes rows in memory"):

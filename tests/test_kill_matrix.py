@@ -47,10 +47,10 @@ def job(tmp_path_factory):
     spec = root / "spec.json"  # 2^16 buckets: a checkpoint of 3.7 MB, so its write lasts long enough to be seen
     spec.write_text(json.dumps({**SMALL_SPEC, "hashing": {"bits": 16, "seed": 42}}))
 
-    def argv(out):
+    def argv(out):  # online passes only, so pass 2 has checkpoints to kill at (full-batch: test_training)
         return ["train", "--spec", str(spec), "--data", str(data), "--holdout", str(root / "holdout.parquet"),
                 "--out", str(out), "--batch-rows", "400", "--epochs", "2", "--checkpoint-every", "1200",
-                "--shuffle-buffer", "1000", "--seed", "3", "--quiet"]
+                "--shuffle-buffer", "1000", "--seed", "3", "--full-batch-memory", "0", "--quiet"]
 
     ref = root / "ref"
     assert main(argv(ref)) == 0

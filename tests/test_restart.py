@@ -36,9 +36,9 @@ def job(tmp_path_factory):
     spec = root / "spec.json"
     spec.write_text(json.dumps(SMALL_SPEC))
 
-    def argv(out, *extra):
+    def argv(out, *extra):  # online passes only (--full-batch-memory 0): checkpoints every 1000 rows
         return ["train", "--spec", str(spec), "--data", str(data), "--out", str(out), "--batch-rows", "500",
-                "--epochs", "2", "--checkpoint-every", "1000", "--quiet", *extra]
+                "--epochs", "2", "--checkpoint-every", "1000", "--full-batch-memory", "0", "--quiet", *extra]
 
     assert main(argv(root / "ref")) == 0
     return root, argv, load_model(root / "ref")

@@ -54,24 +54,29 @@ def run_and_stop(args, ckpt: Path, sig) -> int:
     return proc
 
 
-@pytest.mark.parametrize("sig", [signal.SIGKILL, signal.SIGINT])
-def test_resume_after_kill_is_bit_identical(log_4files, tmp_path, sig):
+@pytest.mark.parametrize("sig,every", [(signal.SIGKILL, "2000"), (signal.SIGINT, "2000"),
+                                       (signal.SIGKILL, "1000000000")])
+def test_resume_after_kill_is_bit_identical(log_4files, tmp_path, sig, every):
     # Reference: an uninterrupted run of the same command (the tool's own resume contract; checking a
-    # resumed run against a clean one is common practice for checkpointing systems).
+    # resumed run against a clean one is common practice for checkpointing systems). Pass 1 is online,
+    # pass 2 full-batch (the log fits in memory): a checkpoint every 2000 rows stops the run in pass 1,
+    # before the phase changes; with none until the pass ends, the stop lands in the full-batch pass.
     data, spec = log_4files
     ref = tmp_path / "ref"
-    assert main(cli_args(spec, data, ref, "--checkpoint-every", "2000")) == 0
+    assert main(cli_args(spec, data, ref, "--checkpoint-every", every)) == 0
     cut = tmp_path / "cut"
-    proc = run_and_stop(cli_args(spec, data, cut, "--checkpoint-every", "2000"), cut / "checkpoint.bin", sig)
+    proc = run_and_stop(cli_args(spec, data, cut, "--checkpoint-every", every), cut / "checkpoint.bin", sig)
     if sig == signal.SIGINT and proc.returncode == 130:
         assert b"--resume" in proc.stderr.read()  # SIGINT saves a checkpoint and says how to go on
     assert proc.returncode != 0, "the run finished before it could be stopped"
-    assert main(cli_args(spec, data, cut, "--checkpoint-every", "2000", "--resume")) == 0
+    assert main(cli_args(spec, data, cut, "--checkpoint-every", every, "--resume")) == 0
     w_ref, b_ref = weights_of(ref)
     w_cut, b_cut = weights_of(cut)
     assert np.array_equal(w_ref, w_cut) and b_ref == b_cut  # bit for bit (the resume contract)
-    lines = (cut / "metrics.jsonl").read_text().splitlines()
-    assert [json.loads(x)["pass"] for x in lines] == [1, 2]
+    lines = [json.loads(x) for x in (cut / "metrics.jsonl").read_text().splitlines()]
+    assert [x["pass"] for x in lines] == [1, 2]
+    assert [x["phase"] for x in lines] == ["online", "full-batch"]
+    assert json.loads((cut / "run.json").read_text())["phases"] == json.loads((ref / "run.json").read_text())["phases"]
 
 
 def test_resume_refusals_leave_checkpoint_untouched(log_4files, tmp_path, capsys):

@@ -70,6 +70,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="passes without holdout improvement before stopping (default: %(default)s)")
     p.add_argument("--checkpoint-every", type=int, default=d.checkpoint_every,
                    help="rows between checkpoints (default: %(default)s)")
+    p.add_argument("--full-batch-memory", type=int, default=d.full_batch_memory, metavar="MB",
+                   help="passes after the first run full-batch when the hashed log fits in this many MB; "
+                        "0: online passes only (default: %(default)s)")
     p.add_argument("--skip-bad-labels", action="store_true", help="drop rows with null or unaccepted labels")
     p.add_argument("--allow-one-class", action="store_true",
                    help="train even when every training label is 0, or every one is 1")
@@ -209,7 +212,8 @@ def _train(a) -> None:
     options = {k: getattr(a, k) for k in ("epochs", "loss", "solver", "l2_strength", "history", "batch_rows", "step0",
                                           "seed", "shuffle_buffer", "negative_keep_rate", "patience",
                                           "checkpoint_every", "start", "end", "holdout_start", "holdout_end",
-                                          "skip_bad_labels", "allow_one_class", "refine_iterations")}
+                                          "skip_bad_labels", "allow_one_class", "full_batch_memory",
+                                          "refine_iterations")}
     print(format_train_result(api.train(a.spec, a.data, a.out, holdout=a.holdout, resume=a.resume,
                                         force=a.force, quiet=a.quiet, cluster=a.cluster, **options)))
 

@@ -267,7 +267,10 @@ class HashedLogisticClassifier(ClassifierMixin, BaseEstimator):
                    "history": self.history, "batch_rows": self.batch_rows, "step0": self.step0, "seed": self.seed,
                    "shuffle_buffer": self.shuffle_buffer, "negative_keep_rate": self.negative_keep_rate,
                    "patience": self.patience, "skip_bad_labels": self.skip_bad_labels,
-                   "allow_one_class": allow_one_class}
+                   "allow_one_class": allow_one_class,
+                   # partial_fit continues one run chunk by chunk, so fit and partial_fit train plain
+                   # online passes (no full-batch phase, no averaging) whatever the log's size
+                   "full_batch_memory": 0}
         days = {k: getattr(self, k) for k in ("start", "end", "holdout_start", "holdout_end")
                 if getattr(self, k) is not None}
         if days and parse_spec(self.spec_).time_column is None:

@@ -8,6 +8,20 @@ is kept for ``--resume`` and the message says what it holds. A folder whose run 
 checkpoint (killed in its first seconds) starts that run afresh on ``--resume`` or on the same
 command again; other options are refused, naming the first that differs.
 
+Iterate averaging of the default solver (``olbfgs``; ``full_batch_memory`` 0 turns it off with the
+full-batch phase, leaving plain online passes): the model of an online pass is the mean of
+the solver's iterates over the last ``AVERAGE_FRACTION`` of the pass's rows ("Acceleration of
+stochastic approximation by averaging", SIAM Journal on Control and Optimization 30, 1992); the
+solver itself goes on from its last iterate.
+
+Phases of the default solver: passes are online (one step per batch) unless the hashed log fits
+``full_batch_memory`` MB, in which case every pass after the first is a full-batch pass
+(:mod:`trainer.solvers.full_batch`: L-BFGS-B on the whole log in memory), and a tiny log (at most
+``TINY_BATCHES`` batches) is trained full-batch from the first pass. The choice is made from the
+rows and entries the first pass read, printed in the per-pass table, written to each pass's line of
+``metrics.jsonl`` and to ``run.json`` (``phases``), and kept in the checkpoint, so a resumed run
+makes it the same way.
+
 Progressive validation ("online" or "test-then-train" evaluation, common practice): each batch's
 loss is measured before the solver learns from it.
 """
@@ -34,6 +48,7 @@ from trainer.model import Model
 from trainer.reader.examples import BucketExamples
 from trainer.reader.stream import Position, Reader
 from trainer.run_folder import RunFolder
+from trainer.solvers import full_batch
 from trainer.solvers import check_choice, check_float, check_int, make_solver, SOLVER_NAMES
 from trainer.spec import Spec
 
@@ -47,6 +62,10 @@ CALIBRATED = (0.8, 1.25)
 #: A numeric column without edges whose |value| exceeds this in the batch where the solver diverged is
 #: named in the message as the likely cause (one-hot entries are 1.0; log1p keeps values under 710).
 HUGE_NUMERIC = 1e3
+#: A log of at most this many batches is trained full-batch from the first pass (when it fits the budget).
+TINY_BATCHES = 16
+#: The model of an online pass of the default solver averages the iterates over this last part of the pass.
+AVERAGE_FRACTION = 0.75
 
 
 @dataclass
@@ -72,10 +91,11 @@ class TrainOptions:
     holdout_end: dt.date | None = None
     skip_bad_labels: bool = False
     allow_one_class: bool = False
+    full_batch_memory: int = 1024
     refine_iterations: int = 20
 
     TRAJECTORY = ("loss", "solver", "l2_strength", "history", "batch_rows", "step0", "seed", "shuffle_buffer",
-                  "negative_keep_rate", "start", "end", "skip_bad_labels")
+                  "negative_keep_rate", "start", "end", "skip_bad_labels", "full_batch_memory")
 
     def validate(self) -> None:
         """Raise UserError naming the first option outside its accepted range."""
@@ -92,6 +112,7 @@ class TrainOptions:
         check_float("--negative-keep-rate", self.negative_keep_rate, 0.0, 1.0, lo_open=True)
         check_int("--checkpoint-every", self.checkpoint_every, 1, 10**15)
         check_int("--patience", self.patience, 1, 10_000)
+        check_int("--full-batch-memory", self.full_batch_memory, 0, 10_000_000)
         check_int("--refine-iterations", self.refine_iterations, 0, 100_000)
 
     def as_json(self) -> dict:
@@ -121,6 +142,12 @@ class _State:
     stopped_early: bool = False
     positives: int = 0
     negatives: int = 0
+    phase: str = "online"
+    entries: int = 0
+    rows_first_pass: int = 0
+    avg_count: int = 0
+    avg_pass: int = -1
+    phases: list = dataclasses.field(default_factory=list)
 
 
 @dataclass
@@ -212,6 +239,9 @@ class Trainer:
         self.resume = resume
         self.examples = BucketExamples(spec.n_buckets)
         self._saved: tuple[int, int] | None = None
+        self.memory = None
+        averaged = options.solver == "olbfgs" and options.full_batch_memory > 0
+        self.average = np.zeros(spec.n_buckets + 1) if averaged else None
         try:
             self._prepare_folder(force)
         except BaseException:
@@ -270,7 +300,15 @@ class Trainer:
         folder.write_run({"format": "hashcurve-run", "version": 2, "spec": self.spec.raw, "data": self.data,
                           "holdout": self.holdout_path, "options": self.opt.as_json(),
                           "fingerprint": self._fingerprint(),
-                          "created": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds")})
+                          "created": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"), "phases": []})
+
+    def _choose_phase(self, phase: str, reason: str) -> None:
+        """Switch the passes from the next one on to ``phase``; say why in the log and in run.json."""
+        st = self.state
+        st.phase = phase
+        st.phases.append({"from_pass": st.pass_index + 1, "phase": phase, "reason": reason})
+        self.folder.write_run({**(self.folder.read_run() or {}), "phases": st.phases})
+        self.log(f"passes from {st.pass_index + 1} on: {phase} ({reason})")
 
     def _load_checkpoint(self) -> None:
         arrays, meta = self.folder.read_checkpoint()
@@ -279,6 +317,8 @@ class Trainer:
             raise UserError(f"{self.folder.checkpoint}: cannot resume: {why}")
         self.solver.load_state({k[7:]: (v.item() if v.ndim == 0 else v)
                                 for k, v in arrays.items() if k.startswith("solver.")})
+        if self.average is not None:
+            self.average[:] = arrays["average.sum"]
         ex = meta["examples"]
         self.examples = BucketExamples(self.spec.n_buckets, max_rows=ex["rows_left"], values=ex["values"])
         s = meta["state"]
@@ -304,6 +344,8 @@ class Trainer:
 
     def _save_checkpoint(self) -> None:
         arrays = {f"solver.{k}": np.asarray(v) for k, v in self.solver.state(copy=False).items()}
+        if self.average is not None:
+            arrays["average.sum"] = self.average
         s = dataclasses.asdict(self.state)
         s["position"] = list(dataclasses.astuple(self.state.position)) if self.state.position else None
         ex = self.examples
@@ -319,8 +361,9 @@ class Trainer:
         estimate of the distinct tokens seen: every bucket a token reached has a non-zero weight, so
         D ~ -m ln(1 - occupied/m) ("A Linear-Time Probabilistic Counting Algorithm for Database
         Applications", ACM Transactions on Database Systems, 1990)."""
-        intercept = self.solver.intercept + math.log(self.opt.negative_keep_rate)
-        weights = np.array(self.solver.weights, dtype=np.float64)
+        x = self._model_x()
+        intercept = float(x[-1]) + math.log(self.opt.negative_keep_rate)
+        weights = x[:-1]
         m, occupied = weights.size, int(np.count_nonzero(weights))
         distinct = round(-m * math.log1p(-occupied / m)) if occupied < m else None
         info = {"options": self.opt.as_json(), "negative_keep_rate": self.opt.negative_keep_rate,
@@ -335,6 +378,26 @@ class Trainer:
 
     # -- the loop ---------------------------------------------------------------------------------
 
+    def _model_x(self) -> np.ndarray:
+        """The model's weights then intercept (a new array): the averaged iterate of the last online
+        pass when there is one, else the solver's weights."""
+        if self.average is not None and self.state.avg_count > 0:
+            return self.average / self.state.avg_count
+        return np.append(self.solver.weights, self.solver.intercept)
+
+    def _average(self, rows_in_pass: int) -> None:
+        """Add the solver's iterate to the pass's average once the pass is in its last AVERAGE_FRACTION."""
+        st = self.state
+        expected = st.rows_first_pass if st.pass_index else self.reader.total_rows * self.opt.negative_keep_rate
+        if rows_in_pass <= (1.0 - AVERAGE_FRACTION) * expected:
+            return
+        if st.avg_pass != st.pass_index:
+            st.avg_pass, st.avg_count = st.pass_index, 0
+            self.average[:] = 0.0
+        np.add(self.average[:-1], self.solver.weights, out=self.average[:-1])
+        self.average[-1] += self.solver.intercept
+        st.avg_count += 1
+
     def run(self) -> TrainResult:
         """Train to the requested passes (or an early stop); return the final model and what the run
         did (:class:`TrainResult`).
@@ -347,16 +410,57 @@ class Trainer:
         try:
             if st.pass_index == 0 and st.position is None and not self.resume:
                 self.log(self._table_header())
+                batches = -(-self.reader.total_rows // self.opt.batch_rows)
+                if self._full_batch_allowed() and batches <= TINY_BATCHES and not st.phases:
+                    self._choose_phase("full-batch", f"a tiny log: {self.reader.total_rows:,} rows, at most "
+                                       f"{TINY_BATCHES} batches of {self.opt.batch_rows}")
             with _StopFlag() as stop:
                 while st.pass_index < self.opt.epochs and not st.stopped_early:
                     started = time.monotonic()
-                    self._one_pass(stop)
-                    self._finish_pass(time.monotonic() - started)
+                    fitted = None
+                    if st.phase == "full-batch":
+                        fitted = self._full_batch_pass(stop)
+                    if fitted is None:
+                        self._one_pass(stop)
+                    self._finish_pass(time.monotonic() - started, fitted)
             return self._result(self._final_model())
         except UserError as exc:
             raise self._refused(exc) from None
         finally:
             self.folder.release()
+
+    def _full_batch_allowed(self) -> bool:
+        return self.opt.solver == "olbfgs" and self.opt.full_batch_memory > 0
+
+    def _budget(self) -> int:
+        return self.opt.full_batch_memory * 2**20
+
+    def _full_batch_pass(self, stop: _StopFlag) -> dict | None:
+        """One full-batch pass (reads the log into memory first when needed); returns its summary, or
+        None after switching back to online passes when the log turned out not to fit the budget.
+        Raises Interrupted on SIGINT/SIGTERM, keeping the checkpoint of the last finished pass."""
+        st, opt = self.state, self.opt
+        if self.memory is None:
+            self.memory = full_batch.InMemoryLog.collect(self.reader.batches(0), self._budget(), self.spec.n_buckets)
+            if self.memory is None:
+                self._choose_phase("online", f"the hashed log does not fit --full-batch-memory {opt.full_batch_memory} MB")
+                return None
+        if st.pass_index == 0:
+            st.positives = int(np.count_nonzero(self.memory.labels))
+            st.negatives = self.memory.n_rows - st.positives
+        x = self._model_x()
+        fitted = full_batch.minimize(self.memory, self.solver.code, opt.l2_strength, x, history=opt.history,
+                                     stop=lambda: stop.signal is not None)
+        if fitted["stopped"]:
+            name = signal.Signals(stop.signal).name
+            raise Interrupted(f"{name}: stopped in full-batch pass {st.pass_index + 1}; the checkpoint of pass "
+                              f"{st.pass_index} in {self.folder.checkpoint} is kept; continue with the same "
+                              "command plus --resume")
+        self.solver.assign(x)
+        st.avg_count = 0
+        st.rows_in_pass = self.memory.n_rows
+        st.rows_total += self.memory.n_rows
+        return fitted
 
     def _diverged(self, exc: Diverged, batch) -> Diverged:
         """The solver's Diverged message, naming a numeric column without edges whose huge values in
@@ -394,6 +498,7 @@ class Trainer:
                 pos = int(np.count_nonzero(batch.labels))
                 st.positives += pos
                 st.negatives += batch.n_rows - pos
+                st.entries += batch.indices.shape[0]
             w = float(batch.weights.sum())
             st.pv_loss += loss * w
             st.pv_weight += w
@@ -404,6 +509,8 @@ class Trainer:
             st.steps += 1
             st.position = batch.position
             since_ckpt += batch.n_rows
+            if self.average is not None:
+                self._average(st.rows_in_pass)
             if window_w and (st.rows_in_pass // point_rows) != ((st.rows_in_pass - batch.n_rows) // point_rows):
                 st.progress.append({"rows": st.rows_total, "loss": window_loss / window_w})
                 window_loss = window_w = 0.0
@@ -422,7 +529,8 @@ class Trainer:
                                   f"checkpoint saved in {self.folder.checkpoint}; continue with the same command plus --resume")
         bar.close()
 
-    def _finish_pass(self, train_seconds: float) -> None:
+    def _finish_pass(self, train_seconds: float, fitted: dict | None = None) -> None:
+        """Evaluate, record and checkpoint the pass just run (``fitted``: a full-batch pass's summary)."""
         st = self.state
         if st.pass_index == 0 and not self.opt.allow_one_class and not (st.positives and st.negatives):
             raise UserError(f"{self.data}: the training rows after the filters hold {st.negatives:,} negative "
@@ -435,7 +543,10 @@ class Trainer:
         st.pass_index += 1
         record = {"pass": st.pass_index, "rows": st.rows_in_pass, "rows_total": st.rows_total,
                   "progressive_loss": st.pv_loss / st.pv_weight if st.pv_weight else None,
-                  "holdout": holdout, "train_seconds": train_seconds, "eval_seconds": time.monotonic() - started}
+                  "holdout": holdout, "train_seconds": train_seconds, "eval_seconds": time.monotonic() - started,
+                  "phase": "online" if fitted is None else "full-batch"}
+        if fitted is not None:
+            record["full_batch"] = {k: fitted[k] for k in ("iterations", "evaluations", "objective", "converged")}
         if holdout is not None:
             score = _holdout_score(holdout, self.opt.loss)
             if st.best_score is None or score < st.best_score:
@@ -454,7 +565,14 @@ class Trainer:
         if st.stopped_early:
             self.log(f"early stop: holdout loss has not improved for {st.bad_passes} pass(es); "
                      f"keeping the weights of pass {st.best_pass}")
+        if st.pass_index == 1:
+            st.rows_first_pass = st.rows_in_pass
         st.position, st.rows_in_pass, st.pv_loss, st.pv_weight = None, 0, 0.0, 0.0
+        if st.pass_index == 1 and st.phase == "online" and self._full_batch_allowed() and st.pass_index < self.opt.epochs:
+            size = full_batch.log_bytes(st.rows_total, st.entries)
+            if size <= self._budget():
+                self._choose_phase("full-batch", f"the hashed log takes {size / 2**20:.0f} MB in memory, within "
+                                   f"--full-batch-memory {self.opt.full_batch_memory} MB")
         self._save_checkpoint()
 
     def _final_model(self) -> Model:
@@ -502,7 +620,7 @@ class Trainer:
 
     def _table_header(self) -> str:
         return (f"{'pass':>4} {'rows':>11} {'train loss':>11} {'holdout loss':>13} {'norm.ent':>9} "
-                f"{'AUC':>7} {'pred/obs':>9} {'error':>7} {'train s':>8} {'eval s':>7}")
+                f"{'AUC':>7} {'pred/obs':>9} {'error':>7} {'train s':>8} {'eval s':>7}  {'phase':<10}")
 
     def _table_row(self, rec: dict) -> str:
         h = rec["holdout"] or {}
@@ -518,4 +636,4 @@ class Trainer:
         return (f"{rec['pass']:>4} {rec['rows']:>11,} {f(rec['progressive_loss'], '11.5f')} {f(loss, '13.5f')} "
                 f"{f(h.get('normalized_entropy'), '9.4f')} {f(h.get('auc', margin.get('auc')), '7.4f')} "
                 f"{f(h.get('calibration_ratio'), '8.4f')}{'!' if flagged else ' '} {f(h.get('error_rate', margin.get('error_rate')), '7.4f')} "
-                f"{rec['train_seconds']:8.1f} {rec['eval_seconds']:7.1f}")
+                f"{rec['train_seconds']:8.1f} {rec['eval_seconds']:7.1f}  {rec.get('phase', ''):<10}")

@@ -162,6 +162,15 @@ class LinearSolver:
         if batch.indices.shape[0] and (int(batch.indices.max()) >= self.n or int(batch.indices.min()) < 0):
             raise ValueError(f"batch holds a bucket id outside [0, {self.n}), the model's bucket range")
 
+    def assign(self, x: np.ndarray) -> None:
+        """Replace the weights by ``x`` (bucket weights then the intercept, length n_features + 1), as the
+        full-batch phase does; the method's own memory (curvature pairs, accumulators) is left as it is.
+        Raises ``ValueError`` for another length or a non-finite value."""
+        x = np.asarray(x, dtype=np.float64)
+        if x.shape != self._x.shape or not np.isfinite(x).all():
+            raise ValueError(f"weights must be {self._x.shape[0]} finite values; got shape {x.shape}")
+        self._x[:] = x
+
     def _gradient(self, batch) -> BatchGradient:
         """Evaluate the batch at the current weights; raise ``Diverged`` when the result is non-finite."""
         self._check_batch(batch)

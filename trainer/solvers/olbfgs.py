@@ -60,6 +60,27 @@ the holdout log-loss gap to the full-batch optimum after one pass):
 
 For small dense problems run for many passes, a longer horizon (for example step0 = 1, t0 = 100)
 converges faster.
+
+Defaults chosen on the regime matrix of ``scripts/bench_regimes.py`` (logs of many shapes, each
+against its own full-batch optimum; the table is in the README, section Performance). The solver is
+one part of the default; the training loop adds two (``trainer.training``): the model of an online
+pass is the average of the iterates over the pass's last 3/4, and a log whose hashed rows fit
+``--full-batch-memory`` is finished with full-batch L-BFGS-B passes (``trainer.solvers.full_batch``).
+Measured for one online pass, holdout log-loss over LL* (300k rows of the 20-field shape, 2^20
+buckets, unless said):
+
+* the damping's worth in rows, ``prior_rows`` = 0.05 / l2 (it was a fixed 100 rows): at l2 1e-4,
+  100 / 300 / 500 / 1000 / 3000 rows gave 1.0037 / 1.0036 / 1.0041 / 1.0069 / 1.0130; at l2 1e-5,
+  100 / 300 / 1000 / 3000 / 10000 rows gave 1.0132 / 0.9883 / 0.9835 / 0.9896 / 0.9954 (a weak l2 makes
+  the optimum itself over-fit, so one damped pass can beat it); on the time-ordered drift12 log at l2
+  1e-5 (raw holdout log-loss; AdaGrad at its defaults 0.15503), 949 / 3000 / 5000 / 10000 rows gave
+  0.15661 / 0.15546 / 0.15458 / 0.15469. The weaker the l2, the longer rare buckets need damping;
+* the averaging: at l2 1e-4 and the old damping the last iterate gave 1.0246, the average over the
+  last 1/4 / 1/2 / 3/4 / whole pass 1.0101 / 1.0060 / 1.0037 / 1.0057; going on from the last
+  iterate (not the average) gave 1.0014 / 1.0011 after passes 2 / 3 of online steps, restarting
+  from the average 1.0023 / 1.0021;
+* not taken: step0 0.6 (last iterate 1.0884, average 1.0041), t0 100 (1.1572, 1.0036), step0 0.1 on
+  the drift log (0.2137 raw against 0.1546).
 """
 
 from __future__ import annotations
@@ -76,12 +97,19 @@ from trainer.solvers._olbfgs_kernels import (CHUNK, chunk_pointers, commit_step,
                                              line_loss, line_residuals, pair_products, record_pair)
 
 
+def default_prior_rows(l2: float) -> float:
+    """The damping's default worth in rows, 0.05 / l2 (500 rows at l2 = 1e-4, 5000 at 1e-5, 50000 at
+    1e-6; at most 1e6), chosen on the regime matrix of ``scripts/bench_regimes.py`` (module docstring)."""
+    return min(0.05 / l2, 1e6) if l2 > 0 else 1e6
+
+
 class OnlineLBFGS(LinearSolver):
     """Online L-BFGS with a damped Gauss-Newton diagonal initial matrix (see the module docstring).
 
     Options: ``history`` (pairs kept, 1..100, default 10), ``step0`` (eps_0 in (0, inf), default 0.3),
     ``t0`` (decay horizon in steps, (0, 1e12], default 20), ``curvature_window`` (steps, [1, 1e12],
-    default 100), ``prior_rows`` (damping in rows of average curvature, [0, 1e12], default 100),
+    default 100), ``prior_rows`` (damping in rows of average curvature, [0, 1e12], default
+    :func:`default_prior_rows` of l2),
     ``armijo`` (sufficient-decrease constant, (0, 0.5], default 0.1), ``pair_dtype`` ("float32"
     or "float64", storage of the curvature steps, default "float32"). ``seconds`` accumulates the
     wall time of each phase (gradient, direction, line_search, update); it is not part of state().
@@ -97,13 +125,14 @@ class OnlineLBFGS(LinearSolver):
 
     def __init__(self, n_features: int, loss: str, l2: float, *, history: int = 10,
                  step0: float | None = None, t0: float = 20.0, curvature_window: float = 100.0,
-                 prior_rows: float = 100.0, armijo: float = 0.1, pair_dtype: str = "float32"):
+                 prior_rows: float | None = None, armijo: float = 0.1, pair_dtype: str = "float32"):
         super().__init__(n_features, loss, l2)
         self.history = check_int("--history", history, 1, 100)
         self.step0 = check_float("--step0", 0.3 if step0 is None else step0, 0.0, lo_open=True)
         self.t0 = check_float("t0", t0, 0.0, 1e12, lo_open=True)
         self.curvature_window = check_float("curvature_window", curvature_window, 1.0, 1e12)
-        self.prior_rows = check_float("prior_rows", prior_rows, 0.0, 1e12)
+        self.prior_rows = check_float("prior_rows", default_prior_rows(self.l2) if prior_rows is None else prior_rows,
+                                      0.0, 1e12)
         self.armijo = check_float("armijo", armijo, 0.0, 0.5, lo_open=True)
         self.pair_dtype = check_choice("pair_dtype", pair_dtype, ("float32", "float64"))
         self.seconds = {"gradient": 0.0, "direction": 0.0, "line_search": 0.0, "update": 0.0}

@@ -1,0 +1,93 @@
+"""The default solver's automatic phases: a tiny log trained full-batch reaches the scipy optimum, a
+scikit-learn data set gives scikit-learn's model, and a log that fits in memory switches to
+full-batch passes after the first, recorded in metrics.jsonl and run.json."""
+
+import json
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+from sklearn.datasets import load_breast_cancer
+from sklearn.linear_model import LogisticRegression
+from sklearn.metrics import log_loss
+
+from conftest import SMALL_SPEC, batch_csr, make_table, reference_objective, reference_optimum
+from trainer import api
+from trainer.reader import Reader
+
+
+def hashed(spec, path):
+    reader = Reader(spec, path, batch_rows=1 << 20)
+    batch = next(reader.batches())
+    return batch_csr(batch, spec.n_buckets), batch.labels, batch.weights
+
+
+def test_tiny_log_reaches_the_scipy_optimum(tmp_path):
+    # Reference: the same objective (weighted mean log-loss + l2/2 ||w||^2, intercept free) on the same
+    # hashed rows, minimized by scipy.optimize L-BFGS-B with tight tolerances (conftest helpers).
+    rng = np.random.default_rng(21)
+    pq.write_table(make_table(rng, 6000), tmp_path / "log.parquet")
+    spec_path = tmp_path / "spec.json"
+    spec_path.write_text(json.dumps({k: v for k, v in SMALL_SPEC.items() if k != "time"}))
+    model = api.train(spec_path, tmp_path / "log.parquet", tmp_path / "m", l2_strength=1e-3).model
+    spec = model.spec
+    X, y, c = hashed(spec, tmp_path / "log.parquet")
+    fg = reference_objective("logistic", X, y, c, 1e-3)
+    best = reference_optimum(fg, spec.n_buckets + 1)
+    ours = fg(np.append(model.weights, model.intercept))[0]
+    assert abs(ours - best.fun) <= 1e-6 * best.fun
+    lines = [json.loads(x) for x in (tmp_path / "m" / "metrics.jsonl").read_text().splitlines()]
+    assert [x["phase"] for x in lines] == ["full-batch"] * 3
+    phases = json.loads((tmp_path / "m" / "run.json").read_text())["phases"]
+    assert phases[0]["from_pass"] == 1 and phases[0]["phase"] == "full-batch" and "tiny" in phases[0]["reason"]
+
+
+def test_breast_cancer_matches_scikit_learn(tmp_path):
+    # Reference: scikit-learn's LogisticRegression (lbfgs, intercept unpenalized) with C = 1 / (n l2),
+    # the same objective as --l2 in per-row-average form, on scikit-learn's bundled Wisconsin breast
+    # cancer data (569 rows, 30 numeric columns), standardized, split 70/30 with a fixed seed.
+    X, y = load_breast_cancer(return_X_y=True)
+    X = (X - X.mean(axis=0)) / X.std(axis=0)
+    order = np.random.default_rng(2).permutation(len(y))
+    train, hold = order[:400], order[400:]
+    names = [f"x{j:02d}" for j in range(X.shape[1])]
+    for name, rows in (("train", train), ("hold", hold)):
+        cols = {c: pa.array(X[rows, j]) for j, c in enumerate(names)}
+        cols["malignant"] = pa.array(y[rows] == 0)
+        pq.write_table(pa.table(cols), tmp_path / f"{name}.parquet")
+    spec = {"label": {"column": "malignant"}, "hashing": {"bits": 18},
+            "features": [{"column": c, "kind": "numeric"} for c in names]}
+    (tmp_path / "spec.json").write_text(json.dumps(spec))
+    l2 = 1e-3
+    model = api.train(tmp_path / "spec.json", tmp_path / "train.parquet", tmp_path / "m", l2_strength=l2,
+                      holdout=tmp_path / "hold.parquet").model
+    assert np.count_nonzero(model.weights) == len(names)  # no two columns share a bucket
+    ref = LogisticRegression(C=1.0 / (len(train) * l2), tol=1e-10, max_iter=10_000).fit(X[train], y[train] == 0)
+    ll_ref = log_loss(y[hold] == 0, ref.predict_proba(X[hold])[:, 1])
+    ours = api.evaluate(model, tmp_path / "hold.parquet")["log_loss"]
+    assert abs(ours - ll_ref) <= 0.002 * ll_ref
+
+
+@pytest.fixture(scope="module")
+def log_60k(tmp_path_factory):
+    root = tmp_path_factory.mktemp("phaselog")
+    rng = np.random.default_rng(8)
+    pq.write_table(make_table(rng, 60_000), root / "log.parquet", row_group_size=5000)
+    spec = root / "spec.json"
+    spec.write_text(json.dumps({k: v for k, v in SMALL_SPEC.items() if k != "time"}))
+    return root / "log.parquet", spec
+
+
+def test_full_batch_after_the_first_pass_and_only_within_the_budget(log_60k, tmp_path):
+    # Reference: the budget arithmetic of trainer.solvers.full_batch.log_bytes (12 bytes per entry, 48
+    # per row) against the entries the reader hands out; the phase follows the stated rule.
+    data, spec_path = log_60k
+    api.train(spec_path, data, tmp_path / "fits", batch_rows=1000, epochs=2)
+    recs = [json.loads(x) for x in (tmp_path / "fits" / "metrics.jsonl").read_text().splitlines()]
+    assert [r["phase"] for r in recs] == ["online", "full-batch"]
+    assert recs[1]["full_batch"]["iterations"] >= 1
+    api.train(spec_path, data, tmp_path / "big", batch_rows=1000, epochs=2, full_batch_memory=1)
+    recs = [json.loads(x) for x in (tmp_path / "big" / "metrics.jsonl").read_text().splitlines()]
+    assert [r["phase"] for r in recs] == ["online", "online"]  # 60k rows x ~8 entries take more than 1 MB
+    assert json.loads((tmp_path / "big" / "run.json").read_text())["phases"] == []

@@ -1,0 +1,124 @@
+"""The full-batch phase: deterministic L-BFGS on the whole hashed log held in memory.
+
+When a log's hashed rows fit a memory budget, the default solver's later passes minimize the exact
+objective of :mod:`trainer.solvers` over all rows at once instead of one batch at a time: each such
+pass runs scipy's L-BFGS-B ("A Limited Memory Algorithm for Bound Constrained Optimization", SIAM
+Journal on Scientific Computing 16, 1995; "Algorithm 778: L-BFGS-B", ACM Transactions on
+Mathematical Software 23, 1997), without bounds, from the current weights, with the objective and
+its gradient computed by the project's serial numba kernels (margins, residuals, gradient scatter),
+so the same rows and starting weights give the same weights bit for bit. Each pass starts a fresh
+L-BFGS-B memory, so a pass depends only on the weights it starts from: a run resumed at a pass
+boundary repeats exactly what the uninterrupted run did.
+
+Memory: the in-memory log takes ``log_bytes(rows, entries)`` (int32 bucket and float64 value per
+entry, row pointer, label, row weight, margin and residual per row); L-BFGS-B adds 2 x ``history`` x
+(buckets + 1) float64 values while a pass runs.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.optimize
+
+from trainer.kernels import batch_support, dot, margins_into, residuals_into, scatter_compact
+
+#: L-BFGS-B iterations in one full-batch pass.
+ITERATIONS_PER_PASS = 30
+
+
+def log_bytes(rows: int, entries: int) -> int:
+    """Bytes the in-memory log of ``rows`` rows and ``entries`` nonzeros takes (see the module docstring)."""
+    return 12 * entries + 48 * rows + 8
+
+
+@dataclass
+class InMemoryLog:
+    """The hashed rows of one pass as one CSR matrix with labels and row weights; the entries address
+    the log's distinct buckets ``cols`` (ascending) by ``slot`` (:func:`trainer.kernels.batch_support`),
+    so the kernels work on gathered, compact vectors."""
+
+    indptr: np.ndarray
+    cols: np.ndarray
+    slot: np.ndarray
+    data: np.ndarray
+    labels: np.ndarray
+    weights: np.ndarray
+
+    @property
+    def n_rows(self) -> int:
+        return self.labels.shape[0]
+
+    @classmethod
+    def collect(cls, batches, budget_bytes: int, n_features: int) -> "InMemoryLog | None":
+        """Concatenate ``batches`` (:class:`trainer.reader.Batch`, in order, buckets below
+        ``n_features``); return None as soon as the rows would take more than ``budget_bytes`` (see
+        :func:`log_bytes`)."""
+        parts, rows, entries = [], 0, 0
+        for b in batches:
+            rows += b.n_rows
+            entries += b.indices.shape[0]
+            if log_bytes(rows, entries) > budget_bytes:
+                return None
+            parts.append((b.indptr[1:] - b.indptr[0], b.indices.astype(np.int32, copy=False), b.data, b.labels,
+                          b.weights))
+        indptr = np.zeros(rows + 1, dtype=np.int64)
+        at, offset = 1, 0
+        for ptr, idx, _, _, _ in parts:
+            indptr[at:at + ptr.shape[0]] = ptr + offset
+            at += ptr.shape[0]
+            offset += idx.shape[0]
+        cat = (lambda k, dtype: np.concatenate([p[k] for p in parts]).astype(dtype, copy=False)
+               if parts else np.zeros(0, dtype=dtype))
+        indices = cat(1, np.int32)
+        slot = np.empty(indices.shape[0], dtype=np.int32)
+        cols = batch_support(indices, np.zeros((n_features + 63) // 64, dtype=np.uint64), slot)
+        return cls(indptr, cols, slot, cat(2, np.float64), cat(3, np.float64), cat(4, np.float64))
+
+
+def minimize(log: InMemoryLog, code: int, l2: float, x: np.ndarray, *, history: int = 10,
+             iterations: int = ITERATIONS_PER_PASS, stop=None) -> dict:
+    """Run up to ``iterations`` L-BFGS-B iterations on F(w, b) = sum_i c_i l(y_i, x_i.w + b) / sum_i c_i
+    + (l2 / 2) ||w||^2 from ``x`` (bucket weights then the intercept, float64; overwritten with the
+    result). The iterations move the log's buckets and the intercept; every other bucket is set to
+    0, its exact minimizer (the objective is (l2 / 2) w_j^2 there). ``code`` is a loss code of :mod:`trainer.losses`; ``stop`` a callable polled after every
+    iteration that returns True to end the pass early (then ``x`` is left unchanged).
+
+    Returns {"iterations", "evaluations", "objective", "converged", "stopped", "seconds"}.
+    """
+    n = x.shape[0] - 1
+    m = log.cols.shape[0]
+    z = np.empty(log.n_rows, dtype=np.float64)
+    r = np.empty(log.n_rows, dtype=np.float64)
+
+    def fg(v):
+        w = v[:m]
+        margins_into(log.indptr, log.slot, log.data, w, float(v[m]), z)
+        loss_sum, weight_sum, r_sum = residuals_into(code, log.labels, log.weights, z, r)
+        g = np.empty(m + 1, dtype=np.float64)
+        scatter_compact(log.indptr, log.slot, log.data, r, 1.0 / weight_sum, g[:m])
+        g[:m] += l2 * w
+        g[m] = r_sum / weight_sum
+        return loss_sum / weight_sum + 0.5 * l2 * dot(w, w), g
+
+    stopped = False
+
+    def poll(_result):
+        nonlocal stopped
+        if stop is not None and stop():
+            stopped = True
+            raise StopIteration
+
+    started = time.perf_counter()
+    res = scipy.optimize.minimize(fg, np.append(x[log.cols], x[n]), jac=True, method="L-BFGS-B", callback=poll,
+                                  options={"maxiter": iterations, "maxcor": history, "ftol": 1e-15,
+                                           "gtol": 1e-12, "maxfun": 2 * iterations + 20})
+    if not stopped:
+        x[:] = 0.0
+        x[log.cols] = res.x[:m]
+        x[n] = res.x[m]
+    return {"iterations": int(res.nit), "evaluations": int(res.nfev), "objective": float(res.fun),
+            "converged": bool(res.success) and res.nit < iterations, "stopped": stopped,
+            "seconds": time.perf_counter() - started}
