@@ -2,6 +2,7 @@
 
 import datetime as dt
 import json
+from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
@@ -60,6 +61,14 @@ def make_table(rng: np.random.Generator, n: int, day: dt.date | None = None) -> 
     if day is not None:
         cols["day"] = pa.array([day] * n, pa.date32())
     return pa.table(cols)
+
+
+def write_parts(folder: Path, rng: np.random.Generator, rows: int, parts: int = 2) -> Path:
+    """``parts`` invented files of ``rows`` rows each (row groups of 1000) in a new ``folder``."""
+    folder.mkdir()
+    for i in range(parts):
+        pq.write_table(make_table(rng, rows), folder / f"part-{i}.parquet", row_group_size=1000)
+    return folder
 
 
 @pytest.fixture

@@ -30,7 +30,7 @@ from trainer.checkpoint import load_checkpoint
 from trainer.cli import main
 from trainer.model import load_model
 
-from conftest import SMALL_SPEC, make_table
+from conftest import SMALL_SPEC, make_table, write_parts
 
 CKPT = "checkpoint.bin"
 
@@ -39,10 +39,7 @@ CKPT = "checkpoint.bin"
 def job(tmp_path_factory):
     root = tmp_path_factory.mktemp("killmatrix")
     rng = np.random.default_rng(21)
-    data = root / "train"
-    data.mkdir()
-    for i in range(2):
-        pq.write_table(make_table(rng, 2000), data / f"part-{i}.parquet", row_group_size=1000)
+    data = write_parts(root / "train", rng, 2000)
     pq.write_table(make_table(rng, 800), root / "holdout.parquet")
     spec = root / "spec.json"  # 2^16 buckets: a checkpoint of 3.7 MB, so its write lasts long enough to be seen
     spec.write_text(json.dumps({**SMALL_SPEC, "hashing": {"bits": 16, "seed": 42}}))

@@ -22,17 +22,14 @@ from trainer.checkpoint import load_checkpoint
 from trainer.cli import main
 from trainer.model import load_model
 
-from conftest import SMALL_SPEC, assert_one_line, make_table
+from conftest import SMALL_SPEC, assert_one_line, write_parts
 
 
 @pytest.fixture(scope="module")
 def job(tmp_path_factory):
     root = tmp_path_factory.mktemp("restart")
     rng = np.random.default_rng(8)
-    data = root / "train"
-    data.mkdir()
-    for i in range(2):
-        pq.write_table(make_table(rng, 3000), data / f"part-{i}.parquet", row_group_size=1000)
+    data = write_parts(root / "train", rng, 3000)
     spec = root / "spec.json"
     spec.write_text(json.dumps(SMALL_SPEC))
 

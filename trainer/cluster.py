@@ -30,7 +30,6 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
-import hashlib
 import json
 import logging
 import math
@@ -45,6 +44,7 @@ from numba import njit
 from trainer.atomic import atomic_path, write_atomic
 from trainer.errors import Interrupted, UserError
 from trainer.evaluation import EvalState, accumulate, summarize
+from trainer.export import sha256_file
 from trainer.losses import d2loss, dloss, loss, loss_code
 from trainer.model import Model
 from trainer.reader import Part, Reader
@@ -188,14 +188,6 @@ class _NoRows(Exception):
     """Raised inside a part's atomic write when the part has no rows, so no file appears."""
 
 
-def _sha256(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
-
-
 def _score_part(item: tuple[int, Part], model: Model, reader: Reader, keep: tuple[str, ...], out: str) -> dict:
     index, part = item
     r = reader.for_part(part)
@@ -208,7 +200,7 @@ def _score_part(item: tuple[int, Part], model: Model, reader: Reader, keep: tupl
                 raise _NoRows
     except _NoRows:
         return {"file": None, "rows": 0, "sha256": None}
-    return {"file": name, "rows": rows, "sha256": _sha256(target)}
+    return {"file": name, "rows": rows, "sha256": sha256_file(target)}
 
 
 def _check_dataset_folder(out: Path, force: bool) -> list[Path]:
