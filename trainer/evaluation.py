@@ -17,9 +17,16 @@ NULL = "(null)"
 
 
 class EvaluationResult(dict):
-    """The metrics of one evaluation, in the manner of ``scipy.optimize.OptimizeResult``: a dict (its
-    keys are those of the ``evaluate --json`` document, see :func:`evaluate`) whose keys also read as
-    attributes (``result.log_loss``)."""
+    """The metrics of one evaluation, in the manner of ``scipy.optimize.OptimizeResult``.
+
+    A dict whose keys are those of the ``evaluate --json`` document (see :func:`evaluate`) and also
+    read as attributes (``result.log_loss``).
+
+    Raises
+    ------
+    AttributeError
+        When read as an attribute that is not one of its keys.
+    """
 
     def __getattr__(self, name):
         try:
@@ -32,6 +39,13 @@ class SegmentSums:
     """Per-value running sums of one column: rows, weight, weighted labels, predictions and log-loss.
 
     Tracks up to ``MAX_TRACKED_SEGMENTS`` distinct values; later new values pool into one row.
+
+    Attributes
+    ----------
+    ids : dict of str to int
+        Row of ``sums`` for each value seen (``"(null)"`` for nulls, ``"(other values)"`` for the pool).
+    sums : numpy.ndarray
+        Shape (values, 5): rows, weight, weighted labels, weighted predictions, weighted log-loss.
     """
 
     def __init__(self):
@@ -39,7 +53,19 @@ class SegmentSums:
         self.sums = np.zeros((0, 5))
 
     def update(self, values: pa.Array, labels: np.ndarray, probs: np.ndarray, weights: np.ndarray) -> None:
-        """Add a chunk: ``values`` of the segment column, 0/1 ``labels``, ``probs`` and row ``weights``."""
+        """Add a chunk of scored rows.
+
+        Parameters
+        ----------
+        values : pyarrow.Array
+            The segment column's values for the chunk (any type, cast to string; nulls form one segment).
+        labels : numpy.ndarray
+            0/1 labels.
+        probs : numpy.ndarray
+            Predicted probabilities (clipped to [1e-15, 1 - 1e-15] for the log-loss).
+        weights : numpy.ndarray
+            Row weights.
+        """
         enc = pc.dictionary_encode(pc.cast(values, pa.string()) if not pa.types.is_dictionary(values.type)
                                    else values.cast(pa.string()))
         codes = enc.indices.fill_null(-1).to_numpy(zero_copy_only=False)
@@ -60,8 +86,19 @@ class SegmentSums:
             self.sums[:, j] += np.bincount(g, weights=v, minlength=size)
 
     def table(self, limit: int) -> list[dict]:
-        """The ``limit`` largest segments by rows (ties by value), then the rest pooled as one row;
-        values that no row had (an empty null segment) are left out."""
+        """The largest segments by rows, then the rest pooled as one row.
+
+        Parameters
+        ----------
+        limit : int
+            How many segments to list (ties by rows are ordered by value).
+
+        Returns
+        -------
+        list of dict
+            One row per segment: ``value``, ``rows``, ``observed_rate``, ``mean_prediction``,
+            ``calibration_ratio``, ``log_loss``; values that no row had (an empty null segment) are left out.
+        """
         names = sorted(self.ids, key=self.ids.get)
         order = np.lexsort((np.array(names, dtype=object), -self.sums[:, 0]))
         order = order[self.sums[order, 0] > 0]
@@ -80,8 +117,19 @@ class SegmentSums:
                 "log_loss": wl / w if w else float("nan")}
 
     def merge(self, other: "SegmentSums") -> "SegmentSums":
-        """Add ``other``'s sums into this one (values new to this one join in ``other``'s order, and
-        pool into one row past ``MAX_TRACKED_SEGMENTS``); returns self."""
+        """Add another accumulator's sums into this one.
+
+        Parameters
+        ----------
+        other : SegmentSums
+            Values new to this one join in ``other``'s order, and pool into one row past
+            ``MAX_TRACKED_SEGMENTS``.
+
+        Returns
+        -------
+        SegmentSums
+            self.
+        """
         names = sorted(other.ids, key=other.ids.get)
         for name in names:
             if name not in self.ids:
@@ -96,7 +144,19 @@ class SegmentSums:
 
 @dataclass
 class EvalState:
-    """The mergeable state of an evaluation: the metric accumulators of one slice of rows."""
+    """The mergeable state of an evaluation: the metric accumulators of one slice of rows.
+
+    Attributes
+    ----------
+    probs : BinaryMetrics or None
+        Probability metrics (models with a probability: logistic, or calibrated squared-hinge).
+    margins : MarginMetrics or None
+        Margin metrics (squared-hinge models).
+    segments : SegmentSums or None
+        Per-value sums of the ``by`` column.
+    hinge : numpy.ndarray
+        Weighted sum of squared hinge losses and the total weight.
+    """
 
     probs: BinaryMetrics | None
     margins: MarginMetrics | None
@@ -104,7 +164,18 @@ class EvalState:
     hinge: np.ndarray
 
     def merge(self, other: "EvalState") -> "EvalState":
-        """The state of both slices together (exact: counts, sums and rank histograms add up)."""
+        """The state of both slices together (exact: counts, sums and rank histograms add up).
+
+        Parameters
+        ----------
+        other : EvalState
+            The other slice's state, made for the same model and ``by``.
+
+        Returns
+        -------
+        EvalState
+            A new state (``segments`` is this one's, merged in place).
+        """
         seg = self.segments.merge(other.segments) if self.segments is not None else None
         return EvalState(self.probs.merge(other.probs) if self.probs is not None else None,
                          self.margins.merge(other.margins) if self.margins is not None else None,
@@ -112,8 +183,22 @@ class EvalState:
 
 
 def accumulate(model, batches, *, by: str | None = None) -> EvalState:
-    """Score every batch of the iterable ``batches`` with ``model`` into a new EvalState (with
-    ``by``, the batches must carry that column)."""
+    """Score batches with a model into a new evaluation state.
+
+    Parameters
+    ----------
+    model : trainer.model.Model
+        The model to score with.
+    batches : iterable of trainer.reader.stream.Batch
+        The rows to score; with ``by``, each batch must carry that column.
+    by : str, optional
+        The column to split the metrics by.
+
+    Returns
+    -------
+    EvalState
+        The accumulators over every batch.
+    """
     state = EvalState(BinaryMetrics() if model.has_probability else None,
                       MarginMetrics() if model.loss == "squared-hinge" else None,
                       SegmentSums() if by else None, np.zeros(2))
@@ -133,7 +218,20 @@ def accumulate(model, batches, *, by: str | None = None) -> EvalState:
 
 
 def summarize(state: EvalState, segments: int = 20) -> EvaluationResult:
-    """The metrics summary of an EvalState (see :func:`evaluate` for its keys)."""
+    """The metrics summary of an evaluation state.
+
+    Parameters
+    ----------
+    state : EvalState
+        The accumulators (from :func:`accumulate`, possibly merged).
+    segments : int, default 20
+        How many segments to list when the state has segment sums.
+
+    Returns
+    -------
+    EvaluationResult
+        See :func:`evaluate` for its keys.
+    """
     out = EvaluationResult(state.probs.summary() if state.probs is not None else {})
     if state.margins is not None:
         hinge = state.hinge
@@ -147,14 +245,28 @@ def summarize(state: EvalState, segments: int = 20) -> EvaluationResult:
 
 
 def evaluate(model, reader: Reader, *, by: str | None = None, segments: int = 20) -> EvaluationResult:
-    """Score every row of ``reader`` with ``model`` and return the metrics summary (an
-    :class:`EvaluationResult`).
+    """Score every row of a reader with a model and return the metrics summary.
 
     For logistic models (and squared-hinge models with a probability calibration) the summary is
     ``BinaryMetrics.summary()``; squared-hinge models add ``margin`` (``MarginMetrics.summary()``:
     AUC and error rate on margins) and ``squared_hinge_loss`` (weighted mean of
-    max(0, 1 - s m)^2, s = 2y - 1), and report only those when uncalibrated. With ``by``, the reader
-    must keep that column, and ``segments`` lists the largest ``segments`` values (rows, observed
-    rate, mean prediction, calibration ratio, log-loss), the rest pooled.
+    max(0, 1 - s m)^2, s = 2y - 1), and report only those when uncalibrated.
+
+    Parameters
+    ----------
+    model : trainer.model.Model
+        The model to score with.
+    reader : trainer.reader.stream.Reader
+        The labelled rows; with ``by``, the reader must keep that column.
+    by : str, optional
+        A column to split the metrics by.
+    segments : int, default 20
+        With ``by``, how many of the largest values to list (rows, observed rate, mean prediction,
+        calibration ratio, log-loss); the rest are pooled into one row.
+
+    Returns
+    -------
+    EvaluationResult
+        The metrics summary.
     """
     return summarize(accumulate(model, reader.batches(), by=by), segments)
