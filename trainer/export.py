@@ -46,7 +46,27 @@ TRAINING_SCORING_KEYS = ("format", "version", "spec", "loss", "arrays_file", "ar
 
 
 def sha256_file(path: Path) -> str:
-    """The SHA-256 hex digest of the file at ``path``, read in 1 MiB blocks."""
+    """The SHA-256 digest of a file, read in 1 MiB blocks.
+
+    Parameters
+    ----------
+    path : Path
+        The file.
+
+    Returns
+    -------
+    str
+        The 64-character lowercase hex digest.
+
+    Raises
+    ------
+    OSError
+        When the file cannot be read.
+
+    References
+    ----------
+    "Secure Hash Standard (SHS)", FIPS PUB 180-4, NIST, 2015.
+    """
     h = hashlib.sha256()
     with open(path, "rb") as f:
         for block in iter(lambda: f.read(1 << 20), b""):
@@ -55,9 +75,19 @@ def sha256_file(path: Path) -> str:
 
 
 def scoring_fields(meta: dict) -> dict:
-    """The fields of a ``model.json`` document (export or training form) that decide a score: the
-    export's :data:`EXPORT_SCORING_KEYS`, or a training folder's :data:`TRAINING_SCORING_KEYS` plus
-    ``calibration`` taken from ``info``. An absent key counts as null. Raises nothing."""
+    """The fields of a ``model.json`` document that decide a score.
+
+    Parameters
+    ----------
+    meta : dict
+        A ``model.json`` document, export or training form.
+
+    Returns
+    -------
+    dict
+        The export's :data:`EXPORT_SCORING_KEYS`, or a training folder's :data:`TRAINING_SCORING_KEYS`
+        plus ``calibration`` taken from ``info``; an absent key counts as null.
+    """
     if meta.get("format") != EXPORT_FORMAT:
         info = meta.get("info")
         return {**{k: meta.get(k) for k in TRAINING_SCORING_KEYS},
@@ -66,15 +96,55 @@ def scoring_fields(meta: dict) -> dict:
 
 
 def scoring_sha256(meta: dict) -> str:
-    """Hex SHA-256 of the RFC 8785 canonical JSON ("JSON Canonicalization Scheme (JCS)", 2020) of
-    :func:`scoring_fields` of ``meta``. Raises ValueError when a field has no canonical form (NaN,
-    infinity, an integer beyond 2^53)."""
+    """The SHA-256 of the canonical JSON of a document's scoring fields.
+
+    Parameters
+    ----------
+    meta : dict
+        A ``model.json`` document, export or training form (see :func:`scoring_fields`).
+
+    Returns
+    -------
+    str
+        The hex SHA-256 of the RFC 8785 canonical JSON of :func:`scoring_fields` of ``meta``.
+
+    Raises
+    ------
+    ValueError
+        When a field has no canonical form (NaN, infinity, an integer beyond 2^53).
+
+    References
+    ----------
+    A. Rundgren, B. Jordan, S. Erdtman, "JSON Canonicalization Scheme (JCS)", RFC 8785, IETF, 2020.
+    "Secure Hash Standard (SHS)", FIPS PUB 180-4, NIST, 2015.
+    """
     return hashlib.sha256(canonical_json(scoring_fields(meta))).hexdigest()
 
 
 def require_key(meta: dict, key: str, types, path: Path):
-    """``meta[key]`` when it has one of ``types`` (a bool never counts as a number); else UserError
-    naming the file ``path`` and the key."""
+    """A key of a ``model.json`` document, checked for its type.
+
+    Parameters
+    ----------
+    meta : dict
+        The document.
+    key : str
+        The key.
+    types : type or tuple of types
+        The accepted types (a bool never counts as a number).
+    path : Path
+        The document's file, named in the error.
+
+    Returns
+    -------
+    object
+        ``meta[key]``.
+
+    Raises
+    ------
+    UserError
+        When the key is missing or its value has another type.
+    """
     value = meta.get(key)
     if isinstance(value, bool) or not isinstance(value, types):
         raise UserError(f"{path}: key '{key}' is missing or has the wrong type")
@@ -89,12 +159,29 @@ def _stored_calibration(cal):
 
 
 def read_export(folder: Path, meta: dict) -> tuple[Spec, np.ndarray, float, str, dict]:
-    """The parts of the model in the export folder ``folder`` whose ``model.json`` holds ``meta``:
-    (spec, float64 weights of length 2^bits, intercept, loss, info) for :class:`trainer.model.Model`.
+    """Read and verify an export folder's model.
 
-    Checks that the hashing contract agrees with the spec and that ``weights.parquet`` matches its
-    recorded SHA-256, has exactly the columns bucket (int64) and weight (float64) without nulls, and
-    strictly increasing buckets in range. Raises UserError naming the file otherwise.
+    Parameters
+    ----------
+    folder : Path
+        The export folder.
+    meta : dict
+        Its ``model.json`` document (format and version already checked).
+
+    Returns
+    -------
+    tuple
+        ``(spec, weights, intercept, loss, info)`` for :class:`trainer.model.Model`: the Spec, float64
+        weights of length 2^bits (zero where ``weights.parquet`` has no row), the intercept, the loss
+        and the info dict (options, summary, negative keep rate, holdout, calibration, examples).
+
+    Raises
+    ------
+    UserError
+        When the hashing contract disagrees with the spec, or ``weights.parquet`` is missing, does not
+        match its recorded SHA-256, is not Parquet, lacks exactly the columns bucket (int64) and
+        weight (float64), holds nulls, or has buckets that are not strictly increasing in range; the
+        message names the file.
     """
     meta_path = folder / META_FILE
     spec = parse_spec(require_key(meta, "spec", dict, meta_path), f"{meta_path}: spec")
@@ -137,9 +224,24 @@ def _utc_now() -> str:
 
 
 def export_document(model, weights_sha256: str, nonzero: int) -> dict:
-    """The export's ``model.json`` document for ``model`` (see ``schemas/model.schema.json``), given the
-    SHA-256 of the written ``weights.parquet`` and its row count. Returns a JSON-ready dict; raises
-    nothing."""
+    """The export's ``model.json`` document (see ``schemas/model.schema.json``).
+
+    Parameters
+    ----------
+    model : trainer.model.Model
+        The model exported.
+    weights_sha256 : str
+        The SHA-256 hex digest of the written ``weights.parquet``.
+    nonzero : int
+        Its row count (the non-zero weights).
+
+    Returns
+    -------
+    dict
+        A JSON-ready document: format, version, generator, creation time, loss, link and score
+        formula, calibration, intercept, hashing contract, spec, sizes, weights file and checksum,
+        training options and summary, holdout metrics and example tokens.
+    """
     link = LINKS[model.loss]
     cal = model.calibration
     doc = jsonable({
@@ -183,16 +285,33 @@ def _write_files(model, folder: Path) -> None:
 
 
 def write_export(model, out_dir: str | Path, *, source: Path, force: bool = False) -> Path:
-    """Write the export of ``model`` (a :class:`trainer.model.Model` read from the model folder
-    ``source``) to ``out_dir``.
+    """Write an export folder atomically.
 
-    Writes ``out_dir/weights.parquet`` (bucket int64, weight float64; non-zero weights only, sorted by
-    bucket) and ``out_dir/model.json`` (:func:`export_document`) into a temporary sibling folder, then
-    renames it into place, so ``out_dir`` holds either nothing new or a complete export. An existing
-    non-empty ``out_dir`` is refused unless ``force``; even then only a previous export (model.json
-    and weights.parquet alone) is replaced. Returns ``out_dir`` as a Path. Raises UserError for an
-    ``out_dir`` that is a file, the model's own folder, a non-empty folder without ``force``, or a
-    folder that cannot be written.
+    ``out_dir/weights.parquet`` (bucket int64, weight float64; non-zero weights only, sorted by bucket)
+    and ``out_dir/model.json`` (:func:`export_document`) are written into a temporary sibling folder,
+    which is then renamed into place, so ``out_dir`` holds either nothing new or a complete export.
+
+    Parameters
+    ----------
+    model : trainer.model.Model
+        The model to export.
+    out_dir : str or Path
+        The export folder: new, empty, or (with ``force``) a previous export.
+    source : Path
+        The model folder ``model`` was read from (an export never replaces it).
+    force : bool
+        Replace a previous export (model.json and weights.parquet alone).
+
+    Returns
+    -------
+    Path
+        ``out_dir``.
+
+    Raises
+    ------
+    UserError
+        For an ``out_dir`` that is a file or the model's own folder, a non-empty folder without
+        ``force``, a folder holding other files, or a folder that cannot be written.
     """
     out = Path(out_dir)
     if out.exists() and not out.is_dir():
