@@ -9,7 +9,23 @@ import numpy as np
 
 @nb.njit(cache=True)
 def scatter_rows(ptr, ids, buckets, values, cursor, out_idx, out_val):
-    """Append each row's entries (bucket, value) at that row's cursor in the output CSR."""
+    """Append each row's entries (bucket, value) at that row's cursor in the output CSR.
+
+    Parameters
+    ----------
+    ptr : numpy.ndarray
+        int64 row offsets into ``ids`` (a :class:`~trainer.reader.featurize.TokenTable`'s ``ptr``).
+    ids : numpy.ndarray
+        Token ids of the entries.
+    buckets : numpy.ndarray
+        Bucket of each token id.
+    values : numpy.ndarray
+        float64 value per entry, or an empty array for all 1.0.
+    cursor : numpy.ndarray
+        int64 next free slot of each row in the output; advanced in place.
+    out_idx, out_val : numpy.ndarray
+        The output CSR's int32 indices and float64 data, written in place.
+    """
     has_values = values.size > 0
     for r in range(ptr.size - 1):
         c = cursor[r]
@@ -22,7 +38,20 @@ def scatter_rows(ptr, ids, buckets, values, cursor, out_idx, out_val):
 
 @nb.njit(cache=True)
 def take_rows(indptr, indices, data, rows):
-    """Gather CSR rows ``rows`` (int64) into a new CSR (indptr, indices, data)."""
+    """Gather CSR rows into a new CSR.
+
+    Parameters
+    ----------
+    indptr, indices, data : numpy.ndarray
+        The CSR (int64 offsets, int32 buckets, float64 values).
+    rows : numpy.ndarray
+        int64 numbers of the rows to take, in the order wanted (repeats allowed).
+
+    Returns
+    -------
+    tuple of numpy.ndarray
+        ``(indptr int64, indices int32, data float64)`` of the taken rows.
+    """
     n = rows.size
     out_ptr = np.zeros(n + 1, dtype=np.int64)
     for i in range(n):
@@ -42,9 +71,28 @@ def take_rows(indptr, indices, data, rows):
 
 @nb.njit(cache=True)
 def keep_uniform(file_idx, raw, seed, pass_index):
-    """A uniform number in [0, 1) per row from (seed, pass, file, row) by the SplitMix64 finalizer
-    ("Fast splittable pseudorandom number generators", OOPSLA 2014): the same row always draws the
-    same number, however the log is chunked or resumed."""
+    """A uniform number in [0, 1) per row from (seed, pass, file, row).
+
+    The same row always draws the same number, however the log is chunked or resumed.
+
+    Parameters
+    ----------
+    file_idx : int
+        The file's number in the input.
+    raw : numpy.ndarray
+        int64 row numbers within the file.
+    seed, pass_index : int
+        The run's seed and the pass.
+
+    Returns
+    -------
+    numpy.ndarray
+        float64 numbers in [0, 1), one per row of ``raw``.
+
+    References
+    ----------
+    The SplitMix64 finalizer: "Fast Splittable Pseudorandom Number Generators", OOPSLA, 2014.
+    """
     out = np.empty(raw.size, dtype=np.float64)
     for i in range(raw.size):
         z = (np.uint64(seed) * np.uint64(0x9E3779B97F4A7C15) + np.uint64(pass_index) * np.uint64(0xBF58476D1CE4E5B9)
