@@ -11,9 +11,30 @@ from trainer.reader.featurize import TokenTable
 
 
 class BucketExamples:
-    """A few readable token values per bucket, from the first ``max_rows`` rows hashed, so reports can
-    say which field values a weight came from: at most ``per_bucket`` values per bucket and
-    ``max_values`` in all (frequent values come first, as they fill the first chunks)."""
+    """A few readable token values per bucket, for reports.
+
+    Kept from the first ``max_rows`` rows hashed, so reports can say which field values a weight came
+    from: at most ``per_bucket`` values per bucket and ``max_values`` in all (frequent values come first,
+    as they fill the first chunks).
+
+    Parameters
+    ----------
+    n_buckets : int
+        The model's 2^bits buckets.
+    per_bucket : int, default 2
+        Values kept per bucket.
+    max_rows : int, default 131072
+        Rows observed before recording stops.
+    values : dict of str to list of str, optional
+        Values recorded before (from a checkpoint), keyed by bucket number as a string.
+    max_values : int, default 100000
+        Values kept in all.
+
+    Attributes
+    ----------
+    values : dict of str to list of str
+        The recorded values, keyed by bucket number as a string.
+    """
 
     def __init__(self, n_buckets: int, per_bucket: int = 2, max_rows: int = 131_072,
                  values: dict[str, list[str]] | None = None, max_values: int = 100_000):
@@ -26,8 +47,15 @@ class BucketExamples:
             self.total += len(v)
 
     def observe(self, tables: list[TokenTable], n_rows: int) -> None:
-        """Record values from a chunk of ``n_rows`` rows hashed into the token ``tables`` (the
-        featurizer's observer protocol); nothing once ``max_rows`` rows were seen."""
+        """Record values from one hashed chunk (the featurizer's observer protocol).
+
+        Parameters
+        ----------
+        tables : list of TokenTable
+            The chunk's token tables, their ``buckets`` set.
+        n_rows : int
+            The chunk's rows; nothing is recorded once ``max_rows`` rows were seen.
+        """
         if self.rows_left <= 0:
             return
         for tok in tables:
@@ -35,7 +63,15 @@ class BucketExamples:
         self.rows_left -= n_rows
 
     def add(self, tok: TokenTable, buckets: np.ndarray) -> None:
-        """Record values of the tokens ``tok`` uses whose buckets have room."""
+        """Record values of the tokens of one token table whose buckets have room.
+
+        Parameters
+        ----------
+        tok : TokenTable
+            The token table; only the tokens its rows use (``tok.ids``) count.
+        buckets : numpy.ndarray
+            Bucket of each token of ``tok``.
+        """
         used = np.zeros(tok.off.shape[0] - 1, dtype=bool)
         used[tok.ids] = True
         ids = np.flatnonzero(used)
