@@ -25,9 +25,30 @@ _EMPTY_BYTES = np.zeros(0, dtype=np.uint8)
 
 @dataclass
 class TokenTable:
-    """A feature's tokens for one chunk: row r owns ids[ptr[r]:ptr[r+1]] into a token table whose
-    token k is prefix + buf[off[k]:off[k+1]] and hashes to buckets[k]; ``values`` per entry or None
-    (all 1.0); ``dictionary``, the Arrow dictionary the table came from, if any."""
+    """A feature's tokens for one chunk.
+
+    Row r owns ``ids[ptr[r]:ptr[r+1]]`` into a token table whose token k is
+    ``prefix + buf[off[k]:off[k+1]]`` and hashes to ``buckets[k]``.
+
+    Attributes
+    ----------
+    ptr : numpy.ndarray
+        int64 row offsets into ``ids``.
+    ids : numpy.ndarray
+        Token id of each entry.
+    prefix : numpy.ndarray
+        uint8 bytes every token starts with (the column name and a separator).
+    buf : numpy.ndarray
+        uint8 bytes of the tokens' values.
+    off : numpy.ndarray
+        int64 offsets of each token's bytes in ``buf``.
+    buckets : numpy.ndarray or None
+        Bucket of each token, once hashed.
+    values : numpy.ndarray or None
+        float64 value per entry, or None (all 1.0).
+    dictionary : pyarrow.Array or None
+        The Arrow dictionary the table came from, if any.
+    """
 
     ptr: np.ndarray
     ids: np.ndarray
@@ -152,7 +173,18 @@ def _numeric_tokens(arr: pa.Array, feat: Feature, prefix: np.ndarray, where: str
 class Featurizer:
     """Hashes the spec's features of a chunk of rows into CSR (``trainer.hashing`` contract).
 
-    Observers attached with :meth:`watch` are shown every chunk's hashed token tables."""
+    Observers attached with :meth:`watch` are shown every chunk's hashed token tables.
+
+    Parameters
+    ----------
+    spec : Spec
+        The feature spec: features, crosses, hash bits and seed.
+
+    References
+    ----------
+    MurmurHash3 x86 32-bit: "MurmurHash3", SMHasher project, 2011. Feature hashing: "Feature Hashing
+    for Large Scale Multitask Learning", ICML, 2009.
+    """
 
     def __init__(self, spec: Spec):
         self.spec = spec
@@ -164,8 +196,14 @@ class Featurizer:
                          for f in spec.features}
 
     def watch(self, observer) -> None:
-        """Show ``observer`` every chunk hashed from now on: ``observer.observe(tables, n_rows)`` is
-        called with the chunk's token tables (their ``buckets`` set) and its row count."""
+        """Show an observer every chunk hashed from now on.
+
+        Parameters
+        ----------
+        observer : object
+            Has ``observe(tables, n_rows)``, called with each chunk's token tables
+            (:class:`TokenTable`, their ``buckets`` set) and its row count.
+        """
         self.observers.append(observer)
 
     def _feature_tokens(self, feat: Feature, arr: pa.Array, where: str) -> TokenTable:
@@ -192,10 +230,27 @@ class Featurizer:
         return tok.buckets
 
     def transform(self, table: pa.Table | pa.RecordBatch, source: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """Hash the rows of ``table`` into CSR ``(indptr int64, indices int32, data float64)``.
+        """Hash a chunk of rows into CSR, by the hashing contract (MurmurHash3 x86 32-bit).
 
-        Row r holds the features in spec order, then the crosses. ``source`` (the file) names the
-        place in error messages. Raises UserError for a column of the wrong type or bad numerics.
+        Row r holds the features in spec order, then the crosses.
+
+        Parameters
+        ----------
+        table : pyarrow.Table or pyarrow.RecordBatch
+            The rows, with the spec's feature columns.
+        source : str
+            The file, named in error messages.
+
+        Returns
+        -------
+        tuple of numpy.ndarray
+            ``(indptr int64, indices int32, data float64)``.
+
+        Raises
+        ------
+        UserError
+            For a column of the wrong type (a list column not declared 'multi' included), NaN or
+            infinite numerics, or dictionary codes outside their dictionary.
         """
         n = table.num_rows
         toks: dict[str, TokenTable] = {}
@@ -231,7 +286,28 @@ class Featurizer:
 
 
 def parse_labels(arr: pa.Array, spec: Spec, where: str) -> tuple[np.ndarray, np.ndarray]:
-    """(y float64 in {0,1}, ok mask): nulls and values outside the accepted set are not ok."""
+    """Parse a label column.
+
+    Parameters
+    ----------
+    arr : pyarrow.Array
+        The labels: booleans, numbers 0/1 or -1/1, or strings (dictionary-encoded or not).
+    spec : Spec
+        The spec, whose ``label.positive`` and ``label.negative`` classify strings.
+    where : str
+        The file and column, named in the error.
+
+    Returns
+    -------
+    tuple of numpy.ndarray
+        ``(y, ok)``: float64 labels in {0, 1}, and a mask that is False for nulls and values outside the
+        accepted set.
+
+    Raises
+    ------
+    UserError
+        For strings without ``label.positive`` in the spec, or a column of another type.
+    """
     t = arr.type
     if pa.types.is_dictionary(t):
         arr = arr.cast(t.value_type)
@@ -257,6 +333,18 @@ def parse_labels(arr: pa.Array, spec: Spec, where: str) -> tuple[np.ndarray, np.
 
 
 def accepted_labels(spec: Spec) -> str:
+    """The label values a spec accepts, for messages.
+
+    Parameters
+    ----------
+    spec : Spec
+        The spec.
+
+    Returns
+    -------
+    str
+        E.g. ``"0/1, -1/1 or true/false"``, or the positive and negative strings.
+    """
     if spec.positive is None:
         return "0/1, -1/1 or true/false"
     neg = ", ".join(spec.negative) if spec.negative else "any other string"
@@ -264,6 +352,25 @@ def accepted_labels(spec: Spec) -> str:
 
 
 def parse_weights(arr: pa.Array, where: str) -> np.ndarray:
+    """Parse a row weight column.
+
+    Parameters
+    ----------
+    arr : pyarrow.Array
+        The weights (integers or floats).
+    where : str
+        The file and column, named in the error.
+
+    Returns
+    -------
+    numpy.ndarray
+        float64 weights.
+
+    Raises
+    ------
+    UserError
+        For a column that is not numeric, or any null, non-finite or non-positive weight.
+    """
     if not (pa.types.is_integer(arr.type) or pa.types.is_floating(arr.type)):
         raise UserError(f"{where} is {arr.type}; row weights must be numbers")
     w = pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False)
