@@ -24,7 +24,19 @@ PARQUET_SUFFIXES = (".parquet", ".parq")
 
 @dataclass
 class DataFile:
-    """One Parquet file of the input with its hive partition values (key -> string)."""
+    """One Parquet file of the input.
+
+    Attributes
+    ----------
+    path : Path
+        The file.
+    partitions : dict of str to str
+        Its hive partition values (``key=value`` folders between the input root and the file).
+    num_rows : int
+        Rows in the file, from its footer.
+    schema : pyarrow.Schema
+        The file's Arrow schema, from its footer.
+    """
 
     path: Path
     partitions: dict[str, str]
@@ -33,8 +45,24 @@ class DataFile:
 
 
 def parse_day(text: str | dt.date | None, what: str) -> dt.date | None:
-    """Parse ``YYYY-MM-DD`` (a date or None passes through); raises UserError naming ``what`` (an
-    option or a path)."""
+    """Parse a day.
+
+    Parameters
+    ----------
+    text : str, datetime.date or None
+        ``YYYY-MM-DD`` (ISO 8601 calendar date); a date or None passes through.
+    what : str
+        The option or path the text came from, named in the error.
+
+    Returns
+    -------
+    datetime.date or None
+
+    Raises
+    ------
+    UserError
+        When ``text`` is not a date ``YYYY-MM-DD``.
+    """
     if text is None or isinstance(text, dt.date):
         return text
     try:
@@ -56,15 +84,38 @@ def _base_type(t: pa.DataType) -> pa.DataType:
 def discover(path: str | Path, spec: Spec | None, start: dt.date | None = None,
              end: dt.date | None = None, *, need: list[str] | None = None,
              missing_ok: tuple[str, ...] = (), named_by: dict[str, str] | None = None) -> list[DataFile]:
-    """Find the Parquet files under ``path`` (a file, a folder, or a hive-partitioned folder).
+    """Find the Parquet files of an input and check their footers.
 
-    In a folder, files ending in .parquet or .parq count, except hidden ones (a path part starting
-    with "." or "_"); other files are ignored.
-    Files outside ``[start, end]`` by a partition key named as the spec's time column are pruned.
-    Every file's footer is read to check that it is Parquet, that it has the columns in ``need``
-    (default: all the spec's columns; ones in ``missing_ok`` may be absent) and that all files agree
-    on their types. Raises UserError naming the file and column, and what named the column
-    (``named_by[column]``, e.g. "--by"; default "the spec").
+    In a folder, files ending in .parquet or .parq count, in path order, except hidden ones (a path
+    part starting with "." or "_"); other files are ignored. Files outside ``[start, end]`` by a
+    partition key named as the spec's time column are pruned without being opened.
+
+    Parameters
+    ----------
+    path : str or Path
+        A file, a folder, or a hive-partitioned folder.
+    spec : Spec or None
+        The feature spec (its columns and time column); None with an explicit ``need``.
+    start, end : datetime.date or None
+        Inclusive day filter on the partition key named as the spec's time column.
+    need : list of str, optional
+        Columns every file must have (default: all the spec's columns).
+    missing_ok : tuple of str
+        Columns of ``need`` that a file may lack.
+    named_by : dict of str to str, optional
+        What named each column, for the error (e.g. "--by"; default "the spec").
+
+    Returns
+    -------
+    list of DataFile
+        The selected files, in path order.
+
+    Raises
+    ------
+    UserError
+        For a missing path, a folder without Parquet files, an unreadable file, a missing column, files
+        that disagree on a column's type, or a day filter that selects no file; the message names the
+        file and the column.
     """
     root = Path(path)
     if not root.exists():
@@ -118,8 +169,25 @@ def discover(path: str | Path, spec: Spec | None, start: dt.date | None = None,
 
 
 def column_days(arr: pa.Array, where: str) -> pa.Array:
-    """The days of a time column (date32): dates as they are, date64 and timestamps cast to their day;
-    other types raise UserError naming ``where``."""
+    """The days of a time column.
+
+    Parameters
+    ----------
+    arr : pyarrow.Array
+        The time column: date32, date64 or timestamp.
+    where : str
+        The file and column, named in the error.
+
+    Returns
+    -------
+    pyarrow.Array
+        date32 days (dates as they are, date64 and timestamps cast to their day).
+
+    Raises
+    ------
+    UserError
+        For any other type.
+    """
     t = arr.type
     if pa.types.is_date32(t):
         return arr
@@ -138,8 +206,25 @@ def _stat_day(value) -> dt.date | None:
 
 def row_group_outside(meta: pq.FileMetaData, group: int, column: str | None, start: dt.date | None,
                       end: dt.date | None) -> bool:
-    """True when row group ``group``'s min/max statistics of ``column`` put all its days outside
-    ``[start, end]``; False when there is no filter, no such column or no usable statistics."""
+    """Whether a row group lies wholly outside a day filter, by its statistics.
+
+    Parameters
+    ----------
+    meta : pyarrow.parquet.FileMetaData
+        The file's footer.
+    group : int
+        The row group's number.
+    column : str or None
+        The time column.
+    start, end : datetime.date or None
+        The inclusive day filter.
+
+    Returns
+    -------
+    bool
+        True when the row group's min/max statistics of ``column`` put all its days outside
+        ``[start, end]``; False when there is no filter, no such column or no usable statistics.
+    """
     if not column or not (start or end):
         return False
     idx = next((i for i in range(meta.num_columns) if meta.schema.column(i).path == column), None)
