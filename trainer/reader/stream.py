@@ -35,8 +35,19 @@ CHUNK_ROWS = 32768
 
 @dataclass(frozen=True)
 class Position:
-    """Where reading resumes: re-read from row ``row`` of file number ``file``, rebuild shuffle window
-    number ``window`` from there, and drop its first ``skip`` rows (0 without shuffling)."""
+    """Where reading resumes.
+
+    Attributes
+    ----------
+    file : int
+        Re-read from file number ``file`` ...
+    row : int
+        ... at row ``row``,
+    skip : int
+        then drop the first ``skip`` rows of the rebuilt shuffle window (0 without shuffling).
+    window : int
+        The shuffle window's number (it seeds the window's permutation).
+    """
 
     file: int = 0
     row: int = 0
@@ -48,11 +59,26 @@ class Position:
 class Batch:
     """One minibatch in CSR form.
 
-    ``indptr`` (int64, n_rows + 1), ``indices`` (int32 bucket ids), ``data`` (float64 feature values),
-    ``labels`` (float64 in {0, 1}; NaN when read without labels), ``weights`` (float64 row weights > 0),
-    ``n_rows``; ``position``, where reading resumes after this batch; ``columns``, the kept columns
-    of these rows (a pyarrow Table) when asked for. Tokens that collide inside a row stay separate
-    entries; their contributions add up.
+    Tokens that collide inside a row stay separate entries; their contributions add up.
+
+    Attributes
+    ----------
+    indptr : numpy.ndarray
+        int64, n_rows + 1 row offsets.
+    indices : numpy.ndarray
+        int32 bucket ids.
+    data : numpy.ndarray
+        float64 feature values.
+    labels : numpy.ndarray
+        float64 in {0, 1}; NaN when read without labels.
+    weights : numpy.ndarray
+        float64 row weights > 0.
+    n_rows : int
+        Rows in the batch.
+    position : Position or None
+        Where reading resumes after this batch.
+    columns : pyarrow.Table or None
+        The kept columns of these rows, when asked for.
     """
 
     indptr: np.ndarray
@@ -67,8 +93,17 @@ class Batch:
 
 @dataclass(frozen=True)
 class Part:
-    """A slice of the input read on its own (one task of a cluster run): row groups
-    ``first_group`` .. ``end_group - 1`` of file number ``file`` of the reader's files."""
+    """A slice of the input read on its own (one task of a cluster run).
+
+    Attributes
+    ----------
+    file : int
+        Number of the file in the reader's files.
+    first_group, end_group : int
+        Row groups ``first_group`` .. ``end_group - 1`` of that file.
+    rows : int
+        Rows in those row groups (from the footer).
+    """
 
     file: int
     first_group: int
@@ -78,7 +113,17 @@ class Part:
 
 @dataclass
 class ReadCounts:
-    """What the reader dropped on its way, for the user: rows with bad labels, negatives sampled out."""
+    """What the reader dropped on its way, for the user.
+
+    Attributes
+    ----------
+    bad_labels : int
+        Rows dropped for a null or unaccepted label (``skip_bad_labels``).
+    sampled_out : int
+        Negatives dropped by negative sampling.
+    rows : int
+        Rows read.
+    """
 
     bad_labels: int = 0
     sampled_out: int = 0
@@ -131,17 +176,56 @@ class _Rows:
 class Reader:
     """Streams a Parquet log as hashed minibatches.
 
-    ``path``: a file, folder or hive-partitioned folder. ``start``/``end``: inclusive date filter on
-    the spec's time column (partition key or column). ``batch_rows``: rows per batch (the last one of
-    a pass may be shorter). ``shuffle_rows``: 0 for file order, else rows are shuffled within
-    consecutive windows of that many rows, seeded by (``seed``, pass, window). ``negative_keep_rate``:
-    keep each negative row with this probability (seeded per row). ``with_labels``: False reads no
-    label (scoring). ``skip_bad_labels``: drop rows with null or unaccepted labels and count them
-    instead of raising. ``keep``: columns to carry along in ``Batch.columns``. ``missing_as_null``:
-    a feature column absent from a file reads as all null. ``dictionary``: read string columns
-    dictionary-encoded (each distinct value hashed once per chunk); both ways give the same batches.
-    ``keep_option``: the option that named ``keep`` (for error messages). Observers of the hashed rows
-    attach with :meth:`watch`.
+    Observers of the hashed rows attach with :meth:`watch`; what was dropped is counted in
+    ``counts`` (:class:`ReadCounts`).
+
+    Parameters
+    ----------
+    spec : Spec
+        The feature spec.
+    path : str or Path
+        A file, folder or hive-partitioned folder.
+    start, end : datetime.date or None
+        Inclusive day filter on the spec's time column (partition key or column).
+    batch_rows : int
+        Rows per batch (the last one of a pass may be shorter).
+    shuffle_rows : int
+        0 for file order, else rows are shuffled within consecutive windows of that many rows,
+        seeded by (``seed``, pass, window).
+    seed : int
+        Seed of shuffling and negative sampling.
+    negative_keep_rate : float
+        Keep each negative row with this probability (seeded per row).
+    with_labels : bool
+        False reads no label (scoring).
+    skip_bad_labels : bool
+        Drop rows with null or unaccepted labels and count them instead of raising.
+    keep : tuple of str
+        Columns to carry along in ``Batch.columns``.
+    keep_option : str
+        The option that named ``keep`` (for error messages).
+    missing_as_null : bool
+        A feature column absent from a file reads as all null.
+    dictionary : bool
+        Read string columns dictionary-encoded (each distinct value hashed once per chunk); both ways
+        give the same batches.
+    chunk_rows : int
+        Rows read from Parquet at a time (memory, not results).
+    counts : ReadCounts
+        What was dropped so far.
+    part : Part, optional
+        Read only this part of the input (set by :meth:`for_part`).
+
+    Raises
+    ------
+    UserError
+        For a start after the end, or from :func:`trainer.reader.files.discover`.
+
+    References
+    ----------
+    The per-window permutations come from numpy's PCG64: "PCG: A Family of Simple Fast
+    Space-Efficient Statistically Good Algorithms for Random Number Generation", Harvey Mudd
+    College technical report HMC-CS-2014-0905, 2014.
     """
 
     spec: Spec
@@ -187,12 +271,28 @@ class Reader:
             Featurizer(self.spec).transform(pa.schema([f.schema.field(c) for c in cols]).empty_table(), str(f.path))
 
     def watch(self, observer) -> None:
-        """Show ``observer`` every chunk of rows hashed from now on (:meth:`Featurizer.watch`)."""
+        """Show an observer every chunk of rows hashed from now on (:meth:`Featurizer.watch`).
+
+        Parameters
+        ----------
+        observer : object
+            Has ``observe(tables, n_rows)``.
+        """
         self.featurizer.watch(observer)
 
     def parts(self, max_rows: int) -> list[Part]:
-        """The input cut into parts in file order: whole row groups of one file, at most
-        ``max_rows`` rows each (a larger row group is a part of its own). Reads footers only."""
+        """The input cut into parts in file order; reads footers only.
+
+        Parameters
+        ----------
+        max_rows : int
+            Most rows in a part; a part is whole row groups of one file (a larger row group is a part of
+            its own).
+
+        Returns
+        -------
+        list of Part
+        """
         out = []
         for fi, f in enumerate(self.files):
             meta = pq.ParquetFile(f.path).metadata
@@ -208,9 +308,18 @@ class Reader:
         return out
 
     def for_part(self, part: Part) -> "Reader":
-        """A reader of the same input and options that reads only ``part`` (rows, sampling and
-        shuffling exactly as this reader reads them there), with its own counts and no observers;
-        an empty part yields no batch instead of raising."""
+        """A reader of the same input and options that reads only one part.
+
+        Parameters
+        ----------
+        part : Part
+            The part; rows, sampling and shuffling come out exactly as this reader reads them there.
+
+        Returns
+        -------
+        Reader
+            With its own counts and no observers; an empty part yields no batch instead of raising.
+        """
         r = copy.copy(self)
         r.part, r.counts, r.featurizer = part, ReadCounts(), Featurizer(self.spec)
         return r
@@ -221,8 +330,26 @@ class Reader:
         return sum(f.num_rows for f in self.files)
 
     def batches(self, pass_index: int = 0, start: Position | None = None) -> Iterator[Batch]:
-        """Yield the batches of one pass, resuming at ``start`` if given. Raises UserError when the
-        filters leave no rows (at the end of a pass that started at the beginning)."""
+        """Yield the batches of one pass.
+
+        Parameters
+        ----------
+        pass_index : int
+            The pass (it seeds shuffling and negative sampling).
+        start : Position, optional
+            Where to resume (a batch's ``position``); default the beginning.
+
+        Yields
+        ------
+        Batch
+            The next ``batch_rows`` rows, with the position after them.
+
+        Raises
+        ------
+        UserError
+            For bad data met on the way, and when the filters leave no rows (at the end of a pass
+            that started at the beginning).
+        """
         start = start or Position()
         pending: list[_Rows] = []
         have = 0
