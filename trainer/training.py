@@ -71,7 +71,51 @@ AVERAGE_FRACTION = 0.75
 @dataclass
 class TrainOptions:
     """Training options; the ones in ``TRAJECTORY`` decide the weights and must match on resume.
-    ``refine_iterations`` applies to training over a cluster only (``trainer.cluster``)."""
+
+    Each is the command line's option of the same name (``--l2-strength`` for ``l2_strength``).
+
+    Attributes
+    ----------
+    epochs : int, default 3
+        Passes over the log.
+    loss : {"logistic", "squared-hinge"}
+        The data loss.
+    solver : {"olbfgs", "res", "sgd", "adagrad"}
+        The online method (:func:`trainer.solvers.make_solver`).
+    l2_strength : float, default 1e-4
+        lambda of the per-row-average objective ``(lambda / 2) ||w||^2``.
+    history : int, default 10
+        Curvature pairs kept (``olbfgs`` only; also scipy's L-BFGS-B memory of the full-batch phase).
+    batch_rows : int, default 4096
+        Rows per minibatch.
+    step0 : float or None
+        The solver's initial step (None: the method's default).
+    seed : int, default 0
+        Seed of shuffling and negative sampling (no solver draws random numbers).
+    shuffle_buffer : int, default 0
+        Rows per shuffle window (0: file order).
+    negative_keep_rate : float, default 1.0
+        Keep each negative row with this probability; ``ln Q`` is added to the intercept so predictions
+        stay calibrated on unsampled data ("Practical Lessons from Predicting Clicks on Ads at
+        Facebook", ADKDD, 2014).
+    checkpoint_every : int, default 2000000
+        Rows between checkpoints (and one at each pass end).
+    patience : int, default 1
+        Passes without a better holdout loss before an early stop.
+    start, end : datetime.date or None
+        Inclusive day filter of the training log.
+    holdout_start, holdout_end : datetime.date or None
+        Days of the training log used as the holdout.
+    skip_bad_labels : bool
+        Drop rows with a null or unaccepted label instead of refusing the log.
+    allow_one_class : bool
+        Accept a log whose labels are all 0 or all 1.
+    full_batch_memory : int, default 1024
+        MB within which the hashed log is trained full-batch after the first pass (0: plain online
+        passes, no iterate averaging).
+    refine_iterations : int, default 20
+        L-BFGS-B iterations of training over a cluster only (``trainer.cluster``).
+    """
 
     epochs: int = 3
     loss: str = "logistic"
@@ -116,7 +160,13 @@ class TrainOptions:
         check_int("--refine-iterations", self.refine_iterations, 0, 100_000)
 
     def as_json(self) -> dict:
-        """Options as JSON values (dates as YYYY-MM-DD)."""
+        """The options as JSON values.
+
+        Returns
+        -------
+        dict
+            Every field by name; dates as YYYY-MM-DD.
+        """
         out = {}
         for f in dataclasses.fields(self):
             v = getattr(self, f.name)
@@ -154,13 +204,26 @@ class _State:
 class TrainResult:
     """What a finished training run did, in the manner of ``scipy.optimize.OptimizeResult``.
 
-    ``model``: the final Model (the best pass's when a holdout decides); ``model_dir``: the model
-    folder it was written to; ``passes``: passes finished (also by earlier sessions of a resumed
-    run); ``per_pass``: one record per finished pass as in ``metrics.jsonl`` (``pass``, ``rows``,
-    ``rows_total``, ``progressive_loss``, ``holdout``, ``train_seconds``, ``eval_seconds``);
-    ``best_pass``: the pass of the best holdout loss (None without a holdout); ``stopped_early`` and
-    ``stopping_reason``: why training ended; ``train_seconds`` / ``eval_seconds``: the passes' time
-    reading and stepping / evaluating the holdout, summed.
+    Attributes
+    ----------
+    model : trainer.model.Model
+        The final model (the best pass's when a holdout decides).
+    model_dir : Path
+        The model folder it was written to.
+    passes : int
+        Passes finished (also by earlier sessions of a resumed run).
+    per_pass : list of dict
+        One record per finished pass as in ``metrics.jsonl``: ``pass``, ``rows``, ``rows_total``,
+        ``progressive_loss``, ``holdout``, ``train_seconds``, ``eval_seconds``, ``phase`` (and
+        ``full_batch`` after a full-batch pass).
+    best_pass : int or None
+        The pass of the best holdout loss (None without a holdout).
+    stopped_early : bool
+        True when the holdout loss stopped improving for ``patience`` passes.
+    stopping_reason : str
+        Why training ended, in words.
+    train_seconds, eval_seconds : float
+        The passes' time reading and stepping, and evaluating the holdout, summed.
     """
 
     model: Model
@@ -205,15 +268,35 @@ def _holdout_score(summary: dict, loss: str) -> float:
 
 
 class Trainer:
-    """One training run into ``out``; ``run()`` returns its :class:`TrainResult`.
+    """One training run into a model folder; :meth:`run` returns its :class:`TrainResult`.
 
-    ``spec``: the feature spec; ``data``: training log path; ``holdout``: holdout log path or None
-    (with ``options.holdout_start/end`` it may be the training path itself); ``resume``: continue
-    from ``out/checkpoint.bin`` (or start afresh a run of the same fingerprint that never wrote one);
-    ``force``: replace another run's files in ``out``; ``quiet``: no progress bar and no per-pass
-    table (otherwise the table goes to stdout and the bar, on a terminal only, to stderr).
-    Raises UserError for bad options, data or model folders before writing anything, also when another
-    process is running in ``out``.
+    Parameters
+    ----------
+    spec : Spec
+        The feature spec.
+    data : str or Path
+        The training log (file, folder or hive-partitioned folder).
+    out : str or Path
+        The model folder.
+    options : TrainOptions
+        The options (validated here).
+    holdout : str or Path, optional
+        The holdout log; with ``options.holdout_start/end`` it may be left out (the training path
+        itself is used).
+    resume : bool
+        Continue from ``out/checkpoint.bin`` (or start afresh a run of the same fingerprint that never
+        wrote one).
+    force : bool
+        Replace another run's files in ``out``.
+    quiet : bool
+        No progress bar and no per-pass table (otherwise the table goes to stdout and the bar, on a
+        terminal only, to stderr).
+
+    Raises
+    ------
+    UserError
+        For bad options, data or model folders before writing anything, also when another process is
+        running in ``out``.
     """
 
     def __init__(self, spec: Spec, data: str | Path, out: str | Path, options: TrainOptions, *,
@@ -357,10 +440,28 @@ class Trainer:
     # -- the model --------------------------------------------------------------------------------
 
     def current_model(self, holdout: dict | None = None, calibration: dict | None = None) -> Model:
-        """A Model of the solver's current weights (copied), with the downsampling correction and an
+        """A Model of the solver's current weights (copied).
+
+        The intercept carries the downsampling correction ``ln(negative_keep_rate)``, and the summary an
         estimate of the distinct tokens seen: every bucket a token reached has a non-zero weight, so
-        D ~ -m ln(1 - occupied/m) ("A Linear-Time Probabilistic Counting Algorithm for Database
-        Applications", ACM Transactions on Database Systems, 1990)."""
+        D ~ -m ln(1 - occupied/m).
+
+        Parameters
+        ----------
+        holdout : dict, optional
+            The holdout metrics to record in the model's info.
+        calibration : dict, optional
+            The Platt calibration (squared-hinge models) to record.
+
+        Returns
+        -------
+        trainer.model.Model
+
+        References
+        ----------
+        "A Linear-Time Probabilistic Counting Algorithm for Database Applications", ACM Transactions on
+        Database Systems, 1990.
+        """
         x = self._model_x()
         intercept = float(x[-1]) + math.log(self.opt.negative_keep_rate)
         weights = x[:-1]
@@ -399,12 +500,23 @@ class Trainer:
         st.avg_count += 1
 
     def run(self) -> TrainResult:
-        """Train to the requested passes (or an early stop); return the final model and what the run
-        did (:class:`TrainResult`).
+        """Train to the requested passes (or an early stop).
 
-        Raises Interrupted after saving a checkpoint on SIGINT/SIGTERM, and Diverged (a UserError) or
-        UserError for bad data met on the way, whose message says what the folder keeps (see the
-        module docstring). Releases the folder's lock however it ends.
+        Releases the folder's lock however it ends.
+
+        Returns
+        -------
+        TrainResult
+            The final model and what the run did.
+
+        Raises
+        ------
+        Interrupted
+            On SIGINT/SIGTERM, after saving a checkpoint.
+        Diverged
+            (a UserError) When a step would make the loss, gradient or weights non-finite.
+        UserError
+            For bad data met on the way; the message says what the folder keeps (see the module docstring).
         """
         st = self.state
         try:
@@ -614,7 +726,13 @@ class Trainer:
     # -- the per-pass table -------------------------------------------------------------------------
 
     def log(self, line: str) -> None:
-        """Print one line of the per-pass table (or a note about the run) unless quiet."""
+        """Print one line of the per-pass table (or a note about the run) unless quiet.
+
+        Parameters
+        ----------
+        line : str
+            The line.
+        """
         if not self.quiet:
             print(line, flush=True)
 
