@@ -20,15 +20,46 @@ _NO_ACCUMULATORS = np.zeros(0, dtype=np.float64)
 
 @njit(cache=True, nogil=True)
 def step_candidate(rule, x, acc, n, step, lam, delta, cols, gsp, gb, new_x, new_acc):
-    """New values of the batch's buckets ``cols`` (index p) and of the intercept (index len(cols)),
-    written to ``new_x`` (and ``new_acc`` for AdaGrad) before committing; True when all are finite.
+    """Candidate values of one first-order step, before committing.
 
-    ``RULE_SGD``: x_j - step (g_j + lam x_j) = (1 - step lam) x_j - step g_j ("A Stochastic
-    Approximation Method", Annals of Mathematical Statistics, 1951); ``acc`` is not read.
+    ``RULE_SGD``: x_j - step (g_j + lam x_j) = (1 - step lam) x_j - step g_j; ``acc`` is not read.
     ``RULE_ADAGRAD``: with G_j the running sum of squared data gradients and H_j = delta + sqrt(G_j),
     w_j <- (H_j w_j - step g_j) / (H_j + step lam), the closed form of the composite mirror-descent
-    step with the L2 term ("Adaptive Subgradient Methods for Online Learning and Stochastic
-    Optimization", Journal of Machine Learning Research, 2011). The intercept is not regularized.
+    step with the L2 term. The intercept (index n) is not regularized.
+
+    Parameters
+    ----------
+    rule : int
+        ``RULE_SGD`` or ``RULE_ADAGRAD``.
+    x : numpy.ndarray
+        float64 weights, n buckets then the intercept.
+    acc : numpy.ndarray
+        AdaGrad's running sums of squared gradients (length n + 1), or empty for SGD.
+    n : int
+        Number of buckets.
+    step : float
+        The step size (SGD's eps_t, AdaGrad's eta).
+    lam : float
+        The L2 strength.
+    delta : float
+        AdaGrad's offset of sqrt(G_j).
+    cols, gsp : numpy.ndarray
+        The batch's distinct buckets and their data gradients.
+    gb : float
+        The intercept's data gradient.
+    new_x, new_acc : numpy.ndarray
+        Outputs (length len(cols) + 1): the new values of ``cols`` then of the intercept.
+
+    Returns
+    -------
+    bool
+        True when every new value is finite.
+
+    References
+    ----------
+    "A Stochastic Approximation Method", Annals of Mathematical Statistics, 1951.
+    "Adaptive Subgradient Methods for Online Learning and Stochastic Optimization", Journal of
+    Machine Learning Research, 2011.
     """
     m = cols.shape[0]
     ok = True
@@ -60,8 +91,18 @@ def step_candidate(rule, x, acc, n, step, lam, delta, cols, gsp, gb, new_x, new_
 
 @njit(cache=True, nogil=True)
 def step_commit(rule, x, acc, n, step, lam, delta, cols, new_x, new_acc):
-    """Apply a checked :func:`step_candidate`: shrink every bucket weight for the L2 term (SGD by
-    1 - step lam; AdaGrad by H_j / (H_j + step lam)), then set the batch's values and the intercept."""
+    """Apply a checked :func:`step_candidate`.
+
+    Shrinks every bucket weight for the L2 term (SGD by 1 - step lam; AdaGrad by H_j / (H_j + step lam)),
+    then sets the batch's values and the intercept (and AdaGrad's sums), in place.
+
+    Parameters
+    ----------
+    rule, x, acc, n, step, lam, delta, cols : see :func:`step_candidate`
+        The same values the candidate was computed with.
+    new_x, new_acc : numpy.ndarray
+        The candidate's outputs.
+    """
     if rule == RULE_SGD:
         shrink = 1.0 - step * lam
         if shrink != 1.0:
@@ -82,9 +123,11 @@ def step_commit(rule, x, acc, n, step, lam, delta, cols, new_x, new_acc):
 
 
 class FirstOrderSolver(LinearSolver):
-    """A solver whose step is :func:`step_candidate` then :func:`step_commit` with its ``rule``;
-    subclasses give ``rule``, ``_step_size()`` (the step of the coming update) and, with accumulators,
-    ``_accumulators()`` and ``delta``."""
+    """A solver whose step is :func:`step_candidate` then :func:`step_commit` with its ``rule``.
+
+    Subclasses give ``rule``, ``_step_size()`` (the step of the coming update) and, with accumulators,
+    ``_accumulators()`` and ``delta``. Constructed as :class:`trainer.solvers.LinearSolver`.
+    """
 
     rule = RULE_SGD
     delta = 0.0
@@ -93,10 +136,24 @@ class FirstOrderSolver(LinearSolver):
         return _NO_ACCUMULATORS
 
     def step(self, batch) -> float:
-        """One update from ``batch``; returns the weighted mean data loss before the update.
+        """One update from a batch.
 
-        Raises ``Diverged`` (state unchanged) when the loss, gradient or new weights are non-finite,
-        and ``ValueError`` for an empty batch or a bucket id out of range.
+        Parameters
+        ----------
+        batch : trainer.reader.stream.Batch
+            The minibatch.
+
+        Returns
+        -------
+        float
+            The weighted mean data loss before the update (progressive validation).
+
+        Raises
+        ------
+        Diverged
+            (state unchanged) When the loss, gradient or new weights are non-finite.
+        ValueError
+            For an empty batch or a bucket id out of range.
         """
         g = self._gradient(batch)
         step = self._step_size()
