@@ -10,7 +10,18 @@ from typing import Iterable, Iterator
 
 
 def fsync_dir(folder: Path) -> None:
-    """Flush a folder's entries (a rename) to disk."""
+    """Flush a folder's entries (a rename) to disk.
+
+    Parameters
+    ----------
+    folder : Path
+        The folder.
+
+    Raises
+    ------
+    OSError
+        When the folder cannot be opened or flushed.
+    """
     fd = os.open(folder, os.O_RDONLY)
     try:
         os.fsync(fd)
@@ -19,15 +30,44 @@ def fsync_dir(folder: Path) -> None:
 
 
 def fsync_file(path: Path) -> None:
-    """Flush a closed file's contents to disk."""
+    """Flush a closed file's contents to disk.
+
+    Parameters
+    ----------
+    path : Path
+        The file.
+
+    Raises
+    ------
+    OSError
+        When the file cannot be opened or flushed.
+    """
     with open(path, "rb+") as fh:
         os.fsync(fh.fileno())
 
 
 @contextmanager
 def atomic_path(path: str | Path) -> Iterator[Path]:
-    """Yield a temporary path beside ``path``; when the block ends without error the file written
-    there is fsynced and renamed over ``path``, else it is removed and ``path`` stays as it was."""
+    """A temporary path beside a target, renamed over it when the block succeeds.
+
+    When the block ends without error the file written at the temporary path is fsynced and renamed
+    over ``path`` (and the folder fsynced), else it is removed and ``path`` stays as it was.
+
+    Parameters
+    ----------
+    path : str or Path
+        The target file.
+
+    Yields
+    ------
+    Path
+        The temporary path (``.NAME.XXXX.tmp`` in the same folder).
+
+    Raises
+    ------
+    OSError
+        When the temporary file cannot be made, flushed or renamed.
+    """
     path = Path(path)
     fd, name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     os.close(fd)
@@ -42,7 +82,20 @@ def atomic_path(path: str | Path) -> Iterator[Path]:
 
 
 def write_atomic(path: str | Path, chunks: Iterable[bytes]) -> None:
-    """Write the byte chunks to ``path`` atomically (see :func:`atomic_path`)."""
+    """Write byte chunks to a file atomically (see :func:`atomic_path`).
+
+    Parameters
+    ----------
+    path : str or Path
+        The target file.
+    chunks : iterable of bytes
+        The contents, in order (any bytes-like objects).
+
+    Raises
+    ------
+    OSError
+        When the file cannot be written.
+    """
     with atomic_path(path) as tmp, open(tmp, "wb") as fh:
         for chunk in chunks:
             fh.write(chunk)
