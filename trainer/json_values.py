@@ -10,9 +10,20 @@ import numpy as np
 
 
 def jsonable(obj):
-    """A copy of ``obj`` that strict JSON can hold: numpy scalars and arrays become Python numbers
-    and lists, tuples become lists, paths and dates become text, non-finite floats (undefined
-    metrics) become None."""
+    """A copy of a value that strict JSON can hold.
+
+    Parameters
+    ----------
+    obj : object
+        Any nesting of dicts, lists, tuples, numpy scalars and arrays, numbers, paths and dates.
+
+    Returns
+    -------
+    object
+        numpy scalars and arrays become Python numbers and lists, tuples become lists, dict keys
+        become text, paths and dates become text, non-finite floats (undefined metrics) become None;
+        anything else is returned as it is.
+    """
     if isinstance(obj, str):
         return obj
     if isinstance(obj, dict):
