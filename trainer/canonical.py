@@ -78,10 +78,28 @@ def _encode(obj, out: list[str]) -> None:
 
 
 def canonical_json(obj) -> bytes:
-    """The RFC 8785 canonical UTF-8 bytes of a JSON value (dict, list, str, int, float, bool, None).
+    """The RFC 8785 canonical UTF-8 bytes of a JSON value.
 
-    Raises ValueError for NaN, infinity, an integer beyond 2^53, a non-string key or a value JSON
-    cannot hold."""
+    Parameters
+    ----------
+    obj : dict, list, str, int, float, bool or None
+        The value (nested).
+
+    Returns
+    -------
+    bytes
+        Its canonical form: sorted keys by UTF-16 code units, no whitespace, numbers in the
+        ECMAScript shortest form.
+
+    Raises
+    ------
+    ValueError
+        For NaN, infinity, an integer beyond 2^53, a non-string key or a value JSON cannot hold.
+
+    References
+    ----------
+    "JSON Canonicalization Scheme (JCS)", RFC 8785, IETF, 2020.
+    """
     out: list[str] = []
     _encode(obj, out)
     return "".join(out).encode("utf-8")
