@@ -24,7 +24,24 @@ VERSION = 3
 
 
 def save_checkpoint(path: Path, arrays: dict[str, np.ndarray], meta: dict) -> None:
-    """Write ``arrays`` (name -> numpy array) and JSON-able ``meta`` to ``path`` atomically."""
+    """Write a checkpoint atomically (layout in the module docstring).
+
+    Parameters
+    ----------
+    path : Path
+        The checkpoint file.
+    arrays : dict of str to numpy.ndarray
+        The arrays, by name (stored C-contiguous with dtype and shape).
+    meta : dict
+        JSON-able values stored in the header.
+
+    Raises
+    ------
+    OSError
+        When the file cannot be written (the previous checkpoint stays as it was).
+    TypeError
+        When ``meta`` is not JSON-able.
+    """
     entries, offset = [], 0
     arrays = {k: np.array(v, order="C", copy=None) for k, v in arrays.items()}
     for name, a in arrays.items():
@@ -48,11 +65,26 @@ def save_checkpoint(path: Path, arrays: dict[str, np.ndarray], meta: dict) -> No
 
 
 def load_checkpoint(path: Path) -> tuple[dict[str, np.ndarray], dict]:
-    """Read and verify a checkpoint; return ``(arrays, meta)``. The file is read once into one buffer;
-    the arrays are writable views of it (no second copy of the curvature memory while resuming).
+    """Read and verify a checkpoint.
 
-    Raises UserError (naming the file, leaving it untouched) when it is missing, truncated, fails its
-    checksum or has another format version.
+    The file is read once into one buffer; the arrays are writable views of it (no second copy of the
+    curvature memory while resuming).
+
+    Parameters
+    ----------
+    path : Path
+        The checkpoint file.
+
+    Returns
+    -------
+    tuple of (dict of str to numpy.ndarray, dict)
+        ``(arrays, meta)``.
+
+    Raises
+    ------
+    UserError
+        Naming the file, leaving it untouched, when it is missing, truncated, fails its checksum or has
+        another format version.
     """
     path = Path(path)
     try:
