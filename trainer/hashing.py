@@ -21,7 +21,26 @@ def _rotl(x, r):
 
 @nb.njit(cache=True)
 def murmur3_32(buf, start, end, seed):
-    """Hash ``buf[start:end]`` (uint8 array) with MurmurHash3_x86_32 and ``seed``; return uint32."""
+    """MurmurHash3_x86_32 of a slice of bytes.
+
+    Parameters
+    ----------
+    buf : numpy.ndarray
+        uint8 bytes.
+    start, end : int
+        The slice ``buf[start:end]`` hashed.
+    seed : numpy.uint32
+        The seed.
+
+    Returns
+    -------
+    numpy.uint32
+        The hash.
+
+    References
+    ----------
+    "MurmurHash3", SMHasher project, 2011 (the reference ``MurmurHash3_x86_32``).
+    """
     h = np.uint32(seed)
     n = end - start
     nblocks = n // 4
@@ -60,7 +79,24 @@ def murmur3_32(buf, start, end, seed):
 
 
 def hash_bytes(data: bytes, seed: int = 0) -> int:
-    """Return MurmurHash3_x86_32 of ``data`` with ``seed`` (0..2^32-1) as a Python int."""
+    """MurmurHash3_x86_32 of a byte string.
+
+    Parameters
+    ----------
+    data : bytes
+        The bytes.
+    seed : int, default 0
+        The seed, 0..2^32-1.
+
+    Returns
+    -------
+    int
+        The hash as a Python int.
+
+    References
+    ----------
+    "MurmurHash3", SMHasher project, 2011.
+    """
     buf = np.frombuffer(bytes(data), dtype=np.uint8)
     return int(murmur3_32(buf, 0, buf.size, np.uint32(seed)))
 
@@ -69,8 +105,30 @@ def hash_bytes(data: bytes, seed: int = 0) -> int:
 def hash_tokens(prefix, buf, offsets, seed, mask):
     """Bucket of every token ``prefix + buf[offsets[i]:offsets[i+1]]``.
 
-    Takes uint8 ``prefix`` and ``buf``, int64 ``offsets`` (n + 1), uint32 ``seed`` and ``mask``
-    (2^bits - 1); returns int32 buckets (n,). One scratch buffer, no per-token allocation.
+    One scratch buffer, no per-token allocation.
+
+    Parameters
+    ----------
+    prefix : numpy.ndarray
+        uint8 bytes every token starts with.
+    buf : numpy.ndarray
+        uint8 bytes of the tokens' values.
+    offsets : numpy.ndarray
+        int64 (n + 1) offsets of each token in ``buf``.
+    seed : numpy.uint32
+        The hash seed.
+    mask : numpy.uint32
+        2^bits - 1.
+
+    Returns
+    -------
+    numpy.ndarray
+        int32 buckets (n,): the MurmurHash3_x86_32 of each token, masked.
+
+    References
+    ----------
+    "MurmurHash3", SMHasher project, 2011. "Feature Hashing for Large Scale Multitask Learning", ICML,
+    2009.
     """
     n = offsets.size - 1
     plen = prefix.size
@@ -94,9 +152,20 @@ def cross_tokens(a_ptr, a_ids, a_prefix, a_buf, a_off, b_ptr, b_ids, b_prefix, b
     """Join two token streams row by row into cross tokens ``token(a) 0x1E token(b)``.
 
     Each side is a row structure (``ptr`` int64 n + 1 over ``ids`` int64) pointing into a token table
-    whose token k is ``prefix + buf[off[k]:off[k+1]]``. Returns ``(ptr, buf, off)``: for row r the
-    Cartesian product of its a-tokens and b-tokens, in a-major order, as a new table with empty prefix
-    (the ids of the result are 0..len-1 in row order).
+    whose token k is ``prefix + buf[off[k]:off[k+1]]``.
+
+    Parameters
+    ----------
+    a_ptr, a_ids, a_prefix, a_buf, a_off : numpy.ndarray
+        The first side's rows and token table.
+    b_ptr, b_ids, b_prefix, b_buf, b_off : numpy.ndarray
+        The second side's.
+
+    Returns
+    -------
+    tuple of numpy.ndarray
+        ``(ptr, buf, off)``: for row r the Cartesian product of its a-tokens and b-tokens, in a-major
+        order, as a new table with empty prefix (the ids of the result are 0..len-1 in row order).
     """
     n = a_ptr.size - 1
     ptr = np.zeros(n + 1, dtype=np.int64)
