@@ -34,8 +34,20 @@ LOSS_NAMES = {"logistic": LOGISTIC, "squared-hinge": SQUARED_HINGE}
 def loss_code(name: str) -> int:
     """Map a loss name to the integer code the numba kernels take.
 
-    Takes ``"logistic"`` or ``"squared-hinge"``; returns :data:`LOGISTIC` or :data:`SQUARED_HINGE`.
-    Raises :class:`trainer.errors.UserError` naming the ``--loss`` option for any other value.
+    Parameters
+    ----------
+    name : str
+        ``"logistic"`` or ``"squared-hinge"``.
+
+    Returns
+    -------
+    int
+        :data:`LOGISTIC` or :data:`SQUARED_HINGE`.
+
+    Raises
+    ------
+    UserError
+        Naming the ``--loss`` option, for any other value.
     """
     if name not in LOSS_NAMES:
         raise UserError(f"--loss must be one of {', '.join(LOSS_NAMES)}; got {name!r}")
@@ -44,7 +56,18 @@ def loss_code(name: str) -> int:
 
 @njit(cache=True)
 def sigmoid(z: float) -> float:
-    """Return 1 / (1 + exp(-z)) without overflow for any finite z (common practice)."""
+    """1 / (1 + exp(-z)) without overflow for any finite z (common practice).
+
+    Parameters
+    ----------
+    z : float
+        The margin.
+
+    Returns
+    -------
+    float
+        The logistic function of z, in [0, 1].
+    """
     if z >= 0.0:
         return 1.0 / (1.0 + math.exp(-z))
     e = math.exp(z)
@@ -53,7 +76,24 @@ def sigmoid(z: float) -> float:
 
 @njit(cache=True)
 def logistic_loss(y: float, z: float) -> float:
-    """Logistic loss log(1 + exp(-(2y-1) z)) as max(-m, 0) + log1p(exp(-|m|)); finite for finite z."""
+    """Logistic loss log(1 + exp(-(2y-1) z)) as max(-m, 0) + log1p(exp(-|m|)); finite for finite z.
+
+    Parameters
+    ----------
+    y : float
+        The label, 0 or 1.
+    z : float
+        The margin.
+
+    Returns
+    -------
+    float
+        The loss.
+
+    References
+    ----------
+    "The Regression Analysis of Binary Sequences", Journal of the Royal Statistical Society B, 1958.
+    """
     m = z if y > 0.5 else -z
     if m > 0.0:
         return math.log1p(math.exp(-m))
@@ -62,7 +102,24 @@ def logistic_loss(y: float, z: float) -> float:
 
 @njit(cache=True)
 def logistic_dloss(y: float, z: float) -> float:
-    """Derivative of the logistic loss in z: p - y, computed as -s * sigmoid(-s z) (no cancellation)."""
+    """Derivative of the logistic loss in z: p - y, computed as -s * sigmoid(-s z) (no cancellation).
+
+    Parameters
+    ----------
+    y : float
+        The label, 0 or 1.
+    z : float
+        The margin.
+
+    Returns
+    -------
+    float
+        The derivative.
+
+    References
+    ----------
+    "The Regression Analysis of Binary Sequences", Journal of the Royal Statistical Society B, 1958.
+    """
     if y > 0.5:
         return -sigmoid(-z)
     return sigmoid(z)
@@ -70,14 +127,48 @@ def logistic_dloss(y: float, z: float) -> float:
 
 @njit(cache=True)
 def logistic_d2loss(y: float, z: float) -> float:
-    """Second derivative of the logistic loss in z: p (1 - p) = e / (1 + e)^2 with e = exp(-|z|)."""
+    """Second derivative of the logistic loss in z: p (1 - p) = e / (1 + e)^2 with e = exp(-|z|).
+
+    Parameters
+    ----------
+    y : float
+        The label, 0 or 1.
+    z : float
+        The margin.
+
+    Returns
+    -------
+    float
+        The second derivative.
+
+    References
+    ----------
+    "The Regression Analysis of Binary Sequences", Journal of the Royal Statistical Society B, 1958.
+    """
     e = math.exp(-abs(z))
     return e / ((1.0 + e) * (1.0 + e))
 
 
 @njit(cache=True)
 def squared_hinge_loss(y: float, z: float) -> float:
-    """Squared hinge loss max(0, 1 - (2y-1) z)^2."""
+    """Squared hinge loss max(0, 1 - (2y-1) z)^2.
+
+    Parameters
+    ----------
+    y : float
+        The label, 0 or 1.
+    z : float
+        The margin.
+
+    Returns
+    -------
+    float
+        The loss.
+
+    References
+    ----------
+    "A Dual Coordinate Descent Method for Large-scale Linear SVM", ICML, 2008.
+    """
     m = z if y > 0.5 else -z
     u = 1.0 - m
     if u > 0.0:
@@ -87,7 +178,24 @@ def squared_hinge_loss(y: float, z: float) -> float:
 
 @njit(cache=True)
 def squared_hinge_dloss(y: float, z: float) -> float:
-    """Derivative of the squared hinge loss in z: -2 s max(0, 1 - s z)."""
+    """Derivative of the squared hinge loss in z: -2 s max(0, 1 - s z).
+
+    Parameters
+    ----------
+    y : float
+        The label, 0 or 1.
+    z : float
+        The margin.
+
+    Returns
+    -------
+    float
+        The derivative.
+
+    References
+    ----------
+    "A Dual Coordinate Descent Method for Large-scale Linear SVM", ICML, 2008.
+    """
     s = 1.0 if y > 0.5 else -1.0
     u = 1.0 - s * z
     if u > 0.0:
@@ -97,7 +205,24 @@ def squared_hinge_dloss(y: float, z: float) -> float:
 
 @njit(cache=True)
 def squared_hinge_d2loss(y: float, z: float) -> float:
-    """Generalized second derivative of the squared hinge loss: 2 where 1 - s z > 0, else 0."""
+    """Generalized second derivative of the squared hinge loss: 2 where 1 - s z > 0, else 0.
+
+    Parameters
+    ----------
+    y : float
+        The label, 0 or 1.
+    z : float
+        The margin.
+
+    Returns
+    -------
+    float
+        2.0 or 0.0.
+
+    References
+    ----------
+    "A Dual Coordinate Descent Method for Large-scale Linear SVM", ICML, 2008.
+    """
     m = z if y > 0.5 else -z
     if 1.0 - m > 0.0:
         return 2.0
@@ -106,7 +231,22 @@ def squared_hinge_d2loss(y: float, z: float) -> float:
 
 @njit(cache=True)
 def loss(code: int, y: float, z: float) -> float:
-    """Loss ``code`` (:data:`LOGISTIC` or :data:`SQUARED_HINGE`) of label y at margin z."""
+    """Loss ``code`` of label y at margin z.
+
+    Parameters
+    ----------
+    code : int
+        :data:`LOGISTIC` or :data:`SQUARED_HINGE`.
+    y : float
+        The label, 0 or 1.
+    z : float
+        The margin.
+
+    Returns
+    -------
+    float
+        The loss.
+    """
     if code == LOGISTIC:
         return logistic_loss(y, z)
     return squared_hinge_loss(y, z)
@@ -114,7 +254,22 @@ def loss(code: int, y: float, z: float) -> float:
 
 @njit(cache=True)
 def dloss(code: int, y: float, z: float) -> float:
-    """First derivative in z of loss ``code`` of label y at margin z."""
+    """First derivative in z of loss ``code`` of label y at margin z.
+
+    Parameters
+    ----------
+    code : int
+        :data:`LOGISTIC` or :data:`SQUARED_HINGE`.
+    y : float
+        The label, 0 or 1.
+    z : float
+        The margin.
+
+    Returns
+    -------
+    float
+        The derivative.
+    """
     if code == LOGISTIC:
         return logistic_dloss(y, z)
     return squared_hinge_dloss(y, z)
@@ -122,7 +277,22 @@ def dloss(code: int, y: float, z: float) -> float:
 
 @njit(cache=True)
 def d2loss(code: int, y: float, z: float) -> float:
-    """Second (Gauss-Newton) derivative in z of loss ``code`` of label y at margin z."""
+    """Second (Gauss-Newton) derivative in z of loss ``code`` of label y at margin z.
+
+    Parameters
+    ----------
+    code : int
+        :data:`LOGISTIC` or :data:`SQUARED_HINGE`.
+    y : float
+        The label, 0 or 1.
+    z : float
+        The margin.
+
+    Returns
+    -------
+    float
+        The second derivative.
+    """
     if code == LOGISTIC:
         return logistic_d2loss(y, z)
     return squared_hinge_d2loss(y, z)
@@ -150,26 +320,91 @@ def _arrays(labels, margins) -> tuple[np.ndarray, np.ndarray]:
 
 
 def pointwise_loss(name: str, labels, margins) -> np.ndarray:
-    """Per-row loss of labels (0/1) at margins, as a float64 array of the same length.
+    """Per-row loss of labels at margins.
 
-    ``name`` is ``"logistic"`` or ``"squared-hinge"`` (see the module docstring for the formulas and
-    their published sources). Raises ``UserError`` for an unknown loss name and ``ValueError`` when the
-    two arrays are not 1-D of equal length.
+    Parameters
+    ----------
+    name : {"logistic", "squared-hinge"}
+        The loss (see the module docstring for the formulas and their published sources).
+    labels : array_like
+        0/1 labels, 1-D.
+    margins : array_like
+        Margins, 1-D, as long as ``labels``.
+
+    Returns
+    -------
+    numpy.ndarray
+        float64, one loss per row.
+
+    Raises
+    ------
+    UserError
+        For an unknown loss name.
+    ValueError
+        When the two arrays are not 1-D of equal length.
     """
     y, z = _arrays(labels, margins)
     return _pointwise(loss_code(name), 0, y, z)
 
 
 def pointwise_derivative(name: str, labels, margins) -> np.ndarray:
-    """Per-row first derivative of the loss in the margin (logistic: p - y). Same arguments as
-    :func:`pointwise_loss`; raises the same errors."""
+    """Per-row first derivative of the loss in the margin (logistic: p - y).
+
+    Parameters
+    ----------
+    name : {"logistic", "squared-hinge"}
+        The loss (see the module docstring for the formulas and their published sources).
+    labels : array_like
+        0/1 labels, 1-D.
+    margins : array_like
+        Margins, 1-D, as long as ``labels``.
+
+    Returns
+    -------
+    numpy.ndarray
+        float64, one derivative per row.
+
+    Raises
+    ------
+    UserError
+        For an unknown loss name.
+    ValueError
+        When the two arrays are not 1-D of equal length.
+    """
     y, z = _arrays(labels, margins)
     return _pointwise(loss_code(name), 1, y, z)
 
 
 def pointwise_curvature(name: str, labels, margins) -> np.ndarray:
-    """Per-row second derivative of the loss in the margin (logistic: p(1-p); squared hinge: 2 on the
-    active side, 0 elsewhere, the generalized Hessian of "A Dual Coordinate Descent Method for
-    Large-scale Linear SVM", ICML 2008). Same arguments and errors as :func:`pointwise_loss`."""
+    """Per-row second derivative of the loss in the margin.
+
+    Logistic: p(1-p); squared hinge: 2 on the active side, 0 elsewhere, the generalized Hessian of the
+    ICML 2008 paper below.
+
+    Parameters
+    ----------
+    name : {"logistic", "squared-hinge"}
+        The loss (see the module docstring for the formulas and their published sources).
+    labels : array_like
+        0/1 labels, 1-D.
+    margins : array_like
+        Margins, 1-D, as long as ``labels``.
+
+    Returns
+    -------
+    numpy.ndarray
+        float64, one curvature per row.
+
+    Raises
+    ------
+    UserError
+        For an unknown loss name.
+    ValueError
+        When the two arrays are not 1-D of equal length.
+
+    References
+    ----------
+    "A Dual Coordinate Descent Method for Large-scale Linear SVM", ICML, 2008.
+    """
     y, z = _arrays(labels, margins)
     return _pointwise(loss_code(name), 2, y, z)
