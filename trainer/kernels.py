@@ -19,7 +19,23 @@ from trainer.losses import d2loss, dloss, loss
 
 @njit(cache=True, nogil=True)
 def margins_into(indptr, indices, data, w, b, out):
-    """Write z_i = b + sum_k data[k] * w[indices[k]] over row i's entries into ``out`` (length n_rows)."""
+    """Write z_i = b + sum_k data[k] * w[indices[k]] over row i's entries.
+
+    Parameters
+    ----------
+    indptr : numpy.ndarray
+        int64 row offsets (n_rows + 1).
+    indices : numpy.ndarray
+        Per entry, the index into ``w`` (bucket ids, or slots of a compact copy).
+    data : numpy.ndarray
+        float64 entry values.
+    w : numpy.ndarray
+        float64 weights.
+    b : float
+        The intercept.
+    out : numpy.ndarray
+        float64 (n_rows,), overwritten.
+    """
     n_rows = indptr.shape[0] - 1
     for i in range(n_rows):
         acc = b
@@ -29,13 +45,29 @@ def margins_into(indptr, indices, data, w, b, out):
 
 
 def predict_margin(batch, w: np.ndarray, b: float) -> np.ndarray:
-    """Margins X w + b of every row of ``batch`` (a :class:`trainer.reader.Batch`).
+    """Margins X w + b of every row of a batch.
 
-    Takes the bucket weights ``w`` (float64, length >= 1 + the largest bucket id in the batch) and the
-    intercept ``b``; returns a new float64 array of length ``batch.n_rows``. The margin is the linear
-    score of the hashing contract (README.md, section 'Hashing contract'); apply the logistic function
-    for probabilities.
-    Raises ``ValueError`` when ``w`` is not a 1-D float64 array.
+    The margin is the linear score of the hashing contract (README.md, section 'Hashing contract');
+    apply the logistic function for probabilities.
+
+    Parameters
+    ----------
+    batch : trainer.reader.stream.Batch
+        The rows.
+    w : numpy.ndarray
+        The bucket weights (float64, length >= 1 + the largest bucket id in the batch).
+    b : float
+        The intercept.
+
+    Returns
+    -------
+    numpy.ndarray
+        A new float64 array of length ``batch.n_rows``.
+
+    Raises
+    ------
+    ValueError
+        When ``w`` is not a 1-D float64 array.
     """
     w = np.asarray(w)
     if w.ndim != 1 or w.dtype != np.float64:
@@ -47,9 +79,25 @@ def predict_margin(batch, w: np.ndarray, b: float) -> np.ndarray:
 
 @njit(cache=True, nogil=True)
 def residuals_into(code, labels, weights, z, r):
-    """Write r_i = c_i * l'(y_i, z_i) and return (sum_i c_i l(y_i, z_i), sum_i c_i, sum_i r_i).
+    """Write r_i = c_i * l'(y_i, z_i) and sum the loss, weights and residuals.
 
-    ``code`` is a loss code of :mod:`trainer.losses`; ``weights`` are the row weights c_i.
+    Parameters
+    ----------
+    code : int
+        A loss code of :mod:`trainer.losses`.
+    labels : numpy.ndarray
+        0/1 labels y_i.
+    weights : numpy.ndarray
+        Row weights c_i.
+    z : numpy.ndarray
+        Margins.
+    r : numpy.ndarray
+        float64 output, overwritten.
+
+    Returns
+    -------
+    tuple of float
+        ``(sum_i c_i l(y_i, z_i), sum_i c_i, sum_i r_i)``.
     """
     loss_sum = 0.0
     weight_sum = 0.0
@@ -66,7 +114,19 @@ def residuals_into(code, labels, weights, z, r):
 
 @njit(cache=True, nogil=True)
 def curvatures_into(code, labels, weights, z, h):
-    """Write h_i = c_i * l''(y_i, z_i) (Gauss-Newton row curvature) and return sum_i h_i."""
+    """Write h_i = c_i * l''(y_i, z_i) (Gauss-Newton row curvature).
+
+    Parameters
+    ----------
+    code, labels, weights, z : see :func:`residuals_into`
+    h : numpy.ndarray
+        float64 output, overwritten.
+
+    Returns
+    -------
+    float
+        sum_i h_i.
+    """
     total = 0.0
     for i in range(z.shape[0]):
         hi = weights[i] * d2loss(code, labels[i], z[i])
@@ -93,13 +153,27 @@ def _lowest_bit(typingctx, word):
 
 @njit(cache=True, nogil=True)
 def batch_support(indices, bits, slot):
-    """Distinct buckets of a batch, in ascending order (so the sparse vectors built on them can be
-    walked chunk by chunk next to the dense passes).
+    """Distinct buckets of a batch, in ascending order.
 
-    ``bits`` is a uint64 scratch bitmap with one bit per bucket (at least ceil(n / 64) words), all zero;
-    it is zero again on return. Writes ``slot[k]`` = position of ``indices[k]`` in the returned int32
-    array of distinct buckets: the number of set bits below it. The bitmap (128 KiB for 2^20 buckets)
-    stays in the core's cache, where a per-bucket position table would not.
+    Ascending, so the sparse vectors built on them can be walked chunk by chunk next to the dense
+    passes. The bitmap (128 KiB for 2^20 buckets) stays in the core's cache, where a per-bucket position
+    table would not.
+
+    Parameters
+    ----------
+    indices : numpy.ndarray
+        int32 bucket id of each nonzero.
+    bits : numpy.ndarray
+        uint64 scratch bitmap with one bit per bucket (at least ceil(n / 64) words), all zero; it is zero
+        again on return.
+    slot : numpy.ndarray
+        int32 output: ``slot[k]`` = position of ``indices[k]`` in the returned array (the number of set
+        bits below it).
+
+    Returns
+    -------
+    numpy.ndarray
+        int32 distinct buckets.
     """
     one = np.uint64(1)
     for k in range(indices.shape[0]):
@@ -128,7 +202,20 @@ def batch_support(indices, bits, slot):
 def scatter_compact(indptr, slot, data, r, scale, out):
     """Compact gradient scatter: out[p] = scale * sum over entries k with slot[k] = p of r_row(k) * data[k].
 
-    ``out`` has one entry per distinct bucket of the batch (see :func:`batch_support`) and is overwritten.
+    Parameters
+    ----------
+    indptr : numpy.ndarray
+        int64 row offsets (n_rows + 1).
+    slot : numpy.ndarray
+        Per entry, its slot among the batch's distinct buckets (:func:`batch_support`).
+    data : numpy.ndarray
+        float64 entry values.
+    r : numpy.ndarray
+        Per-row residuals.
+    scale : float
+        Factor applied to every sum.
+    out : numpy.ndarray
+        One entry per distinct bucket, overwritten.
     """
     out[:] = 0.0
     n_rows = indptr.shape[0] - 1
@@ -145,7 +232,17 @@ def scatter_compact_squares(indptr, slot, data, h, scale, out):
     """Gauss-Newton diagonal of a batch: out[p] = scale * sum_i h_i x_ij^2 for the p-th distinct bucket j.
 
     Entries of one bucket inside a row are added first, so a row holding bucket j twice with value 1
-    contributes h_i * 2^2, the exact diagonal of X^T diag(h) X. ``out`` is overwritten.
+    contributes h_i * 2^2, the exact diagonal of X^T diag(h) X.
+
+    Parameters
+    ----------
+    indptr, slot, data : see :func:`scatter_compact`
+    h : numpy.ndarray
+        Per-row curvatures (:func:`curvatures_into`).
+    scale : float
+        Factor applied to every sum.
+    out : numpy.ndarray
+        One entry per distinct bucket, overwritten.
     """
     out[:] = 0.0
     row_of = np.full(out.shape[0], -1, dtype=np.int64)
@@ -172,7 +269,21 @@ def scatter_compact_squares(indptr, slot, data, h, scale, out):
 
 @njit(cache=True, nogil=True)
 def regularized_gradient(w, lam, cols, gsp, gb, out):
-    """Full gradient in the quasi-Newton layout: out[:n] = lam * w, then out[cols] += gsp, out[n] = gb."""
+    """Full gradient in the quasi-Newton layout: out[:n] = lam * w, then out[cols] += gsp, out[n] = gb.
+
+    Parameters
+    ----------
+    w : numpy.ndarray
+        The n bucket weights.
+    lam : float
+        The L2 strength.
+    cols, gsp : numpy.ndarray
+        The batch's distinct buckets and their data gradients.
+    gb : float
+        The intercept's data gradient.
+    out : numpy.ndarray
+        Length n + 1, overwritten.
+    """
     n = w.shape[0]
     for j in range(n):
         out[j] = lam * w[j]
@@ -188,8 +299,20 @@ VECTOR_MATH = {"reassoc", "contract"}
 
 @njit(cache=True, nogil=True, fastmath=VECTOR_MATH)
 def dot(u, v):
-    """sum_j u[j] * v[j] over equally long 1-D arrays, accumulated in ``u``'s dtype (float32 lanes are
-    twice as many per instruction as float64 ones)."""
+    """sum_j u[j] * v[j] over equally long 1-D arrays.
+
+    Accumulated in ``u``'s dtype (float32 lanes are twice as many per instruction as float64 ones).
+
+    Parameters
+    ----------
+    u, v : numpy.ndarray
+        The vectors.
+
+    Returns
+    -------
+    float
+        The inner product, in ``u``'s dtype.
+    """
     acc = u.dtype.type(0)
     for j in range(u.shape[0]):
         acc += u[j] * v[j]
