@@ -38,23 +38,85 @@ class Solver(Protocol):
     """What the trainer relies on; see the module docstring for the contract of each member."""
 
     @property
-    def weights(self) -> np.ndarray: ...
+    def weights(self) -> np.ndarray:
+        """Bucket weights, a read-only float64 view of length n_features."""
+        ...
 
     @property
-    def intercept(self) -> float: ...
+    def intercept(self) -> float:
+        """The intercept b (unregularized)."""
+        ...
 
-    def step(self, batch) -> float: ...
+    def step(self, batch) -> float:
+        """One update from a batch.
 
-    def state(self, copy: bool = True) -> dict: ...
+        Parameters
+        ----------
+        batch : trainer.reader.stream.Batch
+            The minibatch.
 
-    def load_state(self, state: dict) -> None: ...
+        Returns
+        -------
+        float
+            The batch's weighted mean data loss at the weights before the update.
+
+        Raises
+        ------
+        Diverged
+            Without changing any state, when the loss, the gradient or the new weights would be
+            non-finite.
+        """
+        ...
+
+    def state(self, copy: bool = True) -> dict:
+        """The complete state as plain numpy arrays and scalars.
+
+        Parameters
+        ----------
+        copy : bool, default True
+            False lets the arrays be views of the live state, valid until the next ``step``.
+
+        Returns
+        -------
+        dict
+        """
+        ...
+
+    def load_state(self, state: dict) -> None:
+        """Restore a :meth:`state`; later steps are bit for bit those of an uninterrupted run.
+
+        Parameters
+        ----------
+        state : dict
+            A :meth:`state` of a solver with the same method, loss, size, l2 and options.
+        """
+        ...
 
 
 def check_float(option: str, value, lo: float, hi: float = math.inf, *, lo_open: bool = False) -> float:
-    """Return ``value`` as a float when it is finite and in [lo, hi] (or (lo, hi] with ``lo_open``;
-    ``hi`` = inf means any finite value above ``lo``).
+    """A float option checked against its range.
 
-    Raises ``UserError`` naming ``option`` and the accepted range otherwise.
+    Parameters
+    ----------
+    option : str
+        The option's name, for the error.
+    value : object
+        The value given.
+    lo, hi : float
+        The accepted range [lo, hi]; ``hi`` = inf means any finite value above ``lo``.
+    lo_open : bool
+        Accept (lo, hi] instead.
+
+    Returns
+    -------
+    float
+        ``value`` as a float.
+
+    Raises
+    ------
+    UserError
+        Naming ``option`` and the accepted range, for a bool, a non-number, a non-finite number or one
+        out of range.
     """
     left = "(" if lo_open else "["
     right = ")" if math.isinf(hi) else "]"
@@ -71,32 +133,111 @@ def check_float(option: str, value, lo: float, hi: float = math.inf, *, lo_open:
 
 
 def check_int(option: str, value, lo: int, hi: int) -> int:
-    """Return ``value`` as an int when it is an integer in [lo, hi]; else raise ``UserError`` naming
-    ``option`` and the accepted range."""
+    """An integer option checked against its range.
+
+    Parameters
+    ----------
+    option : str
+        The option's name, for the error.
+    value : object
+        The value given (a bool is not an integer).
+    lo, hi : int
+        The accepted range [lo, hi].
+
+    Returns
+    -------
+    int
+        ``value`` as an int.
+
+    Raises
+    ------
+    UserError
+        Naming ``option`` and the accepted range otherwise.
+    """
     if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or not lo <= value <= hi:
         raise UserError(f"{option} must be an integer in [{lo}, {hi}]; got {value!r}")
     return int(value)
 
 
 def check_choice(option: str, value, choices) -> str:
-    """Return ``value`` when it is one of ``choices``; else raise ``UserError`` listing them."""
+    """An option checked against its choices.
+
+    Parameters
+    ----------
+    option : str
+        The option's name, for the error.
+    value : object
+        The value given.
+    choices : sequence of str
+        The accepted values.
+
+    Returns
+    -------
+    str
+        ``value``.
+
+    Raises
+    ------
+    UserError
+        Listing the choices, for any other value.
+    """
     if value not in choices:
         raise UserError(f"{option} must be one of {', '.join(choices)}; got {value!r}")
     return value
 
 
 def schedule(step0: float, t0: float, t: int) -> float:
-    """Step size eps_t = step0 * t0 / (t0 + t): sum eps_t diverges and sum eps_t^2 converges, the
-    conditions of "A Stochastic Approximation Method" (Annals of Mathematical Statistics, 1951)."""
+    """Step size eps_t = step0 * t0 / (t0 + t).
+
+    sum eps_t diverges and sum eps_t^2 converges, the conditions of the paper below.
+
+    Parameters
+    ----------
+    step0 : float
+        eps_0.
+    t0 : float
+        The decay horizon, in steps.
+    t : int
+        The step.
+
+    Returns
+    -------
+    float
+        eps_t.
+
+    References
+    ----------
+    "A Stochastic Approximation Method", Annals of Mathematical Statistics, 1951.
+    """
     return step0 * t0 / (t0 + t)
 
 
 class BatchGradient:
     """Margins, residuals and the sparse data gradient of one batch at given weights.
 
-    Attributes: ``cols`` (int32 distinct buckets of the batch), ``slot`` (position in ``cols`` of each
-    nonzero), ``z`` (margins), ``r`` (c_i l'_i), ``weight_sum`` C, ``loss`` (weighted mean data loss),
-    ``gsp`` (X^T r / C on ``cols``), ``gb`` (sum r / C, the intercept's gradient).
+    Parameters
+    ----------
+    batch : trainer.reader.stream.Batch
+        The batch.
+    cols : numpy.ndarray
+        int32 distinct buckets of the batch (:func:`trainer.kernels.batch_support`).
+    slot : numpy.ndarray
+        Position in ``cols`` of each nonzero.
+
+    Attributes
+    ----------
+    z : numpy.ndarray
+        Margins.
+    r : numpy.ndarray
+        c_i l'_i.
+    weight_sum : float
+        C, the batch's total row weight.
+    loss : float
+        Weighted mean data loss.
+    gsp : numpy.ndarray
+        X^T r / C on ``cols``.
+    gb : float
+        sum r / C, the intercept's gradient.
     """
 
     __slots__ = ("batch", "cols", "slot", "z", "r", "weight_sum", "loss", "gsp", "gb")
@@ -113,7 +254,22 @@ class BatchGradient:
         self.gb = 0.0
 
     def evaluate(self, code: int, w: np.ndarray, b: float) -> bool:
-        """Fill every attribute at weights (w, b); return True when loss and gradient are finite."""
+        """Fill every attribute at weights (w, b).
+
+        Parameters
+        ----------
+        code : int
+            A loss code of :mod:`trainer.losses`.
+        w : numpy.ndarray
+            The n bucket weights.
+        b : float
+            The intercept.
+
+        Returns
+        -------
+        bool
+            True when loss and gradient are finite.
+        """
         bt = self.batch
         margins_into(bt.indptr, self.slot, bt.data, w[self.cols], b, self.z)
         loss_sum, weight_sum, r_sum = residuals_into(code, bt.labels, bt.weights, self.z, self.r)
@@ -129,7 +285,21 @@ class LinearSolver:
 
     Weights live in one float64 vector ``_x`` of length n_features + 1: the bucket weights, then the
     intercept. Subclasses implement ``step`` and extend ``_options``, ``_extra_state`` and
-    ``_load_extra``. Raises ``UserError`` naming the option for a bad size, loss or l2.
+    ``_load_extra``.
+
+    Parameters
+    ----------
+    n_features : int
+        Number of buckets, 1..2^30.
+    loss : {"logistic", "squared-hinge"}
+        The data loss.
+    l2 : float
+        The per-row-average L2 strength, in [0, 1e6].
+
+    Raises
+    ------
+    UserError
+        Naming the option for a bad size, loss or l2.
     """
 
     method = ""
@@ -163,9 +333,20 @@ class LinearSolver:
             raise ValueError(f"batch holds a bucket id outside [0, {self.n}), the model's bucket range")
 
     def assign(self, x: np.ndarray) -> None:
-        """Replace the weights by ``x`` (bucket weights then the intercept, length n_features + 1), as the
-        full-batch phase does; the method's own memory (curvature pairs, accumulators) is left as it is.
-        Raises ``ValueError`` for another length or a non-finite value."""
+        """Replace the weights, as the full-batch phase does.
+
+        The method's own memory (curvature pairs, accumulators) is left as it is.
+
+        Parameters
+        ----------
+        x : numpy.ndarray
+            Bucket weights then the intercept, length n_features + 1.
+
+        Raises
+        ------
+        ValueError
+            For another length or a non-finite value.
+        """
         x = np.asarray(x, dtype=np.float64)
         if x.shape != self._x.shape or not np.isfinite(x).all():
             raise ValueError(f"weights must be {self._x.shape[0]} finite values; got shape {x.shape}")
@@ -196,8 +377,16 @@ class LinearSolver:
     def state(self, copy: bool = True) -> dict:
         """Complete solver state as plain numpy arrays and scalars (see the package docstring).
 
-        With ``copy=False`` the arrays may be views of the live state, valid until the next ``step``:
-        enough to write a checkpoint without doubling the memory of the curvature pairs.
+        Parameters
+        ----------
+        copy : bool, default True
+            False lets the arrays be views of the live state, valid until the next ``step``: enough to
+            write a checkpoint without doubling the memory of the curvature pairs.
+
+        Returns
+        -------
+        dict
+            Method, loss, size, l2, step counter, weights, method options and the method's own memory.
         """
         st = {"method": self.method, "loss": self.loss_name, "n_features": self.n, "l2": self.l2,
               "t": self.t, "x": self._x}
@@ -208,8 +397,19 @@ class LinearSolver:
         return st
 
     def load_state(self, state: dict) -> None:
-        """Restore a :meth:`state` dict exactly. Raises ``UserError`` when it was written by another
-        method or with another loss, size, l2 or method option than this solver has."""
+        """Restore a :meth:`state` dict exactly; later steps are bit for bit those of an uninterrupted run.
+
+        Parameters
+        ----------
+        state : dict
+            A :meth:`state` of a solver of the same method, loss, size, l2 and method options.
+
+        Raises
+        ------
+        UserError
+            When it was written by another method or with another loss, size, l2 or method option than this
+            solver has, or its weights have another shape.
+        """
         expected = {"method": self.method, "loss": self.loss_name, "n_features": self.n, "l2": self.l2}
         expected.update(self._options())
         for key, mine in expected.items():
@@ -243,14 +443,36 @@ def make_solver(name: str, n_features: int, loss: str, l2: float, *, history: in
                 step0: float | None = None, seed: int = 0, **method_options) -> Solver:
     """Build a solver for the objective of this package's docstring.
 
-    Takes the method ``name`` ("olbfgs", "res", "sgd", "adagrad"), the number of buckets
-    ``n_features``, the ``loss`` ("logistic" or "squared-hinge"), the per-row-average L2 strength
-    ``l2`` in [0, 1e6], the curvature memory ``history`` (olbfgs only), the initial step ``step0``
-    (None selects the method's default), the ``seed`` in [0, 2^32 - 1] (validated for a uniform
-    interface: no method draws random numbers, every run is deterministic whatever the seed) and the
-    method options listed on each class (``OPTIONS``). Returns a solver following the
-    :class:`Solver` protocol. Raises ``UserError`` naming the option for an unknown name, loss or
-    option, or a value out of range.
+    Parameters
+    ----------
+    name : {"olbfgs", "res", "sgd", "adagrad"}
+        The method.
+    n_features : int
+        Number of buckets, 1..2^30.
+    loss : {"logistic", "squared-hinge"}
+        The data loss.
+    l2 : float
+        The per-row-average L2 strength, in [0, 1e6].
+    history : int, default 10
+        The curvature memory (olbfgs only).
+    step0 : float, optional
+        The initial step (None selects the method's default).
+    seed : int, default 0
+        In [0, 2^32 - 1]; validated for a uniform interface: no method draws random numbers, every run is
+        deterministic whatever the seed.
+    **method_options
+        The method options listed on each class (``OPTIONS``).
+
+    Returns
+    -------
+    Solver
+        A solver following the :class:`Solver` protocol.
+
+    Raises
+    ------
+    UserError
+        Naming the option for an unknown name, loss or option, ``history`` with another method, or a
+        value out of range.
     """
     check_choice("--solver", name, SOLVER_NAMES)
     check_int("--seed", seed, 0, 2**32 - 1)
