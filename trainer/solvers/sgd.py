@@ -15,9 +15,30 @@ from trainer.solvers._first_order import RULE_SGD, FirstOrderSolver
 class SGD(FirstOrderSolver):
     """Stochastic gradient descent with a decaying step.
 
-    Options: ``step0`` ((0, inf), default 10) and ``t0`` ((0, 1e12], default 100 steps), chosen on
-    the hashed one-hot benchmark of ``scripts/bench_solvers.py``; data with large numeric values need
-    a smaller ``step0``. Raises ``UserError`` naming the option for a value out of range.
+    The defaults of ``step0`` and ``t0`` were chosen on the hashed one-hot benchmark of
+    ``scripts/bench_solvers.py``.
+
+    Parameters
+    ----------
+    n_features : int
+        Number of buckets, 1..2^30.
+    loss : {"logistic", "squared-hinge"}
+        The data loss.
+    l2 : float
+        The per-row-average L2 strength, in [0, 1e6].
+    step0 : float, optional
+        eps_0 in (0, inf), default 10; data with large numeric values need a smaller one.
+    t0 : float, default 100
+        Decay horizon in steps, (0, 1e12].
+
+    Raises
+    ------
+    UserError
+        Naming the option for a value out of range.
+
+    References
+    ----------
+    "A Stochastic Approximation Method", Annals of Mathematical Statistics, 1951.
     """
 
     method = "sgd"
