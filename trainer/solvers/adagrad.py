@@ -21,10 +21,28 @@ from trainer.solvers._first_order import RULE_ADAGRAD, FirstOrderSolver
 class AdaGrad(FirstOrderSolver):
     """Diagonal AdaGrad (composite mirror descent form).
 
-    Options: ``step0`` = eta ((0, inf), default 0.2, constant; chosen on the benchmark of
-    ``scripts/bench_solvers.py``) and ``delta`` ((0, 1e6], default 1e-6,
-    added to sqrt(G_j) so unseen coordinates stay finite). Raises ``UserError`` naming the option for
-    a value out of range.
+    Parameters
+    ----------
+    n_features : int
+        Number of buckets, 1..2^30.
+    loss : {"logistic", "squared-hinge"}
+        The data loss.
+    l2 : float
+        The per-row-average L2 strength, in [0, 1e6].
+    step0 : float, optional
+        eta in (0, inf), default 0.2, constant; chosen on the benchmark of ``scripts/bench_solvers.py``.
+    delta : float, default 1e-6
+        In (0, 1e6], added to sqrt(G_j) so unseen coordinates stay finite.
+
+    Raises
+    ------
+    UserError
+        Naming the option for a value out of range.
+
+    References
+    ----------
+    "Adaptive Subgradient Methods for Online Learning and Stochastic Optimization", Journal of Machine
+    Learning Research 12, 2011.
     """
 
     method = "adagrad"
