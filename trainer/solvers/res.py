@@ -34,11 +34,32 @@ MAX_FEATURES = 4096
 class RES(LinearSolver):
     """Regularized stochastic BFGS (see the module docstring).
 
-    Options: ``step0`` ((0, inf), default 0.5), ``t0`` ((0, 1e12], default 10 steps), ``delta``
-    ((0, inf), default 1e-4, the curvature regularization of y~ and the added delta I) and ``gamma``
-    ([0, 1e6], default 1e-4, the Gamma I added to B^{-1} in the direction). Raises ``UserError`` when
-    n_features exceeds :data:`MAX_FEATURES` (pointing to ``--solver olbfgs``) or an option is out of
-    range.
+    Parameters
+    ----------
+    n_features : int
+        Number of buckets, 1..2^30.
+    loss : {"logistic", "squared-hinge"}
+        The data loss.
+    l2 : float
+        The per-row-average L2 strength, in [0, 1e6].
+    step0 : float, optional
+        eps_0 in (0, inf), default 0.5.
+    t0 : float, default 10
+        Decay horizon in steps, (0, 1e12].
+    delta : float, default 1e-4
+        In (0, inf): the curvature regularization of y~ and the added delta I.
+    gamma : float, default 1e-4
+        In [0, 1e6]: the Gamma I added to B^{-1} in the direction.
+
+    Raises
+    ------
+    UserError
+        When n_features exceeds :data:`MAX_FEATURES` (pointing to ``--solver olbfgs``) or an option is
+        out of range.
+
+    References
+    ----------
+    "RES: Regularized Stochastic BFGS Algorithm", IEEE Transactions on Signal Processing, 2014.
     """
 
     method = "res"
@@ -75,11 +96,25 @@ class RES(LinearSolver):
         return np.asfortranarray(np.diag(diag))
 
     def step(self, batch) -> float:
-        """One RES update from ``batch``; returns the weighted mean data loss before the update.
+        """One RES update from a batch.
 
-        Raises ``Diverged`` (state unchanged) when the loss, a gradient, the new weights or the
-        factorization of B are not finite/positive definite, and ``ValueError`` for an empty batch or
-        a bucket id out of range.
+        Parameters
+        ----------
+        batch : trainer.reader.stream.Batch
+            The minibatch.
+
+        Returns
+        -------
+        float
+            The weighted mean data loss before the update (progressive validation).
+
+        Raises
+        ------
+        Diverged
+            (state unchanged) When the loss, a gradient, the new weights or the factorization of B are not
+            finite/positive definite.
+        ValueError
+            For an empty batch or a bucket id out of range.
         """
         n = self.n
         g0 = self._gradient(batch)
