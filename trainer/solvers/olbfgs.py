@@ -98,25 +98,64 @@ from trainer.solvers._olbfgs_kernels import (CHUNK, chunk_pointers, commit_step,
 
 
 def default_prior_rows(l2: float) -> float:
-    """The damping's default worth in rows, 0.05 / l2 (500 rows at l2 = 1e-4, 5000 at 1e-5, 50000 at
-    1e-6; at most 1e6), chosen on the regime matrix of ``scripts/bench_regimes.py`` (module docstring)."""
+    """The damping's default worth in rows, 0.05 / l2.
+
+    500 rows at l2 = 1e-4, 5000 at 1e-5, 50000 at 1e-6; at most 1e6; chosen on the regime matrix of
+    ``scripts/bench_regimes.py`` (module docstring).
+
+    Parameters
+    ----------
+    l2 : float
+        The L2 strength.
+
+    Returns
+    -------
+    float
+        min(0.05 / l2, 1e6), or 1e6 without L2.
+    """
     return min(0.05 / l2, 1e6) if l2 > 0 else 1e6
 
 
 class OnlineLBFGS(LinearSolver):
     """Online L-BFGS with a damped Gauss-Newton diagonal initial matrix (see the module docstring).
 
-    Options: ``history`` (pairs kept, 1..100, default 10), ``step0`` (eps_0 in (0, inf), default 0.3),
-    ``t0`` (decay horizon in steps, (0, 1e12], default 20), ``curvature_window`` (steps, [1, 1e12],
-    default 100), ``prior_rows`` (damping in rows of average curvature, [0, 1e12], default
-    :func:`default_prior_rows` of l2),
-    ``armijo`` (sufficient-decrease constant, (0, 0.5], default 0.1), ``pair_dtype`` ("float32"
-    or "float64", storage of the curvature steps, default "float32"). ``seconds`` accumulates the
-    wall time of each phase (gradient, direction, line_search, update); it is not part of state().
-    Memory: (history + 1) * (n_features + 1) float32 values (the stored steps and the direction), 2 *
-    (n_features + 1) float64 values (weights and curvature diagonal; one more during the first step)
-    and the sparse gradient differences of the stored pairs.
-    Raises ``UserError`` naming the option for a value out of range.
+    ``seconds`` accumulates the wall time of each phase (gradient, direction, line_search, update); it
+    is not part of state(). Memory: (history + 1) * (n_features + 1) float32 values (the stored steps and
+    the direction), 2 * (n_features + 1) float64 values (weights and curvature diagonal; one more during
+    the first step) and the sparse gradient differences of the stored pairs.
+
+    Parameters
+    ----------
+    n_features : int
+        Number of buckets, 1..2^30.
+    loss : {"logistic", "squared-hinge"}
+        The data loss.
+    l2 : float
+        The per-row-average L2 strength, in [0, 1e6].
+    history : int, default 10
+        Pairs kept, 1..100.
+    step0 : float, optional
+        eps_0 in (0, inf), default 0.3.
+    t0 : float, default 20
+        Decay horizon in steps, (0, 1e12].
+    curvature_window : float, default 100
+        Steps, [1, 1e12].
+    prior_rows : float, optional
+        Damping in rows of average curvature, [0, 1e12]; default :func:`default_prior_rows` of l2.
+    armijo : float, default 0.1
+        Sufficient-decrease constant, (0, 0.5].
+    pair_dtype : {"float32", "float64"}
+        Storage of the curvature steps, default "float32".
+
+    Raises
+    ------
+    UserError
+        Naming the option for a value out of range.
+
+    References
+    ----------
+    "A Stochastic Quasi-Newton Method for Online Convex Optimization", AISTATS, 2007.
+    "Global Convergence of Online Limited Memory BFGS", Journal of Machine Learning Research 16, 2015.
     """
 
     method = "olbfgs"
@@ -153,11 +192,30 @@ class OnlineLBFGS(LinearSolver):
         self._q = np.empty(size, dtype=np.dtype(self.pair_dtype))
 
     def step(self, batch) -> float:
-        """One oLBFGS update from ``batch``; returns the weighted mean data loss before the update.
+        """One oLBFGS update from a batch.
 
-        Raises ``Diverged`` (state unchanged) when the loss, a gradient, the direction or every trial
-        point of the line search is non-finite, and ``ValueError`` for an empty batch or a bucket id
-        out of range.
+        Parameters
+        ----------
+        batch : trainer.reader.stream.Batch
+            The minibatch.
+
+        Returns
+        -------
+        float
+            The weighted mean data loss before the update (progressive validation).
+
+        Raises
+        ------
+        Diverged
+            (state unchanged) When the loss, a gradient, the direction or every trial point of the line
+            search is non-finite.
+        ValueError
+            For an empty batch or a bucket id out of range.
+
+        References
+        ----------
+        "A Stochastic Quasi-Newton Method for Online Convex Optimization", AISTATS, 2007.
+        "Global Convergence of Online Limited Memory BFGS", Journal of Machine Learning Research 16, 2015.
         """
         clock = time.perf_counter
         started = clock()
