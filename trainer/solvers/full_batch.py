@@ -30,15 +30,45 @@ ITERATIONS_PER_PASS = 30
 
 
 def log_bytes(rows: int, entries: int) -> int:
-    """Bytes the in-memory log of ``rows`` rows and ``entries`` nonzeros takes (see the module docstring)."""
+    """Bytes the in-memory log takes (see the module docstring).
+
+    Parameters
+    ----------
+    rows : int
+        Rows of the log.
+    entries : int
+        Its nonzeros.
+
+    Returns
+    -------
+    int
+        12 per entry, 48 per row, plus 8.
+    """
     return 12 * entries + 48 * rows + 8
 
 
 @dataclass
 class InMemoryLog:
-    """The hashed rows of one pass as one CSR matrix with labels and row weights; the entries address
-    the log's distinct buckets ``cols`` (ascending) by ``slot`` (:func:`trainer.kernels.batch_support`),
-    so the kernels work on gathered, compact vectors."""
+    """The hashed rows of one pass as one CSR matrix with labels and row weights.
+
+    The entries address the log's distinct buckets ``cols`` (ascending) by ``slot``
+    (:func:`trainer.kernels.batch_support`), so the kernels work on gathered, compact vectors.
+
+    Attributes
+    ----------
+    indptr : numpy.ndarray
+        int64 row offsets (n_rows + 1).
+    cols : numpy.ndarray
+        int32 distinct buckets of the log, ascending.
+    slot : numpy.ndarray
+        int32 position in ``cols`` of each entry's bucket.
+    data : numpy.ndarray
+        float64 entry values.
+    labels : numpy.ndarray
+        float64 labels in {0, 1}.
+    weights : numpy.ndarray
+        float64 row weights.
+    """
 
     indptr: np.ndarray
     cols: np.ndarray
@@ -49,13 +79,27 @@ class InMemoryLog:
 
     @property
     def n_rows(self) -> int:
+        """Rows in the log."""
         return self.labels.shape[0]
 
     @classmethod
     def collect(cls, batches, budget_bytes: int, n_features: int) -> "InMemoryLog | None":
-        """Concatenate ``batches`` (:class:`trainer.reader.Batch`, in order, buckets below
-        ``n_features``); return None as soon as the rows would take more than ``budget_bytes`` (see
-        :func:`log_bytes`)."""
+        """Concatenate a pass's batches, unless they exceed a memory budget.
+
+        Parameters
+        ----------
+        batches : iterable of trainer.reader.stream.Batch
+            The batches, in order, with buckets below ``n_features``.
+        budget_bytes : int
+            The budget (see :func:`log_bytes`).
+        n_features : int
+            The model's buckets.
+
+        Returns
+        -------
+        InMemoryLog or None
+            None as soon as the rows would take more than ``budget_bytes``.
+        """
         parts, rows, entries = [], 0, 0
         for b in batches:
             rows += b.n_rows
@@ -80,13 +124,38 @@ class InMemoryLog:
 
 def minimize(log: InMemoryLog, code: int, l2: float, x: np.ndarray, *, history: int = 10,
              iterations: int = ITERATIONS_PER_PASS, stop=None) -> dict:
-    """Run up to ``iterations`` L-BFGS-B iterations on F(w, b) = sum_i c_i l(y_i, x_i.w + b) / sum_i c_i
-    + (l2 / 2) ||w||^2 from ``x`` (bucket weights then the intercept, float64; overwritten with the
-    result). The iterations move the log's buckets and the intercept; every other bucket is set to
-    0, its exact minimizer (the objective is (l2 / 2) w_j^2 there). ``code`` is a loss code of :mod:`trainer.losses`; ``stop`` a callable polled after every
-    iteration that returns True to end the pass early (then ``x`` is left unchanged).
+    """Run L-BFGS-B iterations on the whole log.
 
-    Returns {"iterations", "evaluations", "objective", "converged", "stopped", "seconds"}.
+    Minimizes F(w, b) = sum_i c_i l(y_i, x_i.w + b) / sum_i c_i + (l2 / 2) ||w||^2 from ``x``. The
+    iterations move the log's buckets and the intercept; every other bucket is set to 0, its exact
+    minimizer (the objective is (l2 / 2) w_j^2 there).
+
+    Parameters
+    ----------
+    log : InMemoryLog
+        The rows.
+    code : int
+        A loss code of :mod:`trainer.losses`.
+    l2 : float
+        The L2 strength.
+    x : numpy.ndarray
+        Bucket weights then the intercept, float64; overwritten with the result.
+    history : int, default 10
+        L-BFGS-B's memory (``maxcor``).
+    iterations : int, default ITERATIONS_PER_PASS
+        Most iterations.
+    stop : callable, optional
+        Polled after every iteration; returning True ends the pass early (then ``x`` is left unchanged).
+
+    Returns
+    -------
+    dict
+        ``iterations``, ``evaluations``, ``objective``, ``converged``, ``stopped``, ``seconds``.
+
+    References
+    ----------
+    "A Limited Memory Algorithm for Bound Constrained Optimization", SIAM Journal on Scientific
+    Computing 16, 1995. "Algorithm 778: L-BFGS-B", ACM Transactions on Mathematical Software 23, 1997.
     """
     n = x.shape[0] - 1
     m = log.cols.shape[0]
