@@ -30,14 +30,41 @@ __all__ = ["EvaluationResult", "TrainResult", "train", "evaluate", "score", "exp
 def train(spec: str | Path | Spec, data: str | Path, out: str | Path, *, holdout: str | Path | None = None,
           resume: bool = False, force: bool = False, quiet: bool = False, cluster=None,
           **options) -> TrainResult:
-    """Train a model from ``data`` into the folder ``out``; returns a :class:`trainer.training.TrainResult`
-    (the model, its folder, passes run, per-pass metrics, best pass, stopping reason, timings).
+    """Train a model from a log into a model folder.
 
-    ``spec``: a spec file or Spec; ``holdout``: a holdout log (or use ``holdout_start``/``holdout_end``
-    on the training path); ``options``: any TrainOptions field (dates as YYYY-MM-DD strings or
-    dates); ``cluster``: a Dask scheduler address, ``local:N`` or a ``distributed.Client`` to train
-    over (one online pass per shard, averaged, then full-batch L-BFGS; see ``trainer.cluster``).
-    Raises UserError for bad options, data or folders; Interrupted on SIGINT/SIGTERM.
+    Parameters
+    ----------
+    spec : str, Path or Spec
+        A spec file or a loaded Spec.
+    data : str or Path
+        The training log (file, folder or hive-partitioned folder).
+    out : str or Path
+        The model folder.
+    holdout : str or Path, optional
+        A holdout log (or use ``holdout_start``/``holdout_end`` on the training path).
+    resume : bool
+        Continue the run in ``out`` from its checkpoint.
+    force : bool
+        Replace another run's files in ``out``.
+    quiet : bool
+        No progress bar and no per-pass table.
+    cluster : str or distributed.Client, optional
+        A Dask scheduler address, ``local:N`` or a ``distributed.Client`` to train over (one online pass per shard,
+        averaged, then full-batch L-BFGS; see ``trainer.cluster``).
+    **options
+        Any :class:`trainer.training.TrainOptions` field (dates as YYYY-MM-DD strings or dates).
+
+    Returns
+    -------
+    trainer.training.TrainResult
+        The model, its folder, passes run, per-pass metrics, best pass, stopping reason, timings.
+
+    Raises
+    ------
+    UserError
+        For bad or unknown options, data or folders.
+    Interrupted
+        On SIGINT/SIGTERM (after saving a checkpoint).
     """
     spec = spec if isinstance(spec, Spec) else load_spec(spec)
     for key in ("start", "end", "holdout_start", "holdout_end"):
@@ -59,13 +86,37 @@ def train(spec: str | Path | Spec, data: str | Path, out: str | Path, *, holdout
 def evaluate(model: str | Path | Model, data: str | Path, *, start=None, end=None, by: str | None = None,
              segments: int = 20, skip_bad_labels: bool = False,
              json_out: str | Path | None = None, cluster=None) -> EvaluationResult:
-    """Metrics of ``model`` on the labelled log ``data`` (inclusive date filter ``start``..``end``).
+    """Metrics of a model on a labelled log.
 
-    ``by`` adds one row per value of that column (the ``segments`` largest, the rest pooled).
-    ``json_out`` also writes the summary as JSON (atomically). ``cluster`` (a Dask scheduler
-    address, ``local:N`` or a ``distributed.Client``) computes it there, one task per file or row
-    groups, with the same result. Returns the summary, a
-    :class:`trainer.evaluation.EvaluationResult` (a dict whose keys read as attributes too).
+    Parameters
+    ----------
+    model : str, Path or Model
+        A training model folder, an export folder, or a loaded Model.
+    data : str or Path
+        The labelled log.
+    start, end : str or datetime.date, optional
+        Inclusive date filter (YYYY-MM-DD).
+    by : str, optional
+        Add one row per value of this column.
+    segments : int, default 20
+        With ``by``, the number of largest values listed (the rest pooled); at least 1.
+    skip_bad_labels : bool
+        Drop rows with null or unaccepted labels (their count is reported as ``skipped_bad_labels``).
+    json_out : str or Path, optional
+        Also write the summary there as JSON (atomically).
+    cluster : str or distributed.Client, optional
+        A Dask scheduler address, ``local:N`` or a ``distributed.Client``; computes the metrics there, one task per file
+        or row groups, with the same result.
+
+    Returns
+    -------
+    trainer.evaluation.EvaluationResult
+        The summary, a dict whose keys read as attributes too.
+
+    Raises
+    ------
+    UserError
+        For a bad model, log, option or column.
     """
     model = model if isinstance(model, Model) else load_model(model)
     if segments < 1:
@@ -88,11 +139,39 @@ def evaluate(model: str | Path | Model, data: str | Path, *, start=None, end=Non
 
 def score(model: str | Path, data: str | Path, out: str | Path, *, keep: tuple[str, ...] = (),
           missing_as_null: bool = False, start=None, end=None, cluster=None, force: bool = False) -> dict:
-    """Score ``data`` with the model (training folder or export) into the Parquet file ``out``.
+    """Score a log with a model into Parquet.
 
-    With ``cluster`` (a Dask scheduler address, ``local:N`` or a ``distributed.Client``), ``out`` is
-    a dataset folder instead: one Parquet file per input part and the manifest ``_parts.json``
-    written last (see ``trainer.cluster.score``); ``force`` replaces an earlier one there.
+    Parameters
+    ----------
+    model : str or Path
+        A training model folder or an export folder.
+    data : str or Path
+        The log to score.
+    out : str or Path
+        The Parquet file written; with ``cluster``, a dataset folder instead: one Parquet file per input
+        part and the manifest ``_parts.json`` written last (see ``trainer.cluster.score``).
+    keep : tuple of str
+        Input columns (or hive partition keys) copied beside the scores.
+    missing_as_null : bool
+        Feature columns absent from a file count as all null.
+    start, end : str or datetime.date, optional
+        Inclusive date filter (YYYY-MM-DD).
+    cluster : str or distributed.Client, optional
+        A Dask scheduler address, ``local:N`` or a ``distributed.Client``.
+    force : bool
+        With ``cluster``, replace an earlier dataset folder at ``out``.
+
+    Returns
+    -------
+    dict
+        What was written (``rows``, ``out``; see :func:`trainer.scoring.score_to_parquet` and
+        ``trainer.cluster.score``).
+
+    Raises
+    ------
+    UserError
+        For a bad model, a missing feature or kept column, a bad option or output path, or unreadable
+        data.
     """
     if cluster is None:
         return score_to_parquet(model, data, out, keep=tuple(keep), missing_as_null=missing_as_null,
@@ -109,23 +188,77 @@ def score(model: str | Path, data: str | Path, out: str | Path, *, keep: tuple[s
 
 
 def export(model: str | Path, out: str | Path, *, force: bool = False) -> Path:
-    """Export a trained model folder (or an export folder) to ``out`` (weights.parquet + model.json,
-    :func:`trainer.export.write_export`); returns ``out``. Raises UserError for a bad model or
-    destination."""
+    """Export a trained model folder (or an export folder) (:func:`trainer.export.write_export`).
+
+    Parameters
+    ----------
+    model : str or Path
+        The model folder.
+    out : str or Path
+        The export folder (weights.parquet + model.json).
+    force : bool
+        Replace a previous export at ``out``.
+
+    Returns
+    -------
+    Path
+        ``out``.
+
+    Raises
+    ------
+    UserError
+        For a bad model or destination.
+    """
     source = model_folder(model)
     return write_export(load_model(source), out, source=source, force=force)
 
 
 def inspect(model: str | Path) -> dict:
-    """Size, non-zero buckets, collision estimate, largest weights and options of a model."""
+    """Size, non-zero buckets, collision estimate, largest weights and options of a model.
+
+    Parameters
+    ----------
+    model : str or Path
+        A training model folder or an export folder.
+
+    Returns
+    -------
+    dict
+        See :func:`trainer.model.inspect_model`.
+
+    Raises
+    ------
+    UserError
+        For a bad model folder.
+    """
     return inspect_model(model)
 
 
 def report(model_dir: str | Path, out: str | Path | None = None, *, top: int = 15,
            probability_axis: str = "auto") -> Path:
-    """Write the self-contained HTML report of a training folder; returns its path
-    (default ``MODEL_DIR/report.html``). ``probability_axis`` ("auto", "linear" or "log") scales
-    the reliability diagram (auto: log below a 10% base rate); UserError for another value."""
+    """Write the self-contained HTML report of a training folder.
+
+    Parameters
+    ----------
+    model_dir : str or Path
+        The training model folder.
+    out : str or Path, optional
+        The HTML file (default ``MODEL_DIR/report.html``).
+    top : int, default 15
+        Largest positive and negative weights listed.
+    probability_axis : {"auto", "linear", "log"}
+        Scale of the reliability diagram (auto: log below a 10% base rate).
+
+    Returns
+    -------
+    Path
+        The report's path.
+
+    Raises
+    ------
+    UserError
+        For another ``probability_axis`` or a bad model folder.
+    """
     if probability_axis not in ("auto", "linear", "log"):
         raise UserError(f"--probability-axis must be auto, linear or log; got {probability_axis!r}")
     folder = RunFolder(model_dir)
@@ -146,7 +279,17 @@ def report(model_dir: str | Path, out: str | Path | None = None, *, top: int = 1
 
 
 def demo_data_dir() -> Path:
-    """The shipped demo folder: beside the package in a source checkout, else ./demo_data."""
+    """The shipped demo folder: beside the package in a source checkout, else ./demo_data.
+
+    Returns
+    -------
+    Path
+
+    Raises
+    ------
+    UserError
+        When neither holds ``demo_data/spec.json``.
+    """
     for base in (Path(__file__).resolve().parents[1], Path.cwd()):
         if (base / "demo_data" / "spec.json").exists():
             return base / "demo_data"
@@ -155,9 +298,29 @@ def demo_data_dir() -> Path:
 
 
 def demo(out: str | Path = "hashcurve-demo", *, quiet: bool = False) -> dict:
-    """The whole job on the shipped demo logs: train on all days but the last with default options,
-    evaluate the last day after each pass, export, score the held-out day and write the report.
-    Returns the paths written (model, export, scores, report, evaluation)."""
+    """The whole job on the shipped demo logs.
+
+    Trains on all days but the last with default options, evaluates the last day after each pass,
+    exports, scores the held-out day and writes the report.
+
+    Parameters
+    ----------
+    out : str or Path, default "hashcurve-demo"
+        The folder written into (its model and export are replaced).
+    quiet : bool
+        No progress bar and no per-pass table.
+
+    Returns
+    -------
+    dict
+        The paths written (``model``, ``export``, ``scores``, ``metrics``, ``report``), ``train_days``,
+        ``holdout_day`` and the holdout ``summary``.
+
+    Raises
+    ------
+    UserError
+        When the demo data is missing or has fewer than two days.
+    """
     root = demo_data_dir()
     logs = root / "logs"
     days = sorted(p.name.split("=", 1)[1] for p in logs.iterdir() if p.is_dir() and "=" in p.name)
