@@ -49,8 +49,8 @@ def train(spec: str | Path | Spec, data: str | Path, out: str | Path, *, holdout
     quiet : bool
         No progress bar and no per-pass table.
     cluster : str or distributed.Client, optional
-        A Dask scheduler address, ``local:N`` or a ``distributed.Client`` to train over (one online pass per shard,
-        averaged, then full-batch L-BFGS; see ``trainer.cluster``).
+        A Dask scheduler address, ``local:N`` or a ``distributed.Client`` to train over (one online
+        pass per shard, averaged, then full-batch L-BFGS; see ``trainer.cluster``).
     **options
         Any :class:`trainer.training.TrainOptions` field (dates as YYYY-MM-DD strings or dates).
 
@@ -105,8 +105,8 @@ def evaluate(model: str | Path | Model, data: str | Path, *, start=None, end=Non
     json_out : str or Path, optional
         Also write the summary there as JSON (atomically).
     cluster : str or distributed.Client, optional
-        A Dask scheduler address, ``local:N`` or a ``distributed.Client``; computes the metrics there, one task per file
-        or row groups, with the same result.
+        A Dask scheduler address, ``local:N`` or a ``distributed.Client``; computes the metrics there,
+        one task per file or row groups, with the same result.
 
     Returns
     -------
