@@ -57,22 +57,39 @@ def _check_calibration(cal, loss: str) -> dict | None:
 class Model:
     """A linear model over the hashed feature space of a spec.
 
-    Takes ``spec`` (a :class:`trainer.spec.Spec`), ``weights`` (float64, length 2^bits, finite; kept
-    without copying), ``intercept`` (finite float, already holding any negative-downsampling
-    correction ln Q, see below), ``loss`` ("logistic" or "squared-hinge") and ``info`` (a dict; missing
-    keys take defaults): ``options`` (training options), ``negative_keep_rate`` Q in (0, 1],
-    ``summary`` (rows, passes, optionally ``distinct_tokens``, ...), ``holdout`` (last holdout metrics or
-    None), ``calibration`` (None or ``{"method": "platt", "a", "b", ...}``, squared-hinge only; extra
-    keys such as the slice it was fitted on are kept), ``examples`` (``{str(bucket): [token strings]}``).
-    Raises ValueError for inconsistent arguments.
-
     The margin of a row is z = intercept + sum(value * weight[bucket]) (hashing contract). A logistic
     model's probability is 1 / (1 + exp(-z)); training on negatives kept with rate Q and adding ln Q to
-    the intercept gives the recalibrated p = p' / (p' + (1 - p') / Q) of "Practical Lessons from
-    Predicting Clicks on Ads at Facebook" (ADKDD 2014). A squared-hinge model ("A Dual Coordinate
-    Descent Method for Large-scale Linear SVM", ICML 2008) gives probabilities only through Platt
-    scaling sigmoid(a z + b) ("Probabilistic Outputs for Support Vector Machines and Comparisons to
-    Regularized Likelihood Methods", Advances in Large Margin Classifiers, MIT Press, 1999).
+    the intercept gives the recalibrated p = p' / (p' + (1 - p') / Q) of the ADKDD 2014 paper below. A
+    squared-hinge model gives probabilities only through Platt scaling sigmoid(a z + b).
+
+    Parameters
+    ----------
+    spec : Spec
+        The feature spec.
+    weights : numpy.ndarray
+        float64, length 2^bits, finite; kept without copying.
+    intercept : float
+        Finite, already holding any negative-downsampling correction ln Q.
+    loss : {"logistic", "squared-hinge"}
+        The loss trained.
+    info : dict, optional
+        Missing keys take defaults: ``options`` (training options), ``negative_keep_rate`` Q in (0, 1],
+        ``summary`` (rows, passes, optionally ``distinct_tokens``, ...), ``holdout`` (last holdout metrics
+        or None), ``calibration`` (None or ``{"method": "platt", "a", "b", ...}``, squared-hinge only;
+        extra keys such as the slice it was fitted on are kept), ``examples``
+        (``{str(bucket): [token strings]}``).
+
+    Raises
+    ------
+    ValueError
+        For inconsistent arguments.
+
+    References
+    ----------
+    "Practical Lessons from Predicting Clicks on Ads at Facebook", ADKDD, 2014.
+    "A Dual Coordinate Descent Method for Large-scale Linear SVM", ICML, 2008.
+    "Probabilistic Outputs for Support Vector Machines and Comparisons to Regularized Likelihood
+    Methods", Advances in Large Margin Classifiers, MIT Press, 1999.
     """
 
     def __init__(self, spec: Spec, weights: np.ndarray, intercept: float, loss: str, info: dict | None = None):
@@ -122,10 +139,22 @@ class Model:
         return self.info["calibration"]
 
     def margin(self, batch) -> np.ndarray:
-        """Margins z = intercept + X w of every row of ``batch`` (a :class:`trainer.reader.Batch`).
+        """Margins z = intercept + X w of every row of a batch (the hashing contract).
 
-        Returns a float64 array of length ``batch.n_rows``. Raises ValueError when the batch holds a
-        bucket outside [0, 2^bits) (a batch hashed for another spec). Source: the hashing contract.
+        Parameters
+        ----------
+        batch : trainer.reader.stream.Batch
+            The rows.
+
+        Returns
+        -------
+        numpy.ndarray
+            float64, length ``batch.n_rows``.
+
+        Raises
+        ------
+        ValueError
+            When the batch holds a bucket outside [0, 2^bits) (a batch hashed for another spec).
         """
         if batch.indices.size and (int(batch.indices.max()) >= self.spec.n_buckets or int(batch.indices.min()) < 0):
             raise ValueError(f"batch holds a bucket outside [0, {self.spec.n_buckets}); it was hashed "
@@ -135,8 +164,22 @@ class Model:
     def probability_from_margin(self, margins) -> np.ndarray:
         """Probabilities of an array of margins: logistic sigmoid(z), or Platt sigmoid(a z + b).
 
-        Overflow-safe (``scipy.special.expit``). Returns float64. Raises UserError for a squared-hinge
-        model without calibration. Sources: see the class docstring.
+        Overflow-safe (``scipy.special.expit``). Sources: see the class docstring.
+
+        Parameters
+        ----------
+        margins : array_like
+            The margins.
+
+        Returns
+        -------
+        numpy.ndarray
+            float64 probabilities.
+
+        Raises
+        ------
+        UserError
+            For a squared-hinge model without calibration.
         """
         z = np.asarray(margins, dtype=np.float64)
         if self.loss == "logistic":
@@ -147,18 +190,50 @@ class Model:
         return expit(cal["a"] * z + cal["b"])
 
     def predict(self, batch) -> np.ndarray:
-        """Probabilities of every row of ``batch``: :meth:`margin` followed by
-        :meth:`probability_from_margin`. Raises UserError when the model has no probability (an
-        uncalibrated squared-hinge model) and ValueError like :meth:`margin`."""
+        """Probabilities of every row of a batch: :meth:`margin` followed by :meth:`probability_from_margin`.
+
+        Parameters
+        ----------
+        batch : trainer.reader.stream.Batch
+            The rows.
+
+        Returns
+        -------
+        numpy.ndarray
+            float64, length ``batch.n_rows``.
+
+        Raises
+        ------
+        UserError
+            When the model has no probability (an uncalibrated squared-hinge model).
+        ValueError
+            Like :meth:`margin`.
+        """
         if not self.has_probability:
             raise _no_calibration()
         return self.probability_from_margin(self.margin(batch))
 
     def top_weights(self, k: int = 10, sign: int = 1) -> list[dict]:
-        """The ``k`` largest (``sign`` 1) or most negative (``sign`` -1) non-zero weights, strongest
-        first, as ``{"bucket": int, "weight": float, "examples": [str, ...]}`` with the token strings
-        recorded in ``info["examples"]`` for that bucket (possibly empty). Raises ValueError for
-        ``sign`` other than 1 or -1 or a negative ``k``."""
+        """The strongest non-zero weights of one sign, strongest first.
+
+        Parameters
+        ----------
+        k : int, default 10
+            How many (>= 0).
+        sign : {1, -1}
+            The largest (1) or the most negative (-1).
+
+        Returns
+        -------
+        list of dict
+            ``{"bucket": int, "weight": float, "examples": [str, ...]}`` with the token strings recorded in
+            ``info["examples"]`` for that bucket (possibly empty).
+
+        Raises
+        ------
+        ValueError
+            For ``sign`` other than 1 or -1 or a negative ``k``.
+        """
         if sign not in (1, -1) or k < 0:
             raise ValueError("top_weights: sign must be 1 or -1 and k >= 0")
         s = sign * self.weights
@@ -171,10 +246,27 @@ class Model:
                 for b in cand]
 
     def save(self, model_dir: str | Path) -> Path:
-        """Write ``model_dir/model.npz`` (weights, intercept) and ``model_dir/model.json`` (format,
-        version, spec, loss, info, SHA-256 of model.npz), each atomically (temporary file in the same
-        folder, fsync, os.replace). Creates the folder. Returns its path. Raises UserError when the
-        folder cannot be created or written."""
+        """Write a training model folder.
+
+        Writes ``model_dir/model.npz`` (weights, intercept) and ``model_dir/model.json`` (format, version,
+        spec, loss, info, SHA-256 of model.npz), each atomically (temporary file in the same folder, fsync,
+        os.replace). Creates the folder.
+
+        Parameters
+        ----------
+        model_dir : str or Path
+            The folder.
+
+        Returns
+        -------
+        Path
+            The folder's path.
+
+        Raises
+        ------
+        UserError
+            When the folder cannot be created or written.
+        """
         folder = Path(model_dir)
         try:
             folder.mkdir(parents=True, exist_ok=True)
@@ -201,8 +293,22 @@ def _no_calibration() -> UserError:
 
 
 def model_folder(path: str | Path) -> Path:
-    """The model folder that ``path`` names (the folder, or the ``model.json`` in it). Raises
-    UserError when it is missing, a file, or holds no ``model.json``."""
+    """The model folder that a path names.
+
+    Parameters
+    ----------
+    path : str or Path
+        The folder, or the ``model.json`` in it.
+
+    Returns
+    -------
+    Path
+
+    Raises
+    ------
+    UserError
+        When it is missing, a file, or holds no ``model.json``.
+    """
     p = Path(path)
     if p.is_file() and p.name == META_FILE:
         p = p.parent
@@ -266,12 +372,25 @@ def _load_training(folder: Path, meta: dict) -> Model:
 
 
 def load_model(path: str | Path) -> Model:
-    """Load a model from a training model folder (model.npz + model.json) or an export folder
-    (weights.parquet + model.json); ``path`` may also name the ``model.json`` inside either.
+    """Load a model from a training model folder or an export folder.
 
-    The SHA-256 recorded in model.json is checked against the weights file. Returns a :class:`Model`.
-    Raises UserError naming the file when the folder is missing, incomplete, corrupt, tampered with
-    (checksum mismatch) or of an unsupported format version.
+    A training folder holds model.npz + model.json, an export weights.parquet + model.json. The SHA-256
+    recorded in model.json is checked against the weights file.
+
+    Parameters
+    ----------
+    path : str or Path
+        Either folder, or the ``model.json`` inside it.
+
+    Returns
+    -------
+    Model
+
+    Raises
+    ------
+    UserError
+        Naming the file when the folder is missing, incomplete, corrupt, tampered with (checksum
+        mismatch) or of an unsupported format version.
     """
     folder = model_folder(path)
     meta = _read_meta(folder)
@@ -285,10 +404,29 @@ def load_model(path: str | Path) -> Model:
 
 
 def shared_bucket_share(distinct_tokens: int, n_buckets: int) -> float:
-    """Expected share of the occupied buckets that hold two or more of ``distinct_tokens`` tokens
-    hashed uniformly into ``n_buckets`` buckets (balls in bins, common practice): one minus the
-    expected number of buckets with exactly one token, D (1 - 1/m)^(D-1), over the expected number of
-    occupied buckets, m (1 - (1 - 1/m)^D). Returns 0.0 for D <= 1; raises ValueError for m < 1."""
+    """Expected share of the occupied buckets that hold two or more tokens.
+
+    D tokens hashed uniformly into m buckets (balls in bins, common practice): one minus the expected
+    number of buckets with exactly one token, D (1 - 1/m)^(D-1), over the expected number of occupied
+    buckets, m (1 - (1 - 1/m)^D).
+
+    Parameters
+    ----------
+    distinct_tokens : int
+        D.
+    n_buckets : int
+        m.
+
+    Returns
+    -------
+    float
+        0.0 for D <= 1.
+
+    Raises
+    ------
+    ValueError
+        For m < 1.
+    """
     if n_buckets < 1:
         raise ValueError("n_buckets must be >= 1")
     if distinct_tokens <= 1:
@@ -300,17 +438,31 @@ def shared_bucket_share(distinct_tokens: int, n_buckets: int) -> float:
 
 
 def inspect_model(path: str | Path, top: int = 10) -> dict:
-    """Describe the model at ``path`` (training model folder or export folder).
+    """Describe a model.
 
-    Returns a JSON-ready dict: ``path``, ``form`` ("training" or "export"), ``loss``,
-    ``has_probability``, ``intercept``, ``bits``, ``buckets`` (2^bits), ``bytes`` (size on disk of
-    the folder's model files), ``nonzero`` and ``nonzero_share``, ``distinct_tokens`` (from
-    ``info["summary"]`` when training recorded it, else None), ``collision`` (None without
-    ``distinct_tokens``, else ``tokens``, ``buckets`` and ``shared_bucket_share``, the expected share of
-    the occupied buckets that hold two or more tokens, :func:`shared_bucket_share`), ``top_positive`` and
-    ``top_negative`` (``top`` strongest weights with example token strings, :meth:`Model.top_weights`),
-    ``calibration``, ``negative_keep_rate``, ``options``, ``summary`` and ``holdout``.
-    Raises UserError like :func:`load_model`.
+    Parameters
+    ----------
+    path : str or Path
+        A training model folder or an export folder.
+    top : int, default 10
+        Strongest weights listed of each sign.
+
+    Returns
+    -------
+    dict
+        JSON-ready: ``path``, ``form`` ("training" or "export"), ``loss``, ``has_probability``,
+        ``intercept``, ``bits``, ``buckets`` (2^bits), ``bytes`` (size on disk of the folder's model
+        files), ``nonzero`` and ``nonzero_share``, ``distinct_tokens`` (from ``info["summary"]`` when
+        training recorded it, else None), ``collision`` (None without ``distinct_tokens``, else
+        ``tokens``, ``buckets`` and ``shared_bucket_share``, the expected share of the occupied buckets
+        that hold two or more tokens, :func:`shared_bucket_share`), ``top_positive`` and ``top_negative``
+        (``top`` strongest weights with example token strings, :meth:`Model.top_weights`),
+        ``calibration``, ``negative_keep_rate``, ``options``, ``summary`` and ``holdout``.
+
+    Raises
+    ------
+    UserError
+        Like :func:`load_model`.
     """
     folder = model_folder(path)
     model = load_model(folder)
