@@ -21,7 +21,19 @@ MAX_BITS = 30
 
 @dataclass(frozen=True)
 class Feature:
-    """One input column: ``kind`` categorical, multi or numeric; numerics take ``transform`` or ``edges``."""
+    """One input column of the spec.
+
+    Attributes
+    ----------
+    column : str
+        The column (or hive partition key).
+    kind : {"categorical", "multi", "numeric"}
+        How its values become tokens (see the hashing contract).
+    transform : {"identity", "log1p"}
+        A numeric feature's value transform.
+    edges : tuple of float or None
+        A numeric feature's bin edges (then each bin is a token of value 1.0).
+    """
 
     column: str
     kind: str
@@ -36,7 +48,30 @@ class Feature:
 
 @dataclass(frozen=True)
 class Spec:
-    """A validated feature spec. ``raw`` is the normalized JSON object it came from."""
+    """A validated feature spec.
+
+    Attributes
+    ----------
+    label_column : str
+        The 0/1 label.
+    positive, negative : tuple of str or None
+        The string label values read as 1 and as 0; with ``negative`` given, other strings are bad
+        labels, without it they read as 0.
+    weight_column : str or None
+        Row weights.
+    time_column : str or None
+        The day column (or partition key) that date filters use.
+    bits : int
+        Hash bits: 2^bits buckets.
+    seed : int
+        The hash seed.
+    features : tuple of Feature
+        In spec order.
+    crosses : tuple of tuple of str
+        The crossed columns.
+    raw : dict
+        The normalized JSON object it came from.
+    """
 
     label_column: str
     positive: tuple[str, ...] | None
@@ -55,22 +90,58 @@ class Spec:
         return 1 << self.bits
 
     def fingerprint(self) -> str:
-        """SHA-256 of the canonical JSON of the spec: equal specs, equal fingerprints."""
+        """SHA-256 of the spec's JSON with sorted keys and no whitespace: equal specs, equal fingerprints.
+
+        Returns
+        -------
+        str
+            The hex digest.
+        """
         text = json.dumps(self.raw, sort_keys=True, separators=(",", ":"))
         return hashlib.sha256(text.encode("utf-8")).hexdigest()
 
     def data_columns(self) -> list[str]:
-        """Every column the reader needs, without repeats, in spec order."""
+        """Every column the reader needs, without repeats, in spec order.
+
+        Returns
+        -------
+        list of str
+        """
         cols = [self.label_column, self.weight_column, self.time_column]
         cols += [f.column for f in self.features]
         return list(dict.fromkeys(c for c in cols if c))
 
     def feature(self, column: str) -> Feature:
-        """The feature defined on ``column``."""
+        """The feature defined on a column.
+
+        Parameters
+        ----------
+        column : str
+            The column.
+
+        Returns
+        -------
+        Feature
+
+        Raises
+        ------
+        StopIteration
+            When no feature is defined on ``column``.
+        """
         return next(f for f in self.features if f.column == column)
 
     def contract(self) -> dict:
-        """The hashing contract as data, for ``model.json``: algorithm, seed, bits and the token rules."""
+        """The hashing contract as data, for ``model.json``: algorithm, seed, bits and the token rules.
+
+        Returns
+        -------
+        dict
+            JSON-ready.
+
+        References
+        ----------
+        "MurmurHash3", SMHasher project, 2011.
+        """
         return {
             "algorithm": "murmur3_x86_32",
             "seed": self.seed,
@@ -108,7 +179,22 @@ def _feature_json(f: Feature) -> dict:
 
 
 def load_spec(path: str | Path) -> Spec:
-    """Read and validate a spec file. Raises UserError naming the file and the offending key."""
+    """Read and validate a spec file.
+
+    Parameters
+    ----------
+    path : str or Path
+        The JSON spec file.
+
+    Returns
+    -------
+    Spec
+
+    Raises
+    ------
+    UserError
+        Naming the file and the offending key, also for a missing or unreadable file or invalid JSON.
+    """
     path = Path(path)
     try:
         text = path.read_text(encoding="utf-8")
@@ -124,7 +210,24 @@ def load_spec(path: str | Path) -> Spec:
 
 
 def parse_spec(obj: object, source: str = "spec") -> Spec:
-    """Validate a spec given as a JSON-like object; return the Spec. Raises UserError naming the key."""
+    """Validate a spec given as a JSON-like object.
+
+    Parameters
+    ----------
+    obj : object
+        The parsed JSON.
+    source : str, default "spec"
+        Where it came from, named in errors.
+
+    Returns
+    -------
+    Spec
+
+    Raises
+    ------
+    UserError
+        Naming the key.
+    """
 
     def fail(key: str, expected: str, got: object = None) -> UserError:
         shown = "" if got is None else f", got {json.dumps(got)[:80]}"
