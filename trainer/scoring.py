@@ -37,8 +37,23 @@ def _plain(arr: pa.ChunkedArray) -> pa.ChunkedArray:
 
 
 def check_paths(data: Path, out: Path, folder: bool = False) -> None:
-    """Refuse an output path that is the input, lies inside the input folder, or whose folder does
-    not exist; unless ``folder`` (a dataset folder is written), refuse an existing folder."""
+    """Refuse an output path that would overwrite or sit inside the input.
+
+    Parameters
+    ----------
+    data : Path
+        The input log.
+    out : Path
+        The output path.
+    folder : bool
+        A dataset folder is written (otherwise an existing folder at ``out`` is refused).
+
+    Raises
+    ------
+    UserError
+        When ``out`` is the input, lies inside the input folder, or its folder does not exist; unless
+        ``folder``, when it is an existing folder.
+    """
     if out.exists() and out.is_dir() and not folder:
         raise UserError(f"--out {out}: is a folder; give the path of the Parquet file to write")
     d, o = data.resolve(), out.resolve()
@@ -52,22 +67,42 @@ def check_paths(data: Path, out: Path, folder: bool = False) -> None:
 
 def score_to_parquet(model_path: str | Path | Model, data: str | Path, out: str | Path, keep: tuple[str, ...] = (),
                      missing_as_null: bool = False, start=None, end=None, batch_rows: int = 65536) -> dict:
-    """Score the Parquet log ``data`` (file, folder or hive-partitioned folder) into the file ``out``.
-
-    ``model_path``: a training model folder, an export folder, or a :class:`Model`. ``keep``: input
-    columns (or hive partition keys) copied to the output beside the scores, in the given order.
-    ``missing_as_null``: feature columns absent from a file count as all null instead of an error.
-    ``start``/``end``: inclusive date filter (``date`` or ``YYYY-MM-DD``) on the spec's time column.
-    ``batch_rows``: rows per batch, 1..16777216 (bounds memory).
+    """Score a Parquet log into one Parquet file.
 
     The output holds the kept columns, then ``score`` (float64: the probability 1/(1+exp(-z)) for a
     logistic model, the margin z for a squared-hinge model) and, for a squared-hinge model with Platt
     calibration, ``probability`` = 1/(1+exp(-(a z + b))) (sources in :class:`Model`). Rows keep their
-    file order. The file appears only when complete (temporary file beside it, fsync, os.replace);
-    on any error the temporary file is removed and an existing ``out`` is left untouched.
-    Returns ``{"rows": int, "out": str}``. Raises UserError for a bad model, a missing feature or
-    kept column (naming it), a bad option (naming it), an output path that is the input or inside
-    the input folder, or unreadable data.
+    file order. The file appears only when complete (temporary file beside it, fsync, os.replace); on
+    any error the temporary file is removed and an existing ``out`` is left untouched.
+
+    Parameters
+    ----------
+    model_path : str, Path or Model
+        A training model folder, an export folder, or a :class:`Model`.
+    data : str or Path
+        The log: file, folder or hive-partitioned folder.
+    out : str or Path
+        The Parquet file written.
+    keep : tuple of str
+        Input columns (or hive partition keys) copied to the output beside the scores, in the given
+        order.
+    missing_as_null : bool
+        Feature columns absent from a file count as all null instead of an error.
+    start, end : datetime.date or str, optional
+        Inclusive date filter (``YYYY-MM-DD``) on the spec's time column.
+    batch_rows : int, default 65536
+        Rows per batch, 1..16777216 (bounds memory).
+
+    Returns
+    -------
+    dict
+        ``{"rows": int, "out": str}``.
+
+    Raises
+    ------
+    UserError
+        For a bad model, a missing feature or kept column (naming it), a bad option (naming it), an
+        output path that is the input or inside the input folder, or unreadable data.
     """
     model = model_path if isinstance(model_path, Model) else load_model(model_path)
     if isinstance(batch_rows, bool) or not isinstance(batch_rows, int) or not 1 <= batch_rows <= 1 << 24:
@@ -86,8 +121,23 @@ def score_to_parquet(model_path: str | Path | Model, data: str | Path, out: str 
 
 
 def check_keep(keep) -> tuple[str, ...]:
-    """``keep`` as a tuple of distinct column names that do not clash with the output columns;
-    raises UserError naming the bad name."""
+    """Check the names of the kept columns.
+
+    Parameters
+    ----------
+    keep : iterable of str
+        The names.
+
+    Returns
+    -------
+    tuple of str
+        ``keep`` as a tuple.
+
+    Raises
+    ------
+    UserError
+        Naming the bad name: empty or not a string, clashing with an output column, or given twice.
+    """
     keep = tuple(keep)
     reserved = {SCORE, PROBABILITY}
     for c in keep:
@@ -101,10 +151,32 @@ def check_keep(keep) -> tuple[str, ...]:
 
 
 def write_scores(model: Model, reader: Reader, keep: tuple[str, ...], path: Path, data: Path) -> int:
-    """Score every batch of ``reader`` into the Parquet file ``path`` (kept columns, ``score``,
-    and ``probability`` for a calibrated squared-hinge model; see :func:`score_to_parquet`) and
-    return the rows written. A reader that yields no rows leaves ``path`` untouched. ``data``
-    names the input in error messages."""
+    """Score every batch of a reader into a Parquet file.
+
+    Parameters
+    ----------
+    model : Model
+        The model.
+    reader : Reader
+        The rows, read without labels, keeping ``keep``.
+    keep : tuple of str
+        Kept columns, written before ``score`` (and ``probability`` for a calibrated squared-hinge
+        model; see :func:`score_to_parquet`).
+    path : Path
+        The file written; a reader that yields no rows leaves it untouched.
+    data : Path
+        The input, named in error messages.
+
+    Returns
+    -------
+    int
+        The rows written.
+
+    Raises
+    ------
+    UserError
+        When a kept column changes type between files, or for bad data met by the reader.
+    """
     with_probability = model.loss == "squared-hinge" and model.has_probability
     rows = 0
     writer = None
