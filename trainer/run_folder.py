@@ -39,7 +39,13 @@ RUN_FILES = (RUN_FILE, CHECKPOINT_FILE, METRICS_FILE, PROGRESS_FILE, META_FILE, 
 
 
 class RunFolder:
-    """The model folder at ``path``: where each of its files lives and how it is read and written."""
+    """The model folder at a path: where each of its files lives and how it is read and written.
+
+    Parameters
+    ----------
+    path : str or Path
+        The model folder (it need not exist yet).
+    """
 
     def __init__(self, path: str | Path):
         self.path = Path(path)
@@ -57,10 +63,17 @@ class RunFolder:
         return self.path / REPORT_FILE
 
     def claim(self) -> None:
-        """Make the folder (remembering which folders this made, for :meth:`remove_new`) and take its
-        exclusive lock; then remove the temporaries of writes that a kill interrupted (no live run
-        holds the folder). Raises UserError for a path that is a file, a folder that cannot be made,
-        or a folder another process is working in."""
+        """Make the folder and take its exclusive lock.
+
+        Remembers which folders this made (for :meth:`remove_new`), then removes the temporaries of writes
+        that a kill interrupted (no live run holds the folder).
+
+        Raises
+        ------
+        UserError
+            For a path that is a file, a folder that cannot be made, or a folder another process is working
+            in.
+        """
         if self.path.exists() and not self.path.is_dir():
             raise UserError(f"{self.path}: exists and is not a folder")
         missing = [p for p in (self.path, *self.path.parents) if not p.exists()]
@@ -88,11 +101,22 @@ class RunFolder:
             self._lock_fd = None
 
     def is_empty(self) -> bool:
-        """True when the folder holds no file at all."""
+        """Whether the folder holds no file at all.
+
+        Returns
+        -------
+        bool
+        """
         return not any(self.path.iterdir())
 
     def read_run(self) -> dict | None:
-        """The folder's ``run.json``, or None when absent or unreadable."""
+        """Read the folder's ``run.json``.
+
+        Returns
+        -------
+        dict or None
+            None when absent or unreadable.
+        """
         try:
             run = json.loads((self.path / RUN_FILE).read_text(encoding="utf-8"))
         except (OSError, UnicodeDecodeError, json.JSONDecodeError):
@@ -100,11 +124,22 @@ class RunFolder:
         return run if isinstance(run, dict) else None
 
     def has_run_file(self) -> bool:
-        """True when ``run.json`` exists (readable or not)."""
+        """Whether ``run.json`` exists (readable or not).
+
+        Returns
+        -------
+        bool
+        """
         return (self.path / RUN_FILE).exists()
 
     def write_run(self, run: dict) -> None:
-        """Write ``run`` as the folder's ``run.json`` (atomically)."""
+        """Write the folder's ``run.json`` (atomically).
+
+        Parameters
+        ----------
+        run : dict
+            The run's document: spec, data, holdout, options, phases.
+        """
         write_atomic(self.path / RUN_FILE, [json.dumps(run, indent=2).encode()])
 
     def clear(self) -> None:
@@ -122,31 +157,70 @@ class RunFolder:
                 break
 
     def read_checkpoint(self) -> tuple[dict[str, np.ndarray], dict]:
-        """The checkpoint's arrays and meta (``trainer.checkpoint.load_checkpoint``)."""
+        """Read the checkpoint (:func:`trainer.checkpoint.load_checkpoint`).
+
+        Returns
+        -------
+        tuple of (dict of str to numpy.ndarray, dict)
+            Its arrays and meta.
+
+        Raises
+        ------
+        UserError
+            For a missing, truncated, corrupt or foreign checkpoint (left untouched).
+        """
         return load_checkpoint(self.checkpoint)
 
     def write_checkpoint(self, arrays: dict[str, np.ndarray], meta: dict, progress: list) -> None:
-        """Write the checkpoint (atomically) and the progressive-validation curve ``progress``."""
+        """Write the checkpoint and the progressive-validation curve (each atomically).
+
+        Parameters
+        ----------
+        arrays : dict of str to numpy.ndarray
+            The checkpoint's arrays.
+        meta : dict
+            Its JSON-able meta.
+        progress : list
+            The progressive-validation curve, written to ``progress.json``.
+        """
         save_checkpoint(self.checkpoint, arrays, meta)
         write_atomic(self.path / PROGRESS_FILE, [json.dumps(progress).encode()])
 
     def append_metrics(self, record: dict) -> None:
-        """Append one finished pass's ``record`` to ``metrics.jsonl`` (non-finite values as null); the
-        file is rewritten atomically, so a kill never leaves half a line."""
+        """Append one finished pass's record to ``metrics.jsonl``.
+
+        The file is rewritten atomically, so a kill never leaves half a line.
+
+        Parameters
+        ----------
+        record : dict
+            The pass's record; non-finite values are written as null.
+        """
         path = self.path / METRICS_FILE
         before = path.read_bytes() if path.exists() else b""
         write_atomic(path, [before, (json.dumps(jsonable(record), allow_nan=False) + "\n").encode()])
 
     def metrics(self) -> list[dict]:
-        """The records of ``metrics.jsonl``, one per finished pass (empty without the file)."""
+        """Read ``metrics.jsonl``.
+
+        Returns
+        -------
+        list of dict
+            One record per finished pass (empty without the file).
+        """
         path = self.path / METRICS_FILE
         if not path.exists():
             return []
         return [json.loads(line) for line in path.read_text().splitlines() if line.strip()]
 
     def keep_metrics(self, last_pass: int) -> None:
-        """Drop the records of passes after ``last_pass`` (after a resume, the passes the checkpoint
-        does not count as finished)."""
+        """Drop the records of later passes from ``metrics.jsonl`` (atomically).
+
+        Parameters
+        ----------
+        last_pass : int
+            The last pass kept (after a resume, the passes the checkpoint counts as finished).
+        """
         path = self.path / METRICS_FILE
         if not path.exists():
             return
@@ -154,14 +228,41 @@ class RunFolder:
         write_atomic(path, [("\n".join(lines) + "\n" if lines else "").encode()])
 
     def progress(self) -> list:
-        """The progressive-validation curve of ``progress.json`` (empty without the file)."""
+        """Read the progressive-validation curve of ``progress.json``.
+
+        Returns
+        -------
+        list
+            Empty without the file.
+        """
         path = self.path / PROGRESS_FILE
         return json.loads(path.read_text()) if path.exists() else []
 
     def save_model(self, model: Model) -> None:
-        """Write ``model.json`` + ``model.npz`` (:meth:`trainer.model.Model.save`)."""
+        """Write ``model.json`` + ``model.npz`` (:meth:`trainer.model.Model.save`).
+
+        Parameters
+        ----------
+        model : Model
+            The model.
+
+        Raises
+        ------
+        UserError
+            When the folder cannot be written.
+        """
         model.save(self.path)
 
     def load_model(self) -> Model:
-        """The folder's model (:func:`trainer.model.load_model`)."""
+        """The folder's model (:func:`trainer.model.load_model`).
+
+        Returns
+        -------
+        Model
+
+        Raises
+        ------
+        UserError
+            For a missing, incomplete, corrupt or tampered-with model.
+        """
         return load_model(self.path)
