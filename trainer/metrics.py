@@ -120,11 +120,25 @@ def _confusion(sums):
 def wilson_interval(successes, n, z=WILSON_Z):
     """Wilson score interval for a binomial proportion (vectorised).
 
-    Takes ``successes`` (weighted count of positives) and ``n`` (sample size; for weighted rows the
-    effective size (sum w)^2 / sum w^2 from "Survey Sampling", Wiley, 1965) as arrays or scalars,
-    and ``z`` (normal quantile; default gives 95%). Returns (low, high) arrays; NaN where n <= 0.
-    Raises nothing. Source: "Probable Inference, the Law of Succession, and Statistical
-    Inference", Journal of the American Statistical Association, 1927.
+    Parameters
+    ----------
+    successes : array_like or float
+        Weighted count of positives.
+    n : array_like or float
+        Sample size; for weighted rows the effective size (sum w)^2 / sum w^2 of the Wiley 1965 book
+        below.
+    z : float, default WILSON_Z
+        Normal quantile; the default gives 95%.
+
+    Returns
+    -------
+    tuple of numpy.ndarray
+        ``(low, high)``; NaN where n <= 0.
+
+    References
+    ----------
+    "Probable Inference, the Law of Succession, and Statistical Inference", Journal of the American
+    Statistical Association, 1927. "Survey Sampling", Wiley, 1965.
     """
     s = np.asarray(successes, dtype=np.float64)
     nn = np.asarray(n, dtype=np.float64)
@@ -146,12 +160,20 @@ def _sigmoid_edges(n_bins):
 
 
 def reliability_bin_count(effective_rows: float) -> int:
-    """The automatic number of reliability bins for a holdout of ``effective_rows``.
+    """The automatic number of reliability bins for a holdout.
 
-    One bin per :data:`RELIABILITY_ROWS_PER_BIN` effective rows ((sum w)^2 / sum w^2, the row count
-    when rows are unweighted), clamped to [:data:`RELIABILITY_MIN_BINS`,
-    :data:`RELIABILITY_MAX_BINS`]: with 1,000 rows a bin predicting 1% expects 10 positives, and 20
-    bins keep the table readable. Returns an int. Raises nothing.
+    One bin per :data:`RELIABILITY_ROWS_PER_BIN` effective rows, clamped to
+    [:data:`RELIABILITY_MIN_BINS`, :data:`RELIABILITY_MAX_BINS`]: with 1,000 rows a bin predicting 1%
+    expects 10 positives, and 20 bins keep the table readable.
+
+    Parameters
+    ----------
+    effective_rows : float
+        (sum w)^2 / sum w^2, the row count when rows are unweighted.
+
+    Returns
+    -------
+    int
     """
     n = int(effective_rows // RELIABILITY_ROWS_PER_BIN) if math.isfinite(effective_rows) else 0
     return min(max(n, RELIABILITY_MIN_BINS), RELIABILITY_MAX_BINS)
@@ -219,36 +241,49 @@ def _merge_ranked(out, a, b):
 class BinaryMetrics:
     """Streaming, mergeable quality metrics of predicted probabilities against 0/1 labels.
 
-    ``BinaryMetrics(n_bins=None, histogram_bins=40, auc_bits=12)``: ``n_bins`` the number of
-    reliability bins of equal weight (1..10000, or None: 10 to 20 chosen by the holdout's size, see
-    :func:`reliability_bin_count`); ``histogram_bins`` score-histogram bins (3..10000) whose
-    inner edges are uniform in log-odds between 1e-4 and 1 - 1e-4, with two end bins reaching 0 and
-    1 (half-open [lo, hi) as in ``numpy.histogram``, the last bin closed); ``auc_bits`` leading
-    mantissa bits of the rank histogram (4..14). Raises UserError for values out of range.
+    State is fixed in size: 2 * (63 * 2**auc_bits + 1) + 1 rank bins with seven float64 each (28.9 MB
+    at the default 12 bits; pages no score reaches stay untouched zeros) plus the small tables. Memory
+    does not grow with rows.
 
-    State is fixed in size: 2 * (63 * 2**auc_bits + 1) + 1 rank bins with seven float64 each
-    (28.9 MB at the default 12 bits; pages no score reaches stay untouched zeros) plus the small
-    tables. Memory does not grow with rows.
-
-    AUC guarantee: two scores in different rank bins are ordered exactly; each rank bin is counted
-    as a block of tied scores (1/2 per positive-negative pair, the tie rule of scikit-learn's
+    AUC guarantee: two scores in different rank bins are ordered exactly; each rank bin is counted as a
+    block of tied scores (1/2 per positive-negative pair, the tie rule of scikit-learn's
     ``roc_auc_score``). A bin spans scores within a relative 2**-auc_bits of each other in p for
-    p < 1/2 and in 1 - p for p > 1/2 (2.4e-4 at the default), plus one bin for p < 2**-64 and one
-    for 1 - p < 2**-64. Bins whose smallest and largest score are equal are exact, so ties of any
-    size are exact; the summary's ``auc_error_bound`` = sum over bins holding more than one
-    distinct score of (positive weight * negative weight / 2), divided by (total positive weight *
-    total negative weight), bounds |reported AUC - exact AUC| (up to float rounding). The same
-    block rule decides the error rate at the base rate. Merging adds the histograms, so it is exact.
+    p < 1/2 and in 1 - p for p > 1/2 (2.4e-4 at the default), plus one bin for p < 2**-64 and one for
+    1 - p < 2**-64. Bins whose smallest and largest score are equal are exact, so ties of any size are
+    exact; the summary's ``auc_error_bound`` = sum over bins holding more than one distinct score of
+    (positive weight * negative weight / 2), divided by (total positive weight * total negative
+    weight), bounds |reported AUC - exact AUC| (up to float rounding). The same block rule decides the
+    error rate at the base rate. Merging adds the histograms, so it is exact.
 
-    Reliability bins come from the same rank histogram, which also keeps per rank bin the rows, the
-    sum of w^2 and the sum of w * p, so no second pass over the data is needed: bin j ends after
-    the rank bin that holds the weighted j/n quantile of the predictions (the inverted-CDF rule of
-    ``numpy.quantile(..., method="inverted_cdf")``). A rank bin is never split, so each bin's
-    weight differs from 1/n of the total by at most the weight of the two rank bins at its ends,
-    and the quantile lies between the bin's largest prediction ``hi`` and ``hi`` less a relative
-    2**-auc_bits (in p below 1/2, in 1 - p above); every sum of a bin is exact.
-    The AUC is the probability that a random positive outranks a random negative, from "The meaning
-    and use of the area under a receiver operating characteristic (ROC) curve", Radiology, 1982.
+    Reliability bins come from the same rank histogram, which also keeps per rank bin the rows, the sum
+    of w^2 and the sum of w * p, so no second pass over the data is needed: bin j ends after the rank
+    bin that holds the weighted j/n quantile of the predictions (the inverted-CDF rule of
+    ``numpy.quantile(..., method="inverted_cdf")``). A rank bin is never split, so each bin's weight
+    differs from 1/n of the total by at most the weight of the two rank bins at its ends, and the
+    quantile lies between the bin's largest prediction ``hi`` and ``hi`` less a relative 2**-auc_bits
+    (in p below 1/2, in 1 - p above); every sum of a bin is exact.
+
+    Parameters
+    ----------
+    n_bins : int or None
+        The number of reliability bins of equal weight (1..10000, or None: 10 to 20 chosen by the
+        holdout's size, see :func:`reliability_bin_count`).
+    histogram_bins : int, default 40
+        Score-histogram bins (3..10000) whose inner edges are uniform in log-odds between 1e-4 and
+        1 - 1e-4, with two end bins reaching 0 and 1 (half-open [lo, hi) as in ``numpy.histogram``, the
+        last bin closed).
+    auc_bits : int, default 12
+        Leading mantissa bits of the rank histogram (4..14).
+
+    Raises
+    ------
+    UserError
+        For values out of range.
+
+    References
+    ----------
+    The AUC is the probability that a random positive outranks a random negative: "The meaning and use
+    of the area under a receiver operating characteristic (ROC) curve", Radiology, 1982.
     """
 
     def __init__(self, n_bins: int | None = None, histogram_bins: int = 40, auc_bits: int = 12):
@@ -268,13 +303,26 @@ class BinaryMetrics:
     def update(self, labels, probs, weights=None, margins=None) -> None:
         """Add a chunk of rows.
 
-        Takes ``labels`` (0/1, bool or numbers), ``probs`` (predicted probabilities in [0, 1]),
-        optional ``weights`` (row weights, finite and >= 0; default 1) and optional ``margins``
-        (the model's log-odds z with p = 1/(1+exp(-z))). With margins, log-loss is computed from
-        them as log(1 + exp(-z)) / log(1 + exp(z)) (no clipping needed); without, from the
-        probabilities clipped to [EPS, 1 - EPS] (see :data:`trainer._metrics_kernels.EPS`). All other
-        metrics use ``probs``. Returns None. Raises UserError for labels other than 0/1, probabilities outside
-        [0, 1] or NaN, bad weights, non-finite margins, or arrays of unequal length.
+        With margins, log-loss is computed from them as log(1 + exp(-z)) / log(1 + exp(z)) (no clipping
+        needed); without, from the probabilities clipped to [EPS, 1 - EPS] (see
+        :data:`trainer._metrics_kernels.EPS`). All other metrics use ``probs``.
+
+        Parameters
+        ----------
+        labels : array_like
+            0/1, bool or numbers.
+        probs : array_like
+            Predicted probabilities in [0, 1].
+        weights : array_like, optional
+            Row weights, finite and >= 0; default 1.
+        margins : array_like, optional
+            The model's log-odds z with p = 1/(1+exp(-z)).
+
+        Raises
+        ------
+        UserError
+            For labels other than 0/1, probabilities outside [0, 1] or NaN, bad weights, non-finite
+            margins, or arrays of unequal length.
         """
         y = _check_labels(labels)
         p = _float_array(probs, "probs", y.size)
@@ -295,9 +343,20 @@ class BinaryMetrics:
     def merge(self, other: BinaryMetrics) -> BinaryMetrics:
         """Combine two accumulators into a new one, as if all rows had gone through one.
 
-        Takes another BinaryMetrics built with the same ``n_bins``, ``histogram_bins`` and
-        ``auc_bits``. Returns a new BinaryMetrics; both inputs are left unchanged. Raises
-        ValueError when the settings differ (a programming error, not a user mistake).
+        Parameters
+        ----------
+        other : BinaryMetrics
+            Built with the same ``n_bins``, ``histogram_bins`` and ``auc_bits``.
+
+        Returns
+        -------
+        BinaryMetrics
+            A new accumulator; both inputs are left unchanged.
+
+        Raises
+        ------
+        ValueError
+            When the settings differ (a programming error, not a user mistake).
         """
         if not isinstance(other, BinaryMetrics) or (
                 (self.n_bins, self.histogram_bins, self.auc_bits)
@@ -311,25 +370,32 @@ class BinaryMetrics:
     def summary(self) -> dict:
         """All metrics as a plain dict with stable keys (floats, ints, lists; NaN when undefined).
 
-        Keys: ``rows``, ``positives`` (row counts); ``weight_sum``, ``positive_weight``,
-        ``base_rate`` (weighted); ``log_loss`` (weighted mean cross-entropy); ``normalized_entropy``
-        (log-loss divided by the entropy of the base rate; NaN with one class); ``auc`` (NaN with
-        one class) and ``auc_error_bound`` (see the class docstring); ``brier`` (weighted mean
-        squared error of the probability, "Verification of forecasts expressed in terms of
-        probability", Monthly Weather Review, 1950); ``calibration_ratio`` (sum of w*p over sum of
-        w*y; NaN without positives); ``ece`` (expected calibration error over the equal-weight
-        reliability bins of ``bins``, sum of |sum w*p - sum w*y| per bin over the total weight,
-        "Obtaining Well Calibrated Probabilities Using Bayesian Binning", AAAI, 2015);
-        ``error_rate`` (weighted share misclassified when p > 0.5 means positive);
-        ``error_rate_at_base_rate`` (the same when the top-scored share of weight equal to the base
-        rate is called positive, i.e. at the precision-recall break-even point); ``confusion``
-        ({tp, fp, tn, fn} weighted, at p > 0.5);
-        ``bins`` (reliability table of bins of equal weight, ascending, see the class docstring:
-        per bin {lo, hi, count, weight, mean_prediction, observed_rate, wilson_low, wilson_high},
-        lo and hi the smallest and largest prediction in the bin, a 95% Wilson interval on the
-        observed rate with the effective sample size (sum w)^2 / sum w^2; empty without rows);
-        ``histogram`` ({edges, positives, negatives}: weight per score bin by class). All values
-        are NaN for an empty accumulator. Raises nothing.
+        All values are NaN for an empty accumulator.
+
+        Returns
+        -------
+        dict
+            ``rows``, ``positives`` (row counts); ``weight_sum``, ``positive_weight``, ``base_rate``
+            (weighted); ``log_loss`` (weighted mean cross-entropy); ``normalized_entropy`` (log-loss divided
+            by the entropy of the base rate; NaN with one class); ``auc`` (NaN with one class) and
+            ``auc_error_bound`` (see the class docstring); ``brier`` (weighted mean squared error of the
+            probability, Monthly Weather Review 1950); ``calibration_ratio`` (sum of w*p over sum of w*y;
+            NaN without positives); ``ece`` (expected calibration error over the equal-weight reliability
+            bins of ``bins``, sum of |sum w*p - sum w*y| per bin over the total weight, AAAI 2015);
+            ``error_rate`` (weighted share misclassified when p > 0.5 means positive);
+            ``error_rate_at_base_rate`` (the same when the top-scored share of weight equal to the base rate
+            is called positive, i.e. at the precision-recall break-even point); ``confusion``
+            ({tp, fp, tn, fn} weighted, at p > 0.5); ``bins`` (reliability table of bins of equal weight,
+            ascending, see the class docstring: per bin {lo, hi, count, weight, mean_prediction,
+            observed_rate, wilson_low, wilson_high}, lo and hi the smallest and largest prediction in the
+            bin, a 95% Wilson interval on the observed rate with the effective sample size
+            (sum w)^2 / sum w^2; empty without rows); ``histogram`` ({edges, positives, negatives}: weight
+            per score bin by class).
+
+        References
+        ----------
+        "Verification of forecasts expressed in terms of probability", Monthly Weather Review, 1950.
+        "Obtaining Well Calibrated Probabilities Using Bayesian Binning", AAAI, 2015.
         """
         s = self._sums
         w_sum = float(s[W])
@@ -372,11 +438,19 @@ class BinaryMetrics:
 class MarginMetrics:
     """Streaming, mergeable ranking metrics of raw margins (for squared-hinge models).
 
-    ``MarginMetrics(auc_bits=12)``: ``auc_bits`` leading mantissa bits of the rank histogram
-    (4..14; UserError otherwise). The rank histogram bins |m| over [2**-32, 2**32) with relative
-    width 2**-auc_bits, one bin for |m| < 2**-32 (both signs) and one per sign beyond 2**32; the
-    AUC guarantee and ``auc_error_bound`` are as in :class:`BinaryMetrics`. The error rate calls a
-    row positive when its margin is > 0.
+    The rank histogram bins |m| over [2**-32, 2**32) with relative width 2**-auc_bits, one bin for
+    |m| < 2**-32 (both signs) and one per sign beyond 2**32; the AUC guarantee and ``auc_error_bound``
+    are as in :class:`BinaryMetrics`. The error rate calls a row positive when its margin is > 0.
+
+    Parameters
+    ----------
+    auc_bits : int, default 12
+        Leading mantissa bits of the rank histogram (4..14).
+
+    Raises
+    ------
+    UserError
+        For ``auc_bits`` out of range.
     """
 
     def __init__(self, auc_bits: int = 12):
@@ -391,9 +465,19 @@ class MarginMetrics:
     def update(self, labels, margins, weights=None) -> None:
         """Add a chunk of rows.
 
-        Takes ``labels`` (0/1), ``margins`` (finite model outputs) and optional ``weights``
-        (finite, >= 0; default 1). Returns None. Raises UserError for labels other than 0/1,
-        non-finite margins, bad weights or arrays of unequal length.
+        Parameters
+        ----------
+        labels : array_like
+            0/1.
+        margins : array_like
+            Finite model outputs.
+        weights : array_like, optional
+            Finite, >= 0; default 1.
+
+        Raises
+        ------
+        UserError
+            For labels other than 0/1, non-finite margins, bad weights or arrays of unequal length.
         """
         y = _check_labels(labels)
         m = _float_array(margins, "margins", y.size)
@@ -408,8 +492,19 @@ class MarginMetrics:
     def merge(self, other: MarginMetrics) -> MarginMetrics:
         """Combine two accumulators into a new one (inputs unchanged).
 
-        Takes a MarginMetrics with the same ``auc_bits``; returns the combined MarginMetrics.
-        Raises ValueError when the settings differ.
+        Parameters
+        ----------
+        other : MarginMetrics
+            With the same ``auc_bits``.
+
+        Returns
+        -------
+        MarginMetrics
+
+        Raises
+        ------
+        ValueError
+            When the settings differ.
         """
         if not isinstance(other, MarginMetrics) or self.auc_bits != other.auc_bits:
             raise ValueError("MarginMetrics.merge: both accumulators need the same auc_bits")
@@ -418,10 +513,12 @@ class MarginMetrics:
     def summary(self) -> dict:
         """Metrics as a dict with stable keys.
 
-        Keys: ``rows``, ``positives``, ``weight_sum``, ``positive_weight``, ``base_rate``, ``auc``,
-        ``auc_error_bound``, ``error_rate`` (margin > 0 means positive), ``error_rate_at_base_rate``
-        and ``confusion`` ({tp, fp, tn, fn} weighted), defined as in
-        :meth:`BinaryMetrics.summary`. Raises nothing.
+        Returns
+        -------
+        dict
+            ``rows``, ``positives``, ``weight_sum``, ``positive_weight``, ``base_rate``, ``auc``,
+            ``auc_error_bound``, ``error_rate`` (margin > 0 means positive), ``error_rate_at_base_rate``
+            and ``confusion`` ({tp, fp, tn, fn} weighted), defined as in :meth:`BinaryMetrics.summary`.
         """
         s = self._sums
         w_sum = float(s[W])
@@ -444,19 +541,42 @@ def fit_platt(margins, labels, weights=None, *, prior_correction: bool = True,
               max_iter: int = 100) -> tuple[float, float]:
     """Fit Platt scaling p = 1 / (1 + exp(-(a*m + b))) on a calibration slice.
 
-    Takes ``margins`` (finite), ``labels`` (0/1) and optional ``weights`` (frequency weights,
-    finite and >= 0). Minimises the weighted cross-entropy against Platt's targets
-    (N+ + 1)/(N+ + 2) for positives and 1/(N- + 2) for negatives (N+/N- the weighted class totals)
-    when ``prior_correction`` is true, or against the 0/1 labels when false (plain logistic
-    regression on the one-dimensional margin). Method from "Probabilistic Outputs for Support
-    Vector Machines and Comparisons to Regularized Likelihood Methods", Advances in Large Margin
-    Classifiers, MIT Press, 1999; solved by Newton's method with backtracking line search and a
-    1e-12 ridge on the Hessian as in "A Note on Platt's Probabilistic Outputs for Support Vector
-    Machines", Machine Learning, 2007. Stops when the gradient is below 1e-11 of its scale, when no
-    step decreases the objective, or after ``max_iter`` Newton steps (1..1000).
-    Returns (a, b) as floats. Raises UserError for an empty slice, bad labels/weights/margins, or,
-    without prior correction, a slice with one class or one separated by the margin (no finite
-    maximum-likelihood fit exists then).
+    Minimises the weighted cross-entropy against Platt's targets (N+ + 1)/(N+ + 2) for positives and
+    1/(N- + 2) for negatives (N+/N- the weighted class totals) when ``prior_correction`` is true, or
+    against the 0/1 labels when false (plain logistic regression on the one-dimensional margin). Solved
+    by Newton's method with backtracking line search and a 1e-12 ridge on the Hessian as in the 2007
+    note below. Stops when the gradient is below 1e-11 of its scale, when no step decreases the
+    objective, or after ``max_iter`` Newton steps.
+
+    Parameters
+    ----------
+    margins : array_like
+        Finite margins.
+    labels : array_like
+        0/1 labels.
+    weights : array_like, optional
+        Frequency weights, finite and >= 0.
+    prior_correction : bool, default True
+        Fit against Platt's targets instead of the labels.
+    max_iter : int, default 100
+        Most Newton steps (1..1000).
+
+    Returns
+    -------
+    tuple of float
+        ``(a, b)``.
+
+    Raises
+    ------
+    UserError
+        For an empty slice, bad labels/weights/margins, or, without prior correction, a slice with one
+        class or one separated by the margin (no finite maximum-likelihood fit exists then).
+
+    References
+    ----------
+    "Probabilistic Outputs for Support Vector Machines and Comparisons to Regularized Likelihood
+    Methods", Advances in Large Margin Classifiers, MIT Press, 1999. "A Note on Platt's Probabilistic
+    Outputs for Support Vector Machines", Machine Learning, 2007.
     """
     y = _check_labels(labels)
     m = _float_array(margins, "margins", y.size)
@@ -515,7 +635,20 @@ def fit_platt(margins, labels, weights=None, *, prior_correction: bool = True,
 def apply_platt(margins, a: float, b: float) -> np.ndarray:
     """Probabilities 1 / (1 + exp(-(a*m + b))) for an array of margins (overflow-safe).
 
-    Takes ``margins`` (array-like) and the pair (a, b) returned by :func:`fit_platt`; returns a
-    float64 array. Raises nothing. Source: as :func:`fit_platt`.
+    Parameters
+    ----------
+    margins : array_like
+        The margins.
+    a, b : float
+        The pair returned by :func:`fit_platt`.
+
+    Returns
+    -------
+    numpy.ndarray
+        float64 probabilities.
+
+    References
+    ----------
+    As :func:`fit_platt`.
     """
     return expit(a * np.asarray(margins, dtype=np.float64) + b)
