@@ -34,7 +34,12 @@ CLUSTER_HELP = ("run on a Dask cluster: a scheduler address tcp://HOST:PORT, or 
 
 
 def build_parser() -> argparse.ArgumentParser:
-    """The full argument parser (also used to document the commands)."""
+    """The full argument parser (also used to document the commands).
+
+    Returns
+    -------
+    argparse.ArgumentParser
+    """
     d = api.TrainOptions()
     top = _Parser(prog="hashcurve", description="Train, check and export calibrated response-rate models "
                   "from hashed Parquet logs.")
@@ -129,7 +134,18 @@ def _fmt(v, spec=".5f") -> str:
 
 
 def format_summary(s: dict) -> str:
-    """A readable evaluation summary (our own layout)."""
+    """A readable evaluation summary (our own layout).
+
+    Parameters
+    ----------
+    s : dict
+        An evaluation summary (:func:`trainer.evaluation.evaluate`).
+
+    Returns
+    -------
+    str
+        The text: probability metrics, margin metrics and the segment table, those the summary holds.
+    """
     lines = [f"rows {s.get('rows', 0):,}   positives {s.get('positives', 0):,}"]
     if "log_loss" in s:
         lines += [f"  log-loss            {_fmt(s['log_loss'])}",
@@ -163,9 +179,26 @@ def _fmt_value(v) -> str:
 
 
 def format_inspect(d: dict) -> str:
-    """Render an :func:`trainer.model.inspect_model` dict as compact plain text (one fact per line,
-    weights as a small table with up to three example tokens each, as the reader recorded them).
-    Returns the text (ending in a newline); raises KeyError when ``d`` lacks a key of inspect_model."""
+    """Render an inspection as compact plain text.
+
+    One fact per line, weights as a small table with up to three example tokens each, as the reader
+    recorded them.
+
+    Parameters
+    ----------
+    d : dict
+        A :func:`trainer.model.inspect_model` dict.
+
+    Returns
+    -------
+    str
+        The text, ending in a newline.
+
+    Raises
+    ------
+    KeyError
+        When ``d`` lacks a key of inspect_model.
+    """
     lines = [f"model      {d['path']} ({d['form']} form, {d['bytes']:,} bytes on disk)",
              f"loss       {d['loss']}; probabilities: "
              + ("yes" if d["has_probability"] else "no (margins only)")
@@ -199,7 +232,18 @@ def format_inspect(d: dict) -> str:
 
 
 def format_train_result(r) -> str:
-    """A finished training run (:class:`trainer.training.TrainResult`) in a few lines (our own layout)."""
+    """A finished training run in a few lines (our own layout).
+
+    Parameters
+    ----------
+    r : trainer.training.TrainResult
+        The run's result.
+
+    Returns
+    -------
+    str
+        Passes, timings and stopping reason, the best holdout pass, the model folder.
+    """
     lines = [f"{r.passes} pass(es), {r.train_seconds:.1f} s training + {r.eval_seconds:.1f} s holdout evaluation; "
              f"{r.stopping_reason}"]
     if r.best_pass is not None:
@@ -267,7 +311,20 @@ def configure_process() -> None:
 
 
 def main(argv: list[str] | None = None) -> int:
-    """Run the command line; returns the exit code."""
+    """Run the command line.
+
+    A UserError is printed on one line to stderr (exit code 2); an interruption exits 130.
+
+    Parameters
+    ----------
+    argv : list of str, optional
+        The arguments (default ``sys.argv[1:]``).
+
+    Returns
+    -------
+    int
+        The exit code: 0, 2 for a user mistake, 130 after SIGINT/SIGTERM.
+    """
     configure_process()
     try:
         args = build_parser().parse_args(argv)
