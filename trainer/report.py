@@ -529,31 +529,49 @@ def _weights_tables(top_weights) -> str:
 
 
 def render_report(run: dict, probability_axis: str = "auto") -> str:
-    """Render a training run as one self-contained HTML page (returned as a string).
+    """Render a training run as one self-contained HTML page.
 
-    Takes ``run`` with keys ``title`` (str), ``options`` (dict of training options as recorded;
-    None for an option left unset), ``passes`` (list of {"pass", "rows", "progressive_loss",
-    "holdout": BinaryMetrics summary or None}), ``progress`` (list of {"rows", "loss"}: the
-    progressive-validation curve, the method of "Beating the hold-out: Bounds for k-fold and
-    progressive cross-validation", COLT, 1999), ``final_holdout`` (a
-    ``trainer.metrics.BinaryMetrics`` summary, or None), ``top_weights`` (list of {"bucket",
-    "weight", "examples": [str, ...]}) and ``loss`` ("logistic" or "squared-hinge"); optional
-    ``option_defaults`` (dict: each option's default value), ``resolved_options`` (dict: the value
-    an unset option resolved to, e.g. the solver's initial step) and ``best_pass`` (the pass whose
-    weights were kept). ``probability_axis`` is "linear", "log" or "auto" (log-scaled axes when
-    the final holdout's base rate is below :data:`LOG_AXIS_BELOW_BASE_RATE`: the equal-weight bins
-    of a rare response sit at small probabilities, which a linear axis squeezes into its left edge).
+    The page opens with a one-line verdict (better than the base rate by normalized entropy; calibrated
+    when no more bins' 95% intervals miss their mean prediction than chance explains; whether the last
+    pass lowered the holdout loss). Draws six SVG charts: holdout loss (the training loss), AUC and
+    predicted / observed per pass, the progressive-validation curve, the reliability diagram with 95%
+    Wilson intervals and the diagonal, and the score histograms by class; plus tables of figures per
+    pass, reliability bins, largest weights and options. Undefined values (NaN or None) show as "n/a".
+    A squared-hinge model's summaries without probability figures show the AUC and error rates of its
+    margins (their ``margin`` part).
 
-    The page opens with a one-line verdict (better than the base rate by normalized entropy;
-    calibrated when no more bins' 95% intervals miss their mean prediction than chance explains;
-    whether the last pass lowered the holdout loss). Draws six SVG charts: holdout loss (the
-    training loss), AUC and predicted / observed per pass, the progressive-validation curve, the
-    reliability diagram with 95% Wilson intervals ("Probable Inference, the Law of Succession,
-    and Statistical Inference", JASA, 1927) and the diagonal, and the score histograms by class;
-    plus tables of figures per pass, reliability bins, largest weights and options. Undefined
-    values (NaN or None) show as "n/a". A squared-hinge model's summaries without probability
-    figures show the AUC and error rates of its margins (their ``margin`` part). Raises KeyError
-    when a required key is missing and ValueError for an unknown ``loss`` or ``probability_axis``.
+    Parameters
+    ----------
+    run : dict
+        Keys ``title`` (str), ``options`` (dict of training options as recorded; None for an option
+        left unset), ``passes`` (list of {"pass", "rows", "progressive_loss", "holdout": BinaryMetrics
+        summary or None}), ``progress`` (list of {"rows", "loss"}: the progressive-validation curve, the
+        method of the COLT 1999 paper below), ``final_holdout`` (a ``trainer.metrics.BinaryMetrics``
+        summary, or None), ``top_weights`` (list of {"bucket", "weight", "examples": [str, ...]}) and
+        ``loss`` ("logistic" or "squared-hinge"); optional ``option_defaults`` (dict: each option's
+        default value), ``resolved_options`` (dict: the value an unset option resolved to, e.g. the
+        solver's initial step) and ``best_pass`` (the pass whose weights were kept).
+    probability_axis : {"auto", "linear", "log"}
+        auto gives log-scaled axes when the final holdout's base rate is below
+        :data:`LOG_AXIS_BELOW_BASE_RATE`: the equal-weight bins of a rare response sit at small
+        probabilities, which a linear axis squeezes into its left edge.
+
+    Returns
+    -------
+    str
+        The HTML page.
+
+    Raises
+    ------
+    KeyError
+        When a required key is missing.
+    ValueError
+        For an unknown ``loss`` or ``probability_axis``.
+
+    References
+    ----------
+    "Beating the hold-out: Bounds for k-fold and progressive cross-validation", COLT, 1999.
+    "Probable Inference, the Law of Succession, and Statistical Inference", JASA, 1927.
     """
     loss = run["loss"]
     if loss not in ("logistic", "squared-hinge"):
@@ -652,12 +670,31 @@ def render_report(run: dict, probability_axis: str = "auto") -> str:
 
 
 def write_report(run: dict, path, probability_axis: str = "auto") -> Path:
-    """Render ``run`` (see :func:`render_report`, which takes ``probability_axis``) and write it to
-    ``path`` atomically.
+    """Render a run and write the page atomically.
 
-    The page goes to a temporary file in the same folder, is flushed to disk, then renamed over
-    ``path`` with ``os.replace``, so a reader never sees a half-written report. Returns the path.
-    Raises UserError when the folder does not exist, plus whatever :func:`render_report` raises.
+    The page goes to a temporary file in the same folder, is flushed to disk, then renamed over ``path``
+    with ``os.replace``, so a reader never sees a half-written report.
+
+    Parameters
+    ----------
+    run : dict
+        See :func:`render_report`.
+    path : str or Path
+        The HTML file.
+    probability_axis : {"auto", "linear", "log"}
+        See :func:`render_report`.
+
+    Returns
+    -------
+    Path
+        ``path``.
+
+    Raises
+    ------
+    UserError
+        When the folder does not exist.
+    KeyError, ValueError
+        As :func:`render_report`.
     """
     target = Path(path)
     folder = target.parent
