@@ -61,16 +61,38 @@ _PARAMS_KEY = "estimator"
 
 
 def infer_spec(schema: pa.Schema, label: str, weight: str | None = None, bits: int = DEFAULT_BITS) -> dict:
-    """A feature spec (as a JSON object) for the columns of ``schema`` other than ``label`` and
-    ``weight``: strings, booleans and dates are ``categorical``, lists of those or of integers
-    ``multi``, integers and floats ``numeric`` with the ``log1p`` transform sign(x) ln(1 + |x|),
-    dictionary columns by their values. Hashing seed 0, ``bits`` bits, no crosses. log1p because the
-    numbers of response logs are mostly heavy-tailed counts and amounts, whose raw outliers dominate
-    a margin: on the demo's first two days (train on one, score the other, 2 epochs) it gave holdout
-    log-loss 0.16612 / 0.17631 against 0.16627 / 0.17902 for identity. Integer codes are numbers
-    here: cast them to strings, or pass a spec, to hash them as categories. Raises ValueError naming
-    a column of any other type (timestamps, binary, nested structs), or when no feature column is
-    left."""
+    """A feature spec (as a JSON object) inferred from a table's column types.
+
+    Strings, booleans and dates are ``categorical``, lists of those or of integers ``multi``, integers
+    and floats ``numeric`` with the ``log1p`` transform sign(x) ln(1 + |x|), dictionary columns by their
+    values. Hashing seed 0, no crosses. log1p because the numbers of response logs are mostly
+    heavy-tailed counts and amounts, whose raw outliers dominate a margin: on the demo's first two days
+    (train on one, score the other, 2 epochs) it gave holdout log-loss 0.16612 / 0.17631 against
+    0.16627 / 0.17902 for identity. Integer codes are numbers here: cast them to strings, or pass a
+    spec, to hash them as categories.
+
+    Parameters
+    ----------
+    schema : pyarrow.Schema
+        The columns.
+    label : str
+        The label column (not a feature).
+    weight : str, optional
+        The row-weight column (not a feature).
+    bits : int, default DEFAULT_BITS
+        Hash bits.
+
+    Returns
+    -------
+    dict
+        The spec.
+
+    Raises
+    ------
+    ValueError
+        Naming a column of any other type (timestamps, binary, nested structs), or when no feature
+        column is left.
+    """
     features = []
     for field in schema:
         if field.name in (label, weight):
@@ -122,29 +144,51 @@ def _probability_available(est) -> bool:
 class HashedLogisticClassifier(ClassifierMixin, BaseEstimator):
     """An L2-regularized linear classifier over hashed features, trained by ``hashcurve train``.
 
-    Parameters mirror the training options (README, ``hashcurve train``), stored unchanged:
+    X is a pandas DataFrame or pyarrow Table (columns named by the spec), a 2-d array (columns ``x0``,
+    ``x1``, ... , all numeric), or the path of a Parquet file or folder (then ``y`` is None and the
+    label is the spec's label column). With ``y`` given, class ``classes_[1]`` is the positive label;
+    with the label read through the spec, ``classes_`` is [0, 1] as the spec's label rule defines them.
 
-    ``spec``: a spec dict, :class:`trainer.spec.Spec` or spec file; None infers one from the column
-    types (:func:`infer_spec`), kept in ``spec_``. ``bits``: hash bits, overriding the spec's (None:
-    the spec's, 18 for an inferred spec). ``epochs``, ``loss`` ("logistic" or "squared-hinge"),
-    ``solver`` ("olbfgs", "res", "sgd", "adagrad"), ``l2_strength`` (lambda of the per-row-average
-    objective), ``history``, ``batch_rows``, ``step0``, ``seed``, ``shuffle_buffer``,
-    ``negative_keep_rate``, ``patience``, ``start`` / ``end`` (the days of the spec's time column
-    trained on, inclusive), ``holdout_start`` / ``holdout_end`` (the days evaluated after every pass:
-    the best pass is kept, early stop, and the Platt calibration that gives a squared-hinge model its
-    ``predict_proba``; as with ``hashcurve train``, set ``end`` before them to keep them out of
-    training), ``skip_bad_labels``; ``verbose`` prints the per-pass table.
+    Parameters
+    ----------
+    spec : dict, Spec, str or Path, optional
+        A spec dict, :class:`trainer.spec.Spec` or spec file; None infers one from the column types
+        (:func:`infer_spec`), kept in ``spec_``.
+    bits : int, optional
+        Hash bits, overriding the spec's (None: the spec's, 18 for an inferred spec).
+    epochs, loss, solver, l2_strength, history, batch_rows, step0, seed
+        Training options (README, ``hashcurve train``; :class:`trainer.training.TrainOptions`),
+        stored unchanged: ``loss`` "logistic" or "squared-hinge", ``solver`` "olbfgs", "res", "sgd" or
+        "adagrad", ``l2_strength`` lambda of the per-row-average objective.
+    shuffle_buffer, negative_keep_rate, patience, skip_bad_labels
+        Training options as well.
+    start, end : str or datetime.date, optional
+        The days of the spec's time column trained on, inclusive.
+    holdout_start, holdout_end : str or datetime.date, optional
+        The days evaluated after every pass: the best pass is kept, early stop, and the Platt
+        calibration that gives a squared-hinge model its ``predict_proba``; as with ``hashcurve train``,
+        set ``end`` before them to keep them out of training.
+    verbose : bool
+        Print the per-pass table.
 
-    Fitted attributes: ``model_`` (the :class:`trainer.model.Model`), ``spec_`` (the spec used, a
-    JSON object: ``json.dump`` it to train the same features with the command line), ``classes_``,
-    ``coef_`` (shape (1, 2^bits): one weight per bucket, not per column), ``intercept_``,
-    ``n_iter_`` (passes trained), ``n_features_in_`` and ``feature_names_in_`` (the input columns).
-
-    X is a pandas DataFrame or pyarrow Table (columns named by the spec), a 2-d array (columns
-    ``x0``, ``x1``, ... , all numeric), or the path of a Parquet file or folder (then ``y`` is None
-    and the label is the spec's label column). With ``y`` given, class ``classes_[1]`` is the
-    positive label; with the label read through the spec, ``classes_`` is [0, 1] as the spec's label
-    rule defines them.
+    Attributes
+    ----------
+    model_ : trainer.model.Model
+        The fitted model.
+    spec_ : dict
+        The spec used, a JSON object: ``json.dump`` it to train the same features with the command line.
+    classes_ : numpy.ndarray
+        The two labels.
+    coef_ : numpy.ndarray
+        Shape (1, 2^bits): one weight per bucket, not per column.
+    intercept_ : numpy.ndarray
+        The intercept.
+    n_iter_ : int
+        Passes trained.
+    n_features_in_ : int
+        Input columns.
+    feature_names_in_ : numpy.ndarray
+        The input columns' names.
     """
 
     def __init__(self, spec=None, *, bits=None, epochs=3, loss="logistic", solver="olbfgs", l2_strength=1e-4,
@@ -179,23 +223,64 @@ class HashedLogisticClassifier(ClassifierMixin, BaseEstimator):
     # -- fitting ------------------------------------------------------------------------------------
 
     def fit(self, X, y=None, sample_weight=None):
-        """Train ``epochs`` passes over the rows of ``X`` (see the class docstring) with ``y`` as
-        labels (two classes) and ``sample_weight`` as row weights (>= 0; rows weighing 0 are
-        dropped). Returns self. Raises ValueError for unusable X, y or weights and
-        :class:`trainer.errors.UserError` for what ``hashcurve train`` refuses (options, data)."""
+        """Train ``epochs`` passes over the rows of X (see the class docstring).
+
+        Parameters
+        ----------
+        X : DataFrame, pyarrow.Table, array_like, str or Path
+            The rows, or a Parquet path.
+        y : array_like, optional
+            Labels (two classes); None with a Parquet path.
+        sample_weight : array_like, optional
+            Row weights (>= 0; rows weighing 0 are dropped).
+
+        Returns
+        -------
+        HashedLogisticClassifier
+            self.
+
+        Raises
+        ------
+        ValueError
+            For unusable X, y or weights.
+        UserError
+            For what ``hashcurve train`` refuses (options, data).
+        """
         for attr in ("model_", "_state", "_stream"):
             self.__dict__.pop(attr, None)
         return self._run(X, y, sample_weight, classes=None, partial=False)
 
     def partial_fit(self, X, y, classes=None, sample_weight=None):
-        """One more pass, over the rows of ``X`` only, continuing from the state the previous
-        ``fit`` or ``partial_fit`` left (weights, solver memory, step counter): the run's
-        checkpoint is resumed with one more epoch while its data file holds the new rows. So
-        ``partial_fit`` on chunks whose sizes are multiples of ``batch_rows`` gives the weights of
-        one pass of ``hashcurve train`` over the chunks as the files of one folder, bit for bit.
-        ``classes`` (both labels) is required on the first call unless ``y`` holds both. Rows must
-        be in memory (a Parquet path has no next chunk), and no holdout days may be set. Returns
-        self; raises ValueError like :meth:`fit`."""
+        """One more pass, over the rows of X only, continuing from the state the previous fit left.
+
+        The state (weights, solver memory, step counter) is that of the previous ``fit`` or ``partial_fit``:
+        the run's checkpoint is resumed with one more epoch while its data file holds the new rows. So
+        ``partial_fit`` on chunks whose sizes are multiples of ``batch_rows`` gives the weights of one pass of
+        ``hashcurve train`` over the chunks as the files of one folder, bit for bit. Rows must be in memory
+        (a Parquet path has no next chunk), and no holdout days may be set.
+
+        Parameters
+        ----------
+        X : DataFrame, pyarrow.Table or array_like
+            The chunk's rows.
+        y : array_like
+            Their labels.
+        classes : array_like, optional
+            Both labels; required on the first call unless ``y`` holds both.
+        sample_weight : array_like, optional
+            Row weights (>= 0).
+
+        Returns
+        -------
+        HashedLogisticClassifier
+            self.
+
+        Raises
+        ------
+        ValueError
+            Like :meth:`fit`, and for a Parquet path, holdout days, classes that differ from the first
+            call's, or an estimator fitted on a path or loaded from an export.
+        """
         if _is_path(X):
             raise ValueError("partial_fit takes rows in memory (a DataFrame, Table or array); train on a "
                              "Parquet path with fit")
@@ -388,8 +473,18 @@ class HashedLogisticClassifier(ClassifierMixin, BaseEstimator):
     # -- predicting ---------------------------------------------------------------------------------
 
     def decision_function(self, X) -> np.ndarray:
-        """Margins z = intercept + sum(value x weight[bucket]) of the rows of X (the hashing
-        contract), float64 of shape (n_rows,); positive margins predict ``classes_[1]``."""
+        """Margins z = intercept + sum(value x weight[bucket]) of the rows of X (the hashing contract).
+
+        Parameters
+        ----------
+        X : DataFrame, pyarrow.Table, array_like, str or Path
+            The rows, or a Parquet path.
+
+        Returns
+        -------
+        numpy.ndarray
+            float64 of shape (n_rows,); positive margins predict ``classes_[1]``.
+        """
         check_is_fitted(self)
         if _is_path(X):
             return self._margins(Path(X))
@@ -406,9 +501,26 @@ class HashedLogisticClassifier(ClassifierMixin, BaseEstimator):
 
     @available_if(_probability_available)
     def predict_proba(self, X) -> np.ndarray:
-        """Probabilities of (``classes_[0]``, ``classes_[1]``) per row, shape (n_rows, 2): the logistic
-        sigmoid of the margin, or the Platt calibration of a squared-hinge model (the ``probability``
-        column of ``hashcurve score``). Raises UserError for a squared-hinge model left uncalibrated."""
+        """Probabilities of (``classes_[0]``, ``classes_[1]``) per row.
+
+        The logistic sigmoid of the margin, or the Platt calibration of a squared-hinge model (the
+        ``probability`` column of ``hashcurve score``).
+
+        Parameters
+        ----------
+        X : DataFrame, pyarrow.Table, array_like, str or Path
+            The rows, or a Parquet path.
+
+        Returns
+        -------
+        numpy.ndarray
+            Shape (n_rows, 2).
+
+        Raises
+        ------
+        UserError
+            For a squared-hinge model left uncalibrated.
+        """
         z = self.decision_function(X)
         if not self.model_.has_probability:
             raise UserError("predict_proba: this squared-hinge model has no Platt calibration (the holdout "
@@ -417,18 +529,47 @@ class HashedLogisticClassifier(ClassifierMixin, BaseEstimator):
         return np.column_stack([1.0 - p, p])
 
     def predict(self, X) -> np.ndarray:
-        """``classes_[1]`` where the margin is positive, else ``classes_[0]``."""
+        """``classes_[1]`` where the margin is positive, else ``classes_[0]``.
+
+        Parameters
+        ----------
+        X : DataFrame, pyarrow.Table, array_like, str or Path
+            The rows, or a Parquet path.
+
+        Returns
+        -------
+        numpy.ndarray
+            One label per row.
+        """
         positive = self.decision_function(X) > 0
         return self.classes_[positive.astype(np.intp)]
 
     # -- shipping -----------------------------------------------------------------------------------
 
     def save(self, path: str | Path, *, force: bool = False) -> Path:
-        """Write the fitted model as an export folder (``weights.parquet`` + ``model.json``, the
-        format ``hashcurve score`` and ``reference/score_reference.py`` read; no pickle), with the
-        estimator's parameters, classes and input columns under ``model.json``'s
-        ``training.summary.estimator``. Refuses a non-empty folder unless ``force``, like
-        ``hashcurve export``. Returns the folder."""
+        """Write the fitted model as an export folder.
+
+        ``weights.parquet`` + ``model.json``, the format ``hashcurve score`` and
+        ``reference/score_reference.py`` read (no pickle), with the estimator's parameters, classes and
+        input columns under ``model.json``'s ``training.summary.estimator``.
+
+        Parameters
+        ----------
+        path : str or Path
+            The export folder.
+        force : bool
+            Replace a previous export (a non-empty folder is refused otherwise, like ``hashcurve export``).
+
+        Returns
+        -------
+        Path
+            The folder.
+
+        Raises
+        ------
+        UserError
+            For a bad destination.
+        """
         check_is_fitted(self)
         params = {k: v for k, v in self.get_params(deep=False).items() if k != "spec"}
         extra = {"params": params, "classes": self.classes_.tolist(),
@@ -443,10 +584,26 @@ class HashedLogisticClassifier(ClassifierMixin, BaseEstimator):
 
     @classmethod
     def load(cls, path: str | Path) -> "HashedLogisticClassifier":
-        """An estimator from an export folder written by :meth:`save` (or any export: then its
-        training options become the parameters and ``classes_`` is [0, 1]); it predicts exactly as
-        the saved one. ``partial_fit`` cannot continue it (an export keeps no solver state).
-        Raises UserError like :func:`trainer.model.load_model`."""
+        """An estimator from an export folder written by :meth:`save`.
+
+        Any export loads: then its training options become the parameters and ``classes_`` is [0, 1]. It
+        predicts exactly as the saved one; ``partial_fit`` cannot continue it (an export keeps no solver
+        state).
+
+        Parameters
+        ----------
+        path : str or Path
+            The export folder.
+
+        Returns
+        -------
+        HashedLogisticClassifier
+
+        Raises
+        ------
+        UserError
+            Like :func:`trainer.model.load_model`.
+        """
         model = load_model(path)
         extra = model.info["summary"].get(_PARAMS_KEY)
         if extra is None:
