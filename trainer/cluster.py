@@ -75,12 +75,25 @@ def _distributed():
 
 @contextlib.contextmanager
 def connect(cluster):
-    """Yield a ``distributed.Client`` for ``cluster`` (an address, ``local:N`` or a Client).
+    """A ``distributed.Client`` for a cluster.
 
     ``local:N`` starts N single-threaded worker processes and closes them on exit; an address is
     connected to within ``CONNECT_TIMEOUT`` seconds; a Client is used as it is and left open.
-    Raises UserError naming the address when it is malformed or no scheduler answers there, and
-    when the ``dask`` extra is not installed (with the command that installs it).
+
+    Parameters
+    ----------
+    cluster : str or distributed.Client
+        A scheduler address, ``local:N`` or a Client (see :func:`connect`).
+
+    Yields
+    ------
+    distributed.Client
+
+    Raises
+    ------
+    UserError
+        Naming the address when it is malformed or no scheduler answers there, and when the ``dask``
+        extra is not installed (with the command that installs it).
     """
     distributed = _distributed()
     if isinstance(cluster, distributed.Client):
@@ -167,9 +180,33 @@ def _add_counted(a, b):
 
 
 def evaluate(cluster, model: Model, reader: Reader, *, by: str | None = None, segments: int = 20) -> tuple[dict, int]:
-    """The summary of :func:`trainer.evaluation.evaluate` computed over ``cluster`` (one task per
-    part, states merged exactly in input order), and the count of rows skipped for bad labels.
-    Raises UserError as the single-machine path does, and when the filters leave no rows."""
+    """The evaluation summary computed over a cluster.
+
+    One task per part, states merged exactly in input order.
+
+    Parameters
+    ----------
+    cluster : str or distributed.Client
+        A scheduler address, ``local:N`` or a Client (see :func:`connect`).
+    model : Model
+        The model.
+    reader : Reader
+        The labelled input (keeping ``by``).
+    by : str, optional
+        A column to split the metrics by.
+    segments : int, default 20
+        With ``by``, the largest values listed.
+
+    Returns
+    -------
+    tuple of (EvaluationResult, int)
+        The summary of :func:`trainer.evaluation.evaluate` and the count of rows skipped for bad labels.
+
+    Raises
+    ------
+    UserError
+        As the single-machine path does, and when the filters leave no rows.
+    """
     with connect(cluster) as client:
         _workers_ready(client)
         futures = _map(client, _evaluate_part, reader.parts(PART_ROWS), _put(client, model), _put(client, reader), by)
@@ -231,11 +268,39 @@ def _prepare_dataset_folder(out: Path, old: list[Path]) -> None:
 
 def score(cluster, model: Model, reader: Reader, out: Path, *, keep: tuple[str, ...], model_path: str | None,
           force: bool = False) -> dict:
-    """Score ``reader``'s input over ``cluster`` into the dataset folder ``out``: one Parquet file
-    ``part-NNNNN.parquet`` per part (rows in input order; each written atomically by its worker),
-    then the manifest ``_parts.json`` (format, model, data, columns, total rows, and per part: file,
-    input file, row groups, rows, SHA-256), written atomically last. ``out`` must be new or empty,
-    or with ``force`` hold an earlier score dataset. Returns ``{"rows", "out", "parts"}``."""
+    """Score a reader's input over a cluster into a dataset folder.
+
+    One Parquet file ``part-NNNNN.parquet`` per part (rows in input order; each written atomically by
+    its worker), then the manifest ``_parts.json`` (format, model, data, columns, total rows, and per
+    part: file, input file, row groups, rows, SHA-256), written atomically last.
+
+    Parameters
+    ----------
+    cluster : str or distributed.Client
+        A scheduler address, ``local:N`` or a Client (see :func:`connect`).
+    model : Model
+        The model.
+    reader : Reader
+        The input, read without labels, keeping ``keep``.
+    out : Path
+        The dataset folder: new or empty, or with ``force`` an earlier score dataset.
+    keep : tuple of str
+        Columns copied beside the scores.
+    model_path : str or None
+        The model's folder, recorded in the manifest.
+    force : bool
+        Replace an earlier score dataset at ``out``.
+
+    Returns
+    -------
+    dict
+        ``{"rows", "out", "parts"}``.
+
+    Raises
+    ------
+    UserError
+        For a bad ``out`` folder, a cluster that cannot be reached, or filters that leave no rows.
+    """
     old = _check_dataset_folder(out, force)
     with connect(cluster) as client:
         _workers_ready(client)
@@ -393,21 +458,37 @@ def _holdout_part(shard, x: np.ndarray, spec, loss_name: str, log_keep_rate: flo
 
 
 class Refinement:
-    """Full-batch L-BFGS-B on the driver, one iteration at a time, with its complete state in plain
-    arrays so a checkpoint after any iteration resumes bit for bit.
+    """Full-batch L-BFGS-B on the driver, one iteration at a time.
 
-    It drives scipy's L-BFGS-B ("Algorithm 778: L-BFGS-B", ACM Transactions on Mathematical
-    Software, 1997) through the reverse-communication routine behind
+    Its complete state is in plain arrays so a checkpoint after any iteration resumes bit for bit. It
+    drives scipy's L-BFGS-B through the reverse-communication routine behind
     ``scipy.optimize.minimize(method="L-BFGS-B")`` (scipy >= 1.15) with no bounds, ``history``
-    correction pairs and that function's default tolerances; its workspace (2 * history + 5
-    vectors of n + 1 float64) is the state. It works on scaled variables u = x / scale with a fixed
-    diagonal ``scale`` = D^(-1/2), D the Gauss-Newton diagonal of the objective at the start point
-    (plus l2 on the weights), the diagonal preconditioner of "Efficient BackProp" (Neural Networks:
-    Tricks of the Trade, Springer, 1998): bucket curvatures follow bucket frequencies, which span
-    orders of magnitude in hashed logs (on the demo, 20 iterations from zero reach a holdout
-    log-loss of 1.0007 LL* this way, 1.0028 LL* unscaled). ``weights`` and ``intercept`` are those
-    of the current iterate x (the solver protocol's read side, so the trainer's model and
-    checkpoint code apply); ``step0`` is the online pass's resolved initial step, for the record.
+    correction pairs and that function's default tolerances; its workspace (2 * history + 5 vectors of
+    n + 1 float64) is the state. It works on scaled variables u = x / scale with a fixed diagonal
+    ``scale`` = D^(-1/2), D the Gauss-Newton diagonal of the objective at the start point (plus l2 on
+    the weights), the diagonal preconditioner of "Efficient BackProp": bucket curvatures follow bucket
+    frequencies, which span orders of magnitude in hashed logs (on the demo, 20 iterations from zero
+    reach a holdout log-loss of 1.0007 LL* this way, 1.0028 LL* unscaled). ``weights`` and
+    ``intercept`` are those of the current iterate x (the solver protocol's read side, so the trainer's
+    model and checkpoint code apply).
+
+    Parameters
+    ----------
+    n : int
+        Buckets.
+    loss_name : str
+        The loss, recorded in the state.
+    l2 : float
+        The L2 strength.
+    history : int
+        Correction pairs.
+    step0 : float
+        The online pass's resolved initial step, for the record.
+
+    References
+    ----------
+    "Algorithm 778: L-BFGS-B", ACM Transactions on Mathematical Software, 1997.
+    "Efficient BackProp", Neural Networks: Tricks of the Trade, Springer, 1998.
     """
 
     method = "cluster-lbfgsb"
@@ -434,21 +515,32 @@ class Refinement:
 
     @property
     def weights(self) -> np.ndarray:
+        """Bucket weights of the current iterate, read-only."""
         v = self.x[: self.n]
         v.flags.writeable = False
         return v
 
     @property
     def intercept(self) -> float:
+        """The intercept of the current iterate."""
         return float(self.arrays["u"][self.n] * self.arrays["scale"][self.n])
 
     @property
     def task(self) -> int:
+        """L-BFGS-B's task code after the last call (``NEW_POINT``, ``EVALUATE``, ``CONVERGED``, ...)."""
         return int(self.arrays["task"][0])
 
     def start(self, x0: np.ndarray, curvature: np.ndarray) -> None:
-        """Begin at x0 (weights then intercept), scaled by the objective's diagonal ``curvature`` there
-        (data part only; l2 is added to the weights' entries, and every entry is kept >= 1e-12)."""
+        """Begin at a start point, scaled by the objective's diagonal there.
+
+        Parameters
+        ----------
+        x0 : numpy.ndarray
+            Weights then intercept.
+        curvature : numpy.ndarray
+            The data part of the objective's diagonal at x0; l2 is added to the weights' entries, and every
+            entry is kept >= 1e-12.
+        """
         d = curvature.copy()
         d[: self.n] += self.l2
         self.arrays["scale"][:] = 1.0 / np.sqrt(np.maximum(d, 1e-12))
@@ -456,9 +548,18 @@ class Refinement:
         self.arrays["task"][:] = 0
 
     def iterate(self, fg) -> int:
-        """Run L-BFGS-B until it accepts a new point or stops, calling ``fg(x) -> (f, g)`` (objective
-        and gradient in x) for every point it asks for; returns the number of calls. ``task`` then
-        says which."""
+        """Run L-BFGS-B until it accepts a new point or stops; ``task`` then says which.
+
+        Parameters
+        ----------
+        fg : callable
+            ``fg(x) -> (f, g)``: objective and gradient in x, called for every point L-BFGS-B asks for.
+
+        Returns
+        -------
+        int
+            The number of calls of ``fg``.
+        """
         from scipy.optimize import _lbfgsb
 
         a = self.arrays
@@ -477,11 +578,34 @@ class Refinement:
                 return calls
 
     def state(self, copy: bool = True) -> dict:
+        """The complete state: settings and the L-BFGS-B workspace arrays.
+
+        Parameters
+        ----------
+        copy : bool, default True
+            Copy the arrays (else they are the live ones).
+
+        Returns
+        -------
+        dict
+        """
         st = {"method": self.method, "loss": self.loss_name, "n_features": self.n, "l2": self.l2,
               "history": self.history, **self.arrays}
         return {k: v.copy() if copy and isinstance(v, np.ndarray) else v for k, v in st.items()}
 
     def load_state(self, state: dict) -> None:
+        """Restore a :meth:`state` exactly.
+
+        Parameters
+        ----------
+        state : dict
+            A :meth:`state` with the same method, loss, size, l2 and history.
+
+        Raises
+        ------
+        UserError
+            When a setting differs.
+        """
         expected = {"method": self.method, "loss": self.loss_name, "n_features": self.n, "l2": self.l2,
                     "history": self.history}
         for key, mine in expected.items():
@@ -494,10 +618,19 @@ class Refinement:
 
 
 class ClusterTrainer(Trainer):
-    """A training run whose passes run on a Dask cluster: pass 1 is one online pass per shard,
-    averaged by rows; every later pass is one full-batch L-BFGS-B iteration (see the module
-    docstring). Same model folder, per-pass table, metrics, checkpoints and export as
-    :class:`trainer.training.Trainer`; the checkpoint after each pass resumes bit for bit."""
+    """A training run whose passes run on a Dask cluster.
+
+    Pass 1 is one online pass per shard, averaged by rows; every later pass is one full-batch L-BFGS-B
+    iteration (see the module docstring). Same model folder, per-pass table, metrics, checkpoints and
+    export as :class:`trainer.training.Trainer`; the checkpoint after each pass resumes bit for bit.
+
+    Parameters
+    ----------
+    client : distributed.Client
+        The cluster.
+    *args, **kwargs
+        As :class:`trainer.training.Trainer`.
+    """
 
     def __init__(self, client, *args, **kwargs):
         self.client = client
@@ -557,8 +690,20 @@ class ClusterTrainer(Trainer):
         self._save_checkpoint()
 
     def run(self) -> TrainResult:
-        """Train (pass 1, then the refinement iterations) and return the final model; errors, locking
-        and what a refused run keeps as in :meth:`trainer.training.Trainer.run`."""
+        """Train (pass 1, then the refinement iterations).
+
+        Errors, locking and what a refused run keeps are as in :meth:`trainer.training.Trainer.run`.
+
+        Returns
+        -------
+        TrainResult
+            With the stopping reason: converged, or reached ``--refine-iterations``.
+
+        Raises
+        ------
+        UserError
+            As :meth:`trainer.training.Trainer.run`.
+        """
         try:
             model = self._run()
             reason = ("full-batch L-BFGS converged" if self.solver.task == Refinement.CONVERGED
@@ -621,9 +766,26 @@ class ClusterTrainer(Trainer):
 
 
 def train(cluster, spec, data, out, options, **kwargs) -> TrainResult:
-    """Train over ``cluster`` (see the module docstring); arguments as :class:`trainer.training.Trainer`.
-    Options that only shape single-machine passes (``epochs``, ``patience``, ``checkpoint_every``)
-    must keep their defaults (UserError otherwise). Returns the TrainResult."""
+    """Train over a cluster (see the module docstring).
+
+    Parameters
+    ----------
+    cluster : str or distributed.Client
+        A scheduler address, ``local:N`` or a Client (see :func:`connect`).
+    spec, data, out, options, **kwargs
+        As :class:`trainer.training.Trainer`. Options that only shape single-machine passes
+        (``epochs``, ``patience``, ``checkpoint_every``) must keep their defaults.
+
+    Returns
+    -------
+    TrainResult
+
+    Raises
+    ------
+    UserError
+        For a single-machine option changed, a cluster that cannot be reached, or as
+        :meth:`ClusterTrainer.run`.
+    """
     default = type(options)()
     for name in ("epochs", "patience", "checkpoint_every"):
         if getattr(options, name) != getattr(default, name):
