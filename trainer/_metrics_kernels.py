@@ -36,8 +36,22 @@ REL_ROWS, REL_W2, REL_WP = range(3)
 def octave_index(bits, low_exp, octaves, res_bits):
     """Monotone bin of a non-negative float64 given by its bit pattern.
 
-    0 below 2^-low_exp, 1 .. octaves << res_bits inside [2^-low_exp, 2^(octaves - low_exp)),
-    (octaves << res_bits) + 1 at or above the top.
+    Parameters
+    ----------
+    bits : numpy.uint64
+        The float64's bit pattern.
+    low_exp : int
+        Values below 2^-low_exp share bin 0.
+    octaves : int
+        Octaves binned above 2^-low_exp.
+    res_bits : int
+        Leading mantissa bits kept: 2^res_bits bins per octave.
+
+    Returns
+    -------
+    int
+        0 below 2^-low_exp, 1 .. octaves << res_bits inside [2^-low_exp, 2^(octaves - low_exp)),
+        (octaves << res_bits) + 1 at or above the top.
     """
     k = np.int64(bits >> np.uint64(52 - res_bits)) - (np.int64(1023 - low_exp) << res_bits)
     if k < 0:
@@ -50,7 +64,23 @@ def octave_index(bits, low_exp, octaves, res_bits):
 
 @njit(cache=True)
 def prob_bin(p, res_bits, buf, ubuf):
-    """Bin of a probability in [0, 1]; ascending in p; 2 * n_side + 1 bins in all."""
+    """Bin of a probability in [0, 1]; ascending in p; 2 * n_side + 1 bins in all.
+
+    Parameters
+    ----------
+    p : float
+        The probability.
+    res_bits : int
+        Leading mantissa bits kept.
+    buf : numpy.ndarray
+        float64 scratch of length 1.
+    ubuf : numpy.ndarray
+        ``buf`` viewed as uint64 (the bit pattern is read there).
+
+    Returns
+    -------
+    int
+    """
     n_side = (np.int64(PROB_OCTAVES) << res_bits) + 1
     if p == 0.5:
         return n_side
@@ -63,7 +93,23 @@ def prob_bin(p, res_bits, buf, ubuf):
 
 @njit(cache=True)
 def margin_bin(m, res_bits, buf, ubuf):
-    """Bin of a finite margin; ascending in m; 2 * centre + 1 bins in all."""
+    """Bin of a finite margin; ascending in m; 2 * centre + 1 bins in all.
+
+    Parameters
+    ----------
+    m : float
+        The margin.
+    res_bits : int
+        Leading mantissa bits kept.
+    buf : numpy.ndarray
+        float64 scratch of length 1.
+    ubuf : numpy.ndarray
+        ``buf`` viewed as uint64 (the bit pattern is read there).
+
+    Returns
+    -------
+    int
+    """
     centre = (np.int64(MARGIN_OCTAVES) << res_bits) + 1
     buf[0] = abs(m)
     j = octave_index(ubuf[0], MARGIN_LOW_EXP, MARGIN_OCTAVES, res_bits)
@@ -76,7 +122,16 @@ def margin_bin(m, res_bits, buf, ubuf):
 
 @njit(cache=True)
 def softplus(x):
-    """log(1 + exp(x)) without overflow."""
+    """log(1 + exp(x)) without overflow.
+
+    Parameters
+    ----------
+    x : float
+
+    Returns
+    -------
+    float
+    """
     if x > 0.0:
         return x + math.log1p(math.exp(-x))
     return math.log1p(math.exp(x))
@@ -84,7 +139,24 @@ def softplus(x):
 
 @njit(cache=True, inline="always")
 def count_row(counts, sums, y, w):
-    """Add one row to the row, positive and weight counts; return 1 for a positive, else 0."""
+    """Add one row to the row, positive and weight counts.
+
+    Parameters
+    ----------
+    counts : numpy.ndarray
+        int64 rows and positives, updated in place.
+    sums : numpy.ndarray
+        float64 weighted running sums (slots ``W`` .. ``FN``), updated in place.
+    y : float
+        The 0/1 label.
+    w : float
+        The row weight.
+
+    Returns
+    -------
+    int
+        1 for a positive, else 0.
+    """
     pos = 1 if y == 1.0 else 0
     counts[0] += 1
     counts[1] += pos
@@ -95,7 +167,25 @@ def count_row(counts, sums, y, w):
 
 @njit(cache=True, inline="always")
 def add_ranked(sums, auc_w, auc_lo, auc_hi, k, pos, w, called_positive, score):
-    """Add one row to the confusion sums and to rank bin ``k`` (weight, smallest and largest score)."""
+    """Add one row to the confusion sums and to rank bin ``k`` (weight, smallest and largest score).
+
+    Parameters
+    ----------
+    sums : numpy.ndarray
+        float64 weighted running sums, updated in place.
+    auc_w, auc_lo, auc_hi : numpy.ndarray
+        Per rank bin: weight by class, smallest and largest score, updated in place.
+    k : int
+        The rank bin.
+    pos : int
+        1 for a positive row, else 0.
+    w : float
+        The row weight.
+    called_positive : bool
+        The row is predicted positive (p > 0.5, or margin > 0).
+    score : float
+        The row's score.
+    """
     if called_positive:
         sums[TP if pos else FP] += w
     else:
@@ -110,7 +200,29 @@ def add_ranked(sums, auc_w, auc_lo, auc_hi, k, pos, w, called_positive, score):
 @njit(cache=True)
 def accumulate_binary(labels, probs, weights, margins, hist_edges, res_bits,
                        counts, sums, hist, auc_w, auc_lo, auc_hi, rank_rel):
-    """Add one chunk of rows to the state arrays of a BinaryMetrics (in place)."""
+    """Add one chunk of rows to the state arrays of a BinaryMetrics (in place).
+
+    Parameters
+    ----------
+    labels, probs, weights : numpy.ndarray
+        float64 0/1 labels, probabilities and row weights.
+    margins : numpy.ndarray
+        float64 log-odds, or empty (log-loss from the clipped probabilities then).
+    hist_edges : numpy.ndarray
+        The score histogram's edges.
+    res_bits : int
+        Leading mantissa bits of the rank histogram.
+    counts : numpy.ndarray
+        int64 rows and positives, updated in place.
+    sums : numpy.ndarray
+        float64 weighted running sums (slots ``W`` .. ``FN``), updated in place.
+    hist : numpy.ndarray
+        Score histogram weights by class, updated in place.
+    auc_w, auc_lo, auc_hi : numpy.ndarray
+        Per rank bin: weight by class, smallest and largest score, updated in place.
+    rank_rel : numpy.ndarray
+        Per rank bin: rows, sum of w^2, sum of w * p, updated in place.
+    """
     buf = np.empty(1, np.float64)
     ubuf = buf.view(np.uint64)
     use_w = weights.size > 0
@@ -145,7 +257,21 @@ def accumulate_binary(labels, probs, weights, margins, hist_edges, res_bits,
 
 @njit(cache=True)
 def accumulate_margin(labels, margins, weights, res_bits, counts, sums, auc_w, auc_lo, auc_hi):
-    """Add one chunk of rows to the state arrays of a MarginMetrics (in place)."""
+    """Add one chunk of rows to the state arrays of a MarginMetrics (in place).
+
+    Parameters
+    ----------
+    labels, margins, weights : numpy.ndarray
+        float64 0/1 labels, margins and row weights.
+    res_bits : int
+        Leading mantissa bits of the rank histogram.
+    counts : numpy.ndarray
+        int64 rows and positives, updated in place.
+    sums : numpy.ndarray
+        float64 weighted running sums (slots ``W`` .. ``FN``), updated in place.
+    auc_w, auc_lo, auc_hi : numpy.ndarray
+        Per rank bin: weight by class, smallest and largest score, updated in place.
+    """
     buf = np.empty(1, np.float64)
     ubuf = buf.view(np.uint64)
     use_w = weights.size > 0
@@ -159,7 +285,25 @@ def accumulate_margin(labels, margins, weights, res_bits, counts, sums, auc_w, a
 
 @njit(cache=True)
 def platt_terms(margins, targets, weights, a, b):
-    """Cross-entropy of sigmoid(a*m + b) against soft targets, with gradient and Hessian in a, b."""
+    """Cross-entropy of sigmoid(a*m + b) against soft targets, with gradient and Hessian in a, b.
+
+    Parameters
+    ----------
+    margins, targets, weights : numpy.ndarray
+        float64 margins, targets in [0, 1] and frequency weights.
+    a, b : float
+        The current fit.
+
+    Returns
+    -------
+    tuple of float
+        ``(f, g_a, g_b, h_aa, h_ab, h_bb)``.
+
+    References
+    ----------
+    "Probabilistic Outputs for Support Vector Machines and Comparisons to Regularized Likelihood
+    Methods", Advances in Large Margin Classifiers, MIT Press, 1999.
+    """
     f = 0.0
     g1 = 0.0
     g2 = 0.0
