@@ -60,8 +60,21 @@ def _precondition(t, diag, diag_scale, shift):
 
 @njit(cache=True, nogil=True)
 def chunk_pointers(idx, size):
-    """For ascending indices ``idx`` into a vector of ``size`` coordinates: out[c] = number of indices
-    below c * CHUNK, for c = 0 .. number of chunks (so chunk c holds idx[out[c]:out[c + 1]])."""
+    """Where each chunk of ``CHUNK`` coordinates starts in an ascending index array.
+
+    Parameters
+    ----------
+    idx : numpy.ndarray
+        Ascending indices into a vector of ``size`` coordinates.
+    size : int
+        The vector's length.
+
+    Returns
+    -------
+    numpy.ndarray
+        int64: out[c] = number of indices below c * CHUNK, for c = 0 .. number of chunks (so chunk c
+        holds idx[out[c]:out[c + 1]]).
+    """
     chunks = (size + CHUNK - 1) // CHUNK
     out = np.empty(chunks + 1, dtype=np.int64)
     p = 0
@@ -82,8 +95,24 @@ def _sparse_add(t, lo, idx, val, a, first, last):
 
 @njit(cache=True, nogil=True)
 def sparse_dot(t, lo, idx, val, first, last):
-    """sum_{p in [first, last)} val[p] * t[idx[p] - lo]: a sparse vector (indices ``idx``, values
-    ``val``) against the values ``t`` of coordinates lo, lo + 1, ..."""
+    """A sparse vector against the values of a run of coordinates.
+
+    Parameters
+    ----------
+    t : numpy.ndarray
+        The values of coordinates lo, lo + 1, ...
+    lo : int
+        The first coordinate of ``t``.
+    idx, val : numpy.ndarray
+        The sparse vector's indices and values.
+    first, last : int
+        The entries used, [first, last).
+
+    Returns
+    -------
+    float
+        sum_{p in [first, last)} val[p] * t[idx[p] - lo].
+    """
     acc = 0.0
     for p in range(first, last):
         acc += val[p] * t[idx[p] - lo]
@@ -118,12 +147,43 @@ def precondition_pass(x, S, order, m, alpha, lam, n_reg, diag, diag_scale, damp,
     """Dense middle of the recursion, one pass over memory on all cores, chunk by chunk.
 
     Forms q = g - sum_t alpha_t y_{order[t]} (g = lam * x on the first ``n_reg`` coordinates plus the
-    sparse ``gvals`` on ``gcols``; y_k = y_sparse_k + lam * s_k there), writes H0 q into ``q`` with H0_jj =
-    1 / (diag_scale * diag_j + damp (+ lam for j < n_reg)), 0 where that denominator is not positive,
-    and the inner products e_t = sum_{j < n_reg} s_{order[t], j} (H0 q)_j and b_t = y_sparse_{order[t]} .
-    (H0 q). Sparse vectors are ascending; ``gptr`` (for g) and ``ychunk[k]`` (for pair k, offsets within
-    its own entries from ``yptr[k]``) are their :func:`chunk_pointers`. The dense work is done in
-    ``q``'s dtype (the pairs' storage precision), sums over chunks in float64.
+    sparse ``gvals`` on ``gcols``; y_k = y_sparse_k + lam * s_k there), writes H0 q into ``q`` with
+    H0_jj = 1 / (diag_scale * diag_j + damp (+ lam for j < n_reg)), 0 where that denominator is not
+    positive, and the inner products e_t = sum_{j < n_reg} s_{order[t], j} (H0 q)_j and
+    b_t = y_sparse_{order[t]} . (H0 q). Sparse vectors are ascending. The dense work is done in ``q``'s
+    dtype (the pairs' storage precision), sums over chunks in float64.
+
+    Parameters
+    ----------
+    x : numpy.ndarray
+        The weights.
+    S : numpy.ndarray
+        The stored steps, one row per slot (pairs' storage dtype).
+    order : numpy.ndarray
+        Slots of the pairs, oldest first.
+    m : int
+        Pairs in use.
+    alpha : numpy.ndarray
+        The first loop's coefficients.
+    lam : float
+        The L2 strength.
+    n_reg : int
+        Regularized coordinates (the buckets; the intercept is not).
+    diag : numpy.ndarray
+        The running curvature diagonal, to be multiplied by ``diag_scale``.
+    diag_scale : float
+        Its scale (:func:`fold_diagonal`).
+    damp : float
+        The damping added to every diagonal entry.
+    gcols, gvals, gptr : numpy.ndarray
+        The gradient's sparse part and its :func:`chunk_pointers`.
+    yptr, yidx, yval, ychunk : numpy.ndarray
+        The pairs' sparse y parts: slot k's ascending entries start at ``yptr[k]`` in ``yidx``/``yval``,
+        and ``ychunk[k]`` are their :func:`chunk_pointers` (offsets from ``yptr[k]``).
+    q : numpy.ndarray
+        Output, H0 q.
+    e, b : numpy.ndarray
+        Outputs, the inner products above.
     """
     size = q.shape[0]
     chunks = (size + CHUNK - 1) // CHUNK
@@ -155,14 +215,40 @@ def precondition_pass(x, S, order, m, alpha, lam, n_reg, diag, diag_scale, damp,
 
 @njit(cache=True, parallel=True, nogil=True)
 def combine_pass(q, S, order, m, coef, x, n_reg, yptr, yidx, yval, ychunk, p, yd):
-    """Last dense pass: d = q + sum_t coef_t s_{order[t]} written into ``q``, with the products the
-    line search and the next curvature pair need.
+    """Last dense pass: d = q + sum_t coef_t s_{order[t]} written into ``q``.
 
-    Writes p_t = sum_{j < n_reg} s_{order[t], j} d_j and yd_t = y_sparse_{order[t]} . d (pairs as in
-    :func:`precondition_pass`) and returns (x.d and d.d over the first ``n_reg`` coordinates,
-    sum_j |x_j| + sum_j |d_j| over all coordinates). The last value is NaN or infinite when any entry
-    is, and bounds |x_j + e d_j| <= (1 + e) * it for 0 < e <= 1 and e * it for e > 1, so the new
-    weights are known finite without writing them.
+    Also computes the products the line search and the next curvature pair need: p_t = sum_{j < n_reg}
+    s_{order[t], j} d_j and yd_t = y_sparse_{order[t]} . d (pairs as in :func:`precondition_pass`).
+
+    Parameters
+    ----------
+    q : numpy.ndarray
+        H0 q on entry, d on return.
+    S : numpy.ndarray
+        The stored steps, one row per slot (pairs' storage dtype).
+    order : numpy.ndarray
+        Slots of the pairs, oldest first.
+    m : int
+        Pairs in use.
+    coef : numpy.ndarray
+        The second loop's coefficients.
+    x : numpy.ndarray
+        The weights.
+    n_reg : int
+        Regularized coordinates.
+    yptr, yidx, yval, ychunk : numpy.ndarray
+        The pairs' sparse y parts: slot k's ascending entries start at ``yptr[k]`` in ``yidx``/``yval``,
+        and ``ychunk[k]`` are their :func:`chunk_pointers` (offsets from ``yptr[k]``).
+    p, yd : numpy.ndarray
+        Outputs, the products above.
+
+    Returns
+    -------
+    tuple of float
+        x.d and d.d over the first ``n_reg`` coordinates, and sum_j |x_j| + sum_j |d_j| over all
+        coordinates. The last value is NaN or infinite when any entry is, and bounds
+        |x_j + e d_j| <= (1 + e) * it for 0 < e <= 1 and e * it for e > 1, so the new weights are known
+        finite without writing them.
     """
     size = q.shape[0]
     chunks = (size + CHUNK - 1) // CHUNK
@@ -190,8 +276,26 @@ def combine_pass(q, S, order, m, coef, x, n_reg, yptr, yidx, yval, ychunk, p, yd
 
 @njit(cache=True, parallel=True, nogil=True)
 def gather_steps(S, order, m, gcols, gvals):
-    """Sg[t, :] = s_{order[t]} at ``gcols`` and sg[t] = Sg[t] . ``gvals``, the stored steps split over
-    all cores (random reads from memory: two cores keep twice as many in flight)."""
+    """The stored steps at the gradient's buckets, split over all cores.
+
+    Random reads from memory: two cores keep twice as many in flight.
+
+    Parameters
+    ----------
+    S : numpy.ndarray
+        The stored steps, one row per slot (pairs' storage dtype).
+    order : numpy.ndarray
+        Slots of the pairs, oldest first.
+    m : int
+        Pairs in use.
+    gcols, gvals : numpy.ndarray
+        The gradient's sparse part.
+
+    Returns
+    -------
+    tuple of numpy.ndarray
+        ``(Sg, sg)``: Sg[t, :] = s_{order[t]} at ``gcols`` and sg[t] = Sg[t] . ``gvals``.
+    """
     Sg = np.empty((m, gcols.shape[0]))
     sg = np.empty(m)
     for i in prange(m):
@@ -235,26 +339,61 @@ def _second_loop(order, m, rho, G, alpha, lam, e, b):
 
 def lbfgs_direction(x, gcols, gvals, gptr, S, order, m, rho, G, z, yptr, yidx, yval, ychunk, lam, n_reg, diag,
                     diag_scale, damp, q):
-    """Write d = H g into ``q``, H the limited-memory BFGS inverse-Hessian approximation; return
-    (x.d, d.d, bound) as :func:`combine_pass` does, then p, yd (its inner products with the stored
-    pairs) and Sg[t, :] = s_{order[t]} at ``gcols`` (for :func:`record_pair`).
+    """Write d = H g into ``q``, H the limited-memory BFGS inverse-Hessian approximation.
 
-    The gradient is g = lam * x[:n_reg] (zero at the other coordinates) plus the sparse part ``gvals``
-    on the ascending ``gcols`` (chunk pointers ``gptr``). Pairs are the rows ``S[order[t]]`` (t = 0
-    oldest .. m-1 newest) with y_k = y_sparse_k + lam * s_k[:n_reg], y_sparse_k held by slot: its
-    ascending entries start at ``yptr[k]`` in ``yidx``/``yval`` and its chunk pointers ``ychunk[k]``
-    (offsets from ``yptr[k]``) delimit them, so slots may be padded rows of one array; rho[k] = 1 /
-    (s_k.y_k). ``G[i, k]`` = s_i.y_k and ``z[k]`` = s_k.x[:n_reg] are kept up to date by
-    :func:`record_pair`. The initial matrix is the diagonal of :func:`precondition_pass`.
-
-    Same coefficients as the two-loop recursion of "Updating Quasi-Newton Matrices with Limited
-    Storage" (Mathematics of Computation, 1980), but its inner products come from the small matrix G,
-    as in the vector-free L-BFGS of "Large-scale L-BFGS using MapReduce" (NeurIPS 2014): with y
-    sparse plus lam * s, the dense work is two passes over the stored steps instead of 2m.
+    The gradient is g = lam * x[:n_reg] (zero at the other coordinates) plus the sparse part ``gvals`` on
+    the ascending ``gcols``. Pairs are the rows ``S[order[t]]`` (t = 0 oldest .. m-1 newest) with
+    y_k = y_sparse_k + lam * s_k[:n_reg], y_sparse_k held by slot, so slots may be padded rows of one
+    array. The initial matrix is the diagonal of :func:`precondition_pass`. Same coefficients as the
+    two-loop recursion of the 1980 paper below, but its inner products come from the small matrix G, as
+    in the vector-free L-BFGS of the NeurIPS 2014 paper: with y sparse plus lam * s, the dense work is
+    two passes over the stored steps instead of 2m.
 
     A plain Python function on purpose: the parallel kernels are only ever called from Python, never
-    from another compiled function, because a compiled caller that embeds a parallel callee taken
-    from numba's on-disk cache can crash the process (seen with numba 0.68).
+    from another compiled function, because a compiled caller that embeds a parallel callee taken from
+    numba's on-disk cache can crash the process (seen with numba 0.68).
+
+    Parameters
+    ----------
+    x : numpy.ndarray
+        The weights.
+    gcols, gvals, gptr : numpy.ndarray
+        The gradient's sparse part and its :func:`chunk_pointers`.
+    S : numpy.ndarray
+        The stored steps, one row per slot (pairs' storage dtype).
+    order : numpy.ndarray
+        Slots of the pairs, oldest first.
+    m : int
+        Pairs in use.
+    rho : numpy.ndarray
+        rho[k] = 1 / (s_k.y_k).
+    G : numpy.ndarray
+        G[i, k] = s_i.y_k, kept up to date by :func:`record_pair`.
+    z : numpy.ndarray
+        z[k] = s_k.x[:n_reg], kept up to date by :func:`record_pair`.
+    yptr, yidx, yval, ychunk : numpy.ndarray
+        The pairs' sparse y parts: slot k's ascending entries start at ``yptr[k]`` in ``yidx``/``yval``,
+        and ``ychunk[k]`` are their :func:`chunk_pointers` (offsets from ``yptr[k]``).
+    lam : float
+        The L2 strength.
+    n_reg : int
+        Regularized coordinates.
+    diag, diag_scale, damp
+        The initial matrix, as in :func:`precondition_pass`.
+    q : numpy.ndarray
+        Output, the direction d.
+
+    Returns
+    -------
+    tuple
+        ``(xd, dd, bound, p, yd, Sg)``: x.d, d.d and the bound as :func:`combine_pass` returns them, p and
+        yd (its inner products with the stored pairs) and Sg[t, :] = s_{order[t]} at ``gcols`` (for
+        :func:`record_pair`).
+
+    References
+    ----------
+    "Updating Quasi-Newton Matrices with Limited Storage", Mathematics of Computation, 1980.
+    "Large-scale L-BFGS using MapReduce", NeurIPS, 2014.
     """
     Sg, sg = gather_steps(S, order, m, gcols, gvals)
     alpha = _first_loop(sg, order, m, rho, G, z, lam)
@@ -271,13 +410,30 @@ def lbfgs_direction(x, gcols, gvals, gptr, S, order, m, rho, G, z, yptr, yidx, y
 
 @njit(cache=True, nogil=True)
 def record_pair(order, m, h, accept, Sg, ysp, p, yd, step, lam, sy, xd, dd, G, z):
-    """Keep ``G`` (s_i.y_k) and ``z`` (s_k.w) of :func:`lbfgs_direction` current after the weights
-    moved by s = step * d.
+    """Keep ``G`` (s_i.y_k) and ``z`` (s_k.w) of :func:`lbfgs_direction` current after a step.
 
-    ``order``/``m``/``Sg``/``p``/``yd``/``xd``/``dd`` are those of the direction, ``ysp`` the sparse part
-    of the new y on the direction's ``gcols`` and ``sy`` = s.y. When ``accept``, the new pair goes to
-    slot ``h`` (the oldest pair when the memory is full): s_k.y_new = Sg_k . ysp + lam * step * p_k and
+    The weights moved by s = step * d. When ``accept``, the new pair goes to slot ``h`` (the oldest pair
+    when the memory is full): s_k.y_new = Sg_k . ysp + lam * step * p_k and
     s_new.y_k = step * (yd_k + lam * p_k).
+
+    Parameters
+    ----------
+    order, m, Sg, p, yd, xd, dd
+        Those of the direction.
+    h : int
+        The new pair's slot.
+    accept : bool
+        Whether the new pair is kept.
+    ysp : numpy.ndarray
+        The sparse part of the new y on the direction's ``gcols``.
+    step : float
+        The accepted step length.
+    lam : float
+        The L2 strength.
+    sy : float
+        s.y of the new pair.
+    G, z : numpy.ndarray
+        Updated in place.
     """
     for i in range(m):
         k = order[i]
@@ -298,11 +454,30 @@ def record_pair(order, m, h, accept, Sg, ysp, p, yd, step, lam, sy, xd, dd, G, z
 
 @njit(cache=True, nogil=True)
 def fold_diagonal(diag, scale, beta, cols, curv, curv_last):
-    """Running Gauss-Newton diagonal D = scale * diag, updated to beta * D + (1 - beta) * c where c is
-    ``curv`` on ``cols`` and ``curv_last`` at the last coordinate; returns the new scale.
+    """Running Gauss-Newton diagonal D = scale * diag, updated to beta * D + (1 - beta) * c.
 
-    The factor beta goes into the scale, so only the batch's buckets are written (``diag`` is
-    rescaled in place only when the scale drops below 1e-150, or reset when beta is 0).
+    The factor beta goes into the scale, so only the batch's buckets are written (``diag`` is rescaled
+    in place only when the scale drops below 1e-150, or reset when beta is 0).
+
+    Parameters
+    ----------
+    diag : numpy.ndarray
+        The unscaled diagonal, updated in place.
+    scale : float
+        Its current scale.
+    beta : float
+        The decay.
+    cols : numpy.ndarray
+        The batch's buckets.
+    curv : numpy.ndarray
+        c on ``cols``.
+    curv_last : float
+        c at the last coordinate (the intercept).
+
+    Returns
+    -------
+    float
+        The new scale.
     """
     if beta == 0.0:
         diag[:] = 0.0
@@ -322,8 +497,28 @@ def fold_diagonal(diag, scale, beta, cols, curv, curv_last):
 
 @njit(cache=True, nogil=True)
 def line_loss(code, labels, weights, z0, u, eps):
-    """sum_i c_i l(y_i, z0_i + eps * u_i): the batch's weighted data loss along the line x + eps d,
-    with u = X d + d_b the margins' rate of change (one sparse product per step, none per trial)."""
+    """The batch's weighted data loss along the line x + eps d.
+
+    u = X d + d_b is the margins' rate of change (one sparse product per step, none per trial).
+
+    Parameters
+    ----------
+    code : int
+        A loss code of :mod:`trainer.losses`.
+    labels, weights : numpy.ndarray
+        The batch's labels and row weights c_i.
+    z0 : numpy.ndarray
+        The margins at x.
+    u : numpy.ndarray
+        The margins' rate of change.
+    eps : float
+        The trial step.
+
+    Returns
+    -------
+    float
+        sum_i c_i l(y_i, z0_i + eps * u_i).
+    """
     total = 0.0
     for i in range(z0.shape[0]):
         total += weights[i] * loss(code, labels[i], z0[i] + eps * u[i])
@@ -332,8 +527,20 @@ def line_loss(code, labels, weights, z0, u, eps):
 
 @njit(cache=True, nogil=True)
 def line_residuals(code, labels, weights, z0, u, eps, r):
-    """Write r_i = c_i l'(y_i, z0_i + eps * u_i) (residuals at an accepted point of the line) and
-    return their sum."""
+    """Write r_i = c_i l'(y_i, z0_i + eps * u_i) (residuals at an accepted point of the line).
+
+    Parameters
+    ----------
+    code, labels, weights, z0, u, eps
+        As :func:`line_loss`.
+    r : numpy.ndarray
+        Output.
+
+    Returns
+    -------
+    float
+        Their sum.
+    """
     total = 0.0
     for i in range(z0.shape[0]):
         ri = weights[i] * dloss(code, labels[i], z0[i] + eps * u[i])
@@ -344,8 +551,24 @@ def line_residuals(code, labels, weights, z0, u, eps, r):
 
 @njit(cache=True, nogil=True)
 def commit_step(x, d, eps, s_out, store):
-    """x += eps * d in place; when ``store``, also s_out = eps * d (the step of a new curvature pair,
-    rounded to s_out's dtype: float32 storage halves the memory traffic of :func:`lbfgs_direction`)."""
+    """x += eps * d in place; when ``store``, also s_out = eps * d.
+
+    s_out is the step of a new curvature pair, rounded to its dtype: float32 storage halves the memory
+    traffic of :func:`lbfgs_direction`.
+
+    Parameters
+    ----------
+    x : numpy.ndarray
+        The weights.
+    d : numpy.ndarray
+        The direction.
+    eps : float
+        The step length.
+    s_out : numpy.ndarray
+        The slot's row of stored steps.
+    store : bool
+        Write ``s_out``.
+    """
     for j in range(x.shape[0]):
         sj = eps * d[j]
         x[j] = x[j] + sj
@@ -355,9 +578,28 @@ def commit_step(x, d, eps, s_out, store):
 
 @njit(cache=True, nogil=True)
 def pair_products(dc, eps, dd_reg, yidx, yval, lam, n_reg):
-    """For s = eps * d and y = y_sparse + lam * s[:n_reg] (y_sparse on the distinct indices ``yidx``),
-    return (s.y, y.y, s.s). ``dc[k]`` is d at ``yidx[k]``, ``dd_reg`` is sum_{j < n_reg} d_j^2 (from
-    :func:`combine_pass`); the unregularized coordinates j >= n_reg must be among ``yidx``."""
+    """(s.y, y.y, s.s) for s = eps * d and y = y_sparse + lam * s[:n_reg].
+
+    Parameters
+    ----------
+    dc : numpy.ndarray
+        d at ``yidx``.
+    eps : float
+        The step length.
+    dd_reg : float
+        sum_{j < n_reg} d_j^2 (from :func:`combine_pass`).
+    yidx, yval : numpy.ndarray
+        y_sparse on its distinct indices; the unregularized coordinates j >= n_reg must be among them.
+    lam : float
+        The L2 strength.
+    n_reg : int
+        Regularized coordinates.
+
+    Returns
+    -------
+    tuple of float
+        ``(s.y, y.y, s.s)``.
+    """
     ss_reg = eps * eps * dd_reg
     ss = ss_reg
     sy_sparse = 0.0
