@@ -115,7 +115,7 @@ def scoring_sha256(meta: dict) -> str:
 
     References
     ----------
-    A. Rundgren, B. Jordan, S. Erdtman, "JSON Canonicalization Scheme (JCS)", RFC 8785, IETF, 2020.
+    "JSON Canonicalization Scheme (JCS)", RFC 8785, IETF, 2020.
     "Secure Hash Standard (SHS)", FIPS PUB 180-4, NIST, 2015.
     """
     return hashlib.sha256(canonical_json(scoring_fields(meta))).hexdigest()
