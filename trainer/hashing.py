@@ -1,6 +1,6 @@
 """MurmurHash3 x86 32-bit in numba, token building and bucket mapping.
 
-MurmurHash3 is Austin Appleby's public-domain hash ("MurmurHash3", SMHasher project, 2011); this is
+MurmurHash3 is a public-domain hash ("MurmurHash3", SMHasher project, 2011); this is
 the x86 32-bit variant, byte-for-byte equal to the reference ``MurmurHash3_x86_32``. Tokens follow the
 hashing contract in README.md: ``utf8(column) 0x1F utf8(value)`` for categorical values,
 ``token(a) 0x1E token(b)`` for crosses; bucket = hash mod 2^bits.
