@@ -8,13 +8,13 @@ from __future__ import annotations
 
 import argparse
 import json
-import math
 import sys
 
 import pyarrow as pa
 
 from trainer import __version__, api
 from trainer.errors import Interrupted, UserError
+from trainer.training import format_cell
 
 
 class _Parser(argparse.ArgumentParser):
@@ -126,13 +126,6 @@ def build_parser() -> argparse.ArgumentParser:
     return top
 
 
-def _fmt(v, spec=".5f") -> str:
-    """``v`` formatted by ``spec``, or "-" (right-aligned to the spec's width) when not a finite number."""
-    if isinstance(v, (int, float)) and math.isfinite(v):
-        return format(v, spec)
-    return format("-", f">{spec.split('.')[0]}")
-
-
 def format_summary(s: dict) -> str:
     """A readable evaluation summary (our own layout).
 
@@ -148,25 +141,25 @@ def format_summary(s: dict) -> str:
     """
     lines = [f"rows {s.get('rows', 0):,}   positives {s.get('positives', 0):,}"]
     if "log_loss" in s:
-        lines += [f"  log-loss            {_fmt(s['log_loss'])}",
-                  f"  normalized entropy  {_fmt(s['normalized_entropy'])}",
-                  f"  AUC                 {_fmt(s['auc'])}",
-                  f"  Brier score         {_fmt(s['brier'])}",
-                  f"  predicted/observed  {_fmt(s['calibration_ratio'], '.4f')}",
-                  f"  calibration error   {_fmt(s['ece'])}  (expected, over {len(s['bins'])} equal-weight bins)",
-                  f"  error rate          {_fmt(s['error_rate'], '.4f')} at 0.5, "
-                  f"{_fmt(s['error_rate_at_base_rate'], '.4f')} at the base-rate threshold"]
+        lines += [f"  log-loss            {format_cell(s['log_loss'])}",
+                  f"  normalized entropy  {format_cell(s['normalized_entropy'])}",
+                  f"  AUC                 {format_cell(s['auc'])}",
+                  f"  Brier score         {format_cell(s['brier'])}",
+                  f"  predicted/observed  {format_cell(s['calibration_ratio'], '.4f')}",
+                  f"  calibration error   {format_cell(s['ece'])}  (expected, over {len(s['bins'])} equal-weight bins)",
+                  f"  error rate          {format_cell(s['error_rate'], '.4f')} at 0.5, "
+                  f"{format_cell(s['error_rate_at_base_rate'], '.4f')} at the base-rate threshold"]
     if "margin" in s:
         m = s["margin"]
-        lines += [f"  squared-hinge loss  {_fmt(s['squared_hinge_loss'])}",
-                  f"  AUC (margins)       {_fmt(m['auc'])}",
-                  f"  error rate          {_fmt(m['error_rate'], '.4f')} at margin 0"]
+        lines += [f"  squared-hinge loss  {format_cell(s['squared_hinge_loss'])}",
+                  f"  AUC (margins)       {format_cell(m['auc'])}",
+                  f"  error rate          {format_cell(m['error_rate'], '.4f')} at margin 0"]
     if s.get("segments"):
         lines.append(f"\n  {'value':<24} {'rows':>10} {'observed':>9} {'predicted':>9} {'pred/obs':>9} {'log-loss':>9}")
         for r in s["segments"]:
-            lines.append(f"  {str(r['value'])[:24]:<24} {r['rows']:>10,} {_fmt(r['observed_rate'], '9.5f')} "
-                         f"{_fmt(r['mean_prediction'], '9.5f')} {_fmt(r['calibration_ratio'], '9.4f')} "
-                         f"{_fmt(r['log_loss'], '9.5f')}")
+            lines.append(f"  {str(r['value'])[:24]:<24} {r['rows']:>10,} {format_cell(r['observed_rate'], '9.5f')} "
+                         f"{format_cell(r['mean_prediction'], '9.5f')} {format_cell(r['calibration_ratio'], '9.4f')} "
+                         f"{format_cell(r['log_loss'], '9.5f')}")
     return "\n".join(lines)
 
 

@@ -255,6 +255,14 @@ class _StopFlag:
             signal.signal(s, h)
 
 
+def format_cell(v, spec: str = ".5f") -> str:
+    """A table cell: ``v`` formatted by ``spec``, or "-" right-aligned to the spec's width when ``v``
+    is not a finite number (a missing metric). Used by the per-pass table and the CLI's summaries."""
+    if isinstance(v, (int, float)) and math.isfinite(v):
+        return format(v, spec)
+    return format("-", f">{spec.split('.')[0]}")
+
+
 def _off_calibration(holdout: dict | None) -> float | None:
     """The holdout's predicted/observed ratio when it lies outside ``CALIBRATED``, else None."""
     ratio = (holdout or {}).get("calibration_ratio")
@@ -746,11 +754,7 @@ class Trainer:
         loss = h.get("log_loss", h.get("squared_hinge_loss"))
         flagged = _off_calibration(h) is not None
 
-        def f(v, spec):
-            if isinstance(v, (int, float)) and math.isfinite(v):
-                return format(v, spec)
-            return format("-", f">{spec.split('.')[0]}")
-
+        f = format_cell
         return (f"{rec['pass']:>4} {rec['rows']:>11,} {f(rec['progressive_loss'], '11.5f')} {f(loss, '13.5f')} "
                 f"{f(h.get('normalized_entropy'), '9.4f')} {f(h.get('auc', margin.get('auc')), '7.4f')} "
                 f"{f(h.get('calibration_ratio'), '8.4f')}{'!' if flagged else ' '} {f(h.get('error_rate', margin.get('error_rate')), '7.4f')} "

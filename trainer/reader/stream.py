@@ -268,7 +268,7 @@ class Reader:
         f = self.files[0]
         cols = [feat.column for feat in self.spec.features]
         if all(f.schema.get_field_index(c) >= 0 for c in cols):
-            Featurizer(self.spec).transform(pa.schema([f.schema.field(c) for c in cols]).empty_table(), str(f.path))
+            self.featurizer.transform(pa.schema([f.schema.field(c) for c in cols]).empty_table(), str(f.path))
 
     def watch(self, observer) -> None:
         """Show an observer every chunk of rows hashed from now on (:meth:`Featurizer.watch`).
