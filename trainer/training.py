@@ -42,7 +42,6 @@ from tqdm import tqdm
 
 from trainer.errors import Diverged, Interrupted, UserError
 from trainer.evaluation import evaluate
-from trainer.hashing import hash_bytes
 from trainer.metrics import fit_platt
 from trainer.model import Model
 from trainer.reader.examples import BucketExamples
@@ -586,14 +585,11 @@ class Trainer:
         """The solver's Diverged message, naming a numeric column without edges whose huge values in
         the diverging batch are the likely cause."""
         worst, name = HUGE_NUMERIC, None
-        mask = self.spec.n_buckets - 1
-        for f in self.spec.features:
-            if f.kind != "numeric" or f.edges:
-                continue
-            at = batch.indices == (hash_bytes(f.column.encode("utf-8"), self.spec.seed) & mask)
+        for column, bucket in self.reader.featurizer.value_buckets().items():
+            at = batch.indices == bucket
             big = float(np.abs(batch.data[at]).max()) if at.any() else 0.0
             if big > worst:
-                worst, name = big, f.column
+                worst, name = big, column
         if name is None:
             return exc
         return Diverged(f"{exc}; column '{name}' reaches {worst:.3g} in that batch: give it \"transform\": "

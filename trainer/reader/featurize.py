@@ -16,7 +16,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from trainer.errors import UserError
-from trainer.hashing import cross_tokens, hash_tokens
+from trainer.hashing import cross_tokens, hash_bytes, hash_tokens
 from trainer.reader._kernels import scatter_rows
 from trainer.spec import Feature, Spec
 
@@ -194,6 +194,18 @@ class Featurizer:
         self.mask = np.uint32(spec.n_buckets - 1)
         self.prefixes = {f.column: np.frombuffer(f.column.encode("utf-8") + b"\x1f", dtype=np.uint8)
                          for f in spec.features}
+
+    def value_buckets(self) -> dict[str, int]:
+        """The bucket of each numeric feature without edges, whose one token is its column name and
+        whose entry is the (transformed) value itself.
+
+        Returns
+        -------
+        dict of str to int
+            Column name to bucket, by the hashing contract.
+        """
+        return {f.column: int(hash_bytes(self.prefixes[f.column][:-1].tobytes(), int(self.seed)) & int(self.mask))
+                for f in self.spec.features if f.kind == "numeric" and f.edges is None}
 
     def watch(self, observer) -> None:
         """Show an observer every chunk hashed from now on.
