@@ -17,7 +17,8 @@ from trainer.training import CALIBRATED, TrainOptions, Trainer
 def test_progress_bar_on_a_terminal_and_never_in_a_pipe(small_log, tmp_path):
     # stderr is a pseudo-terminal (the standard library's pty), stdout a pipe: the bar must show the
     # rows, the rate and the running progressive loss on the terminal, and stdout must carry the
-    # per-pass table only (no carriage returns, no bar)
+    # per-pass table only (no carriage returns, no bar). Reference: the README's promise; drawing a
+    # progress bar only on a terminal is common practice for command-line tools.
     root, spec = small_log
     master, slave = pty.openpty()
     fcntl.ioctl(slave, termios.TIOCSWINSZ, struct.pack("HHHH", 24, 160, 0, 0))  # a terminal's size
