@@ -59,8 +59,8 @@ def test_a_pass_outside_the_calibration_band_is_marked_with_a_note(small_log, tm
            "holdout": {"log_loss": 0.4, "normalized_entropy": 0.9, "auc": 0.7, "calibration_ratio": 2.36,
                        "error_rate": 0.1}}
     assert not CALIBRATED[0] <= 2.36 <= CALIBRATED[1]
-    marked = trainer._table_row(rec)
+    marked = trainer.table_row(rec)
     rec["holdout"]["calibration_ratio"] = 1.02
-    plain = trainer._table_row(rec)
+    plain = trainer.table_row(rec)
     assert "2.3600!" in marked and "1.0200 " in plain and "!" not in plain
-    assert len(marked) == len(plain) == len(trainer._table_header())
+    assert len(marked) == len(plain) == len(trainer.table_header())

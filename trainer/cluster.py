@@ -686,8 +686,8 @@ class ClusterTrainer(Trainer):
             st.best_pass, st.best_score = st.pass_index, holdout.get("log_loss", holdout.get("squared_hinge_loss"))
         self.folder.save_model(self.current_model(holdout))
         self.folder.append_metrics(record)
-        self.log(self._table_row({**record, "progressive_loss": pv if pv is not None else data_loss}))
-        self._save_checkpoint()
+        self.log(self.table_row({**record, "progressive_loss": pv if pv is not None else data_loss}))
+        self.save_checkpoint()
 
     def run(self) -> TrainResult:
         """Train (pass 1, then the refinement iterations).
@@ -721,7 +721,7 @@ class ClusterTrainer(Trainer):
         if st.pass_index == 0:
             self.log("pass 1: one online pass per shard, averaged by rows; passes 2..: full-batch L-BFGS "
                      "iterations (train loss: progressive in pass 1, full-batch after)")
-            self.log(self._table_header())
+            self.log(self.table_header())
         shards = self._load(self.reader, True)
         self._holdout_shards = self._load(self.holdout, False) if self.holdout is not None else []
         self._rows, bad, positives = _tree_reduce(client, _map(client, _shard_counts, shards), _add_triples)
@@ -758,7 +758,7 @@ class ClusterTrainer(Trainer):
                 if self.solver.task != Refinement.NEW_POINT:
                     self.log("full-batch L-BFGS: converged" if self.solver.task == Refinement.CONVERGED
                              else f"full-batch L-BFGS stopped (code {self.solver.arrays['task'].tolist()})")
-                    self._save_checkpoint()
+                    self.save_checkpoint()
                     break
                 self._pass_done(started, calls, self._data_loss, None)
         st.stopped_early = st.pass_index < opt.refine_iterations + 1

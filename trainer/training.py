@@ -315,13 +315,7 @@ class Trainer:
         self.data = str(data)
         self.holdout_path = str(holdout) if holdout is not None else (
             self.data if (options.holdout_start or options.holdout_end) else None)
-        self.reader = Reader(spec, data, options.start, options.end, batch_rows=options.batch_rows,
-                             shuffle_rows=options.shuffle_buffer, seed=options.seed,
-                             negative_keep_rate=options.negative_keep_rate,
-                             skip_bad_labels=options.skip_bad_labels)
-        self.holdout = (Reader(spec, self.holdout_path, options.holdout_start, options.holdout_end,
-                               batch_rows=65536, skip_bad_labels=options.skip_bad_labels)
-                        if self.holdout_path else None)
+        self.reader, self.holdout = self.readers(spec, data, options, self.holdout_path)
         self.solver = make_solver(options.solver, spec.n_buckets, options.loss, options.l2_strength,
                                   history=options.history, step0=options.step0, seed=options.seed)
         self.state = _State()
@@ -332,12 +326,40 @@ class Trainer:
         self.memory = None
         averaged = options.solver == "olbfgs" and options.full_batch_memory > 0
         self.average = np.zeros(spec.n_buckets + 1) if averaged else None
+        self._since_checkpoint = 0
+        self._window = [0.0, 0.0]
         try:
             self._prepare_folder(force)
         except BaseException:
             self.folder.release()
             raise
         self.reader.watch(self.examples)
+
+    @staticmethod
+    def readers(spec: Spec, data: str | Path, options: TrainOptions, holdout: str | None) -> tuple:
+        """The training log's Reader and the holdout's (None without one), as a run of these options reads them.
+
+        Parameters
+        ----------
+        spec : Spec
+            The feature spec.
+        data : str or Path
+            The training log.
+        options : TrainOptions
+            The options (dates, batch rows, shuffling, sampling, bad labels).
+        holdout : str or None
+            The holdout log's path.
+
+        Returns
+        -------
+        tuple of (trainer.reader.stream.Reader, trainer.reader.stream.Reader or None)
+        """
+        reader = Reader(spec, data, options.start, options.end, batch_rows=options.batch_rows,
+                        shuffle_rows=options.shuffle_buffer, seed=options.seed,
+                        negative_keep_rate=options.negative_keep_rate, skip_bad_labels=options.skip_bad_labels)
+        held = (Reader(spec, holdout, options.holdout_start, options.holdout_end, batch_rows=65536,
+                       skip_bad_labels=options.skip_bad_labels) if holdout else None)
+        return reader, held
 
     # -- the model folder -------------------------------------------------------------------------
 
@@ -432,7 +454,7 @@ class Trainer:
             kept += "; continue with --resume once the cause is fixed, or start over with --force"
         return type(exc)(f"{exc}; {kept}")
 
-    def _save_checkpoint(self) -> None:
+    def save_checkpoint(self) -> None:
         arrays = {f"solver.{k}": np.asarray(v) for k, v in self.solver.state(copy=False).items()}
         if self.average is not None:
             arrays["average.sum"] = self.average
@@ -527,26 +549,38 @@ class Trainer:
         """
         st = self.state
         try:
-            if st.pass_index == 0 and st.position is None and not self.resume:
-                self.log(self._table_header())
-                batches = -(-self.reader.total_rows // self.opt.batch_rows)
-                if self._full_batch_allowed() and batches <= TINY_BATCHES and not st.phases:
-                    self._choose_phase("full-batch", f"a tiny log: {self.reader.total_rows:,} rows, at most "
-                                       f"{TINY_BATCHES} batches of {self.opt.batch_rows}")
+            if self.fresh:
+                self.log(self.table_header())
+            self.start()
             with _StopFlag() as stop:
                 while st.pass_index < self.opt.epochs and not st.stopped_early:
                     started = time.monotonic()
                     fitted = None
                     if st.phase == "full-batch":
-                        fitted = self._full_batch_pass(stop)
+                        fitted = self.full_batch_pass(stop)
                     if fitted is None:
                         self._one_pass(stop)
-                    self._finish_pass(time.monotonic() - started, fitted)
+                    self.finish_pass(time.monotonic() - started, fitted)
             return self._result(self._final_model())
         except UserError as exc:
             raise self._refused(exc) from None
         finally:
             self.folder.release()
+
+    @property
+    def fresh(self) -> bool:
+        """Whether the run starts at the beginning (not resumed from a checkpoint)."""
+        return self.state.pass_index == 0 and self.state.position is None and not self.resume
+
+    def start(self) -> None:
+        """Before the first pass of a fresh run: train a tiny log full-batch from the start (a no-op otherwise)."""
+        st = self.state
+        if not self.fresh or st.phases:
+            return
+        batches = -(-self.reader.total_rows // self.opt.batch_rows)
+        if self._full_batch_allowed() and batches <= TINY_BATCHES:
+            self._choose_phase("full-batch", f"a tiny log: {self.reader.total_rows:,} rows, at most "
+                               f"{TINY_BATCHES} batches of {self.opt.batch_rows}")
 
     def _full_batch_allowed(self) -> bool:
         return self.opt.solver == "olbfgs" and self.opt.full_batch_memory > 0
@@ -554,7 +588,7 @@ class Trainer:
     def _budget(self) -> int:
         return self.opt.full_batch_memory * 2**20
 
-    def _full_batch_pass(self, stop: _StopFlag) -> dict | None:
+    def full_batch_pass(self, stop: _StopFlag) -> dict | None:
         """One full-batch pass (reads the log into memory first when needed); returns its summary, or
         None after switching back to online passes when the log turned out not to fit the budget.
         Raises Interrupted on SIGINT/SIGTERM, keeping the checkpoint of the last finished pass."""
@@ -595,57 +629,94 @@ class Trainer:
         return Diverged(f"{exc}; column '{name}' reaches {worst:.3g} in that batch: give it \"transform\": "
                         "\"log1p\" or \"edges\" in the spec")
 
+    def take(self, batch) -> bool:
+        """Step the solver on one batch of the current pass and count it (progressive loss, progress
+        curve, first-pass class counts, iterate average).
+
+        Parameters
+        ----------
+        batch : trainer.reader.stream.Batch
+            The pass's next batch.
+
+        Returns
+        -------
+        bool
+            True when ``checkpoint_every`` rows have gone by since the last checkpoint (the caller saves one).
+
+        Raises
+        ------
+        Diverged
+            When the step would make the loss, gradient or weights non-finite.
+        """
+        st = self.state
+        try:
+            loss = self.solver.step(batch)
+        except Diverged as exc:
+            raise self._diverged(exc, batch) from None
+        if st.pass_index == 0:
+            pos = int(np.count_nonzero(batch.labels))
+            st.positives += pos
+            st.negatives += batch.n_rows - pos
+            st.entries += batch.indices.shape[0]
+        w = float(batch.weights.sum())
+        st.pv_loss += loss * w
+        st.pv_weight += w
+        self._window[0] += loss * w
+        self._window[1] += w
+        st.rows_in_pass += batch.n_rows
+        st.rows_total += batch.n_rows
+        st.steps += 1
+        st.position = batch.position
+        self._since_checkpoint += batch.n_rows
+        if self.average is not None:
+            self._average(st.rows_in_pass)
+        point_rows = max(self.reader.total_rows // PROGRESS_POINTS_PER_PASS, self.opt.batch_rows)
+        if self._window[1] and (st.rows_in_pass // point_rows) != ((st.rows_in_pass - batch.n_rows) // point_rows):
+            st.progress.append({"rows": st.rows_total, "loss": self._window[0] / self._window[1]})
+            self._window = [0.0, 0.0]
+        if self._since_checkpoint >= self.opt.checkpoint_every:
+            self._since_checkpoint = 0
+            return True
+        return False
+
+    def interrupted(self, signum: int) -> Interrupted:
+        """Save a checkpoint after a signal stopped an online pass; the Interrupted error to raise.
+
+        Parameters
+        ----------
+        signum : int
+            The signal.
+
+        Returns
+        -------
+        trainer.errors.Interrupted
+        """
+        self.save_checkpoint()
+        st = self.state
+        return Interrupted(f"{signal.Signals(signum).name}: stopped in pass {st.pass_index + 1} after "
+                           f"{st.rows_in_pass:,} rows; checkpoint saved in {self.folder.checkpoint}; continue "
+                           "with the same command plus --resume")
+
     def _one_pass(self, stop: _StopFlag) -> None:
-        st, opt = self.state, self.opt
-        since_ckpt = 0
-        point_rows = max(self.reader.total_rows // PROGRESS_POINTS_PER_PASS, opt.batch_rows)
-        window_loss = window_w = 0.0
+        st = self.state
         bar = tqdm(total=self.reader.total_rows, initial=st.rows_in_pass, unit="rows", unit_scale=True,
-                   desc=f"pass {st.pass_index + 1}/{opt.epochs}",
+                   desc=f"pass {st.pass_index + 1}/{self.opt.epochs}",
                    disable=self.quiet or not sys.stderr.isatty(),
                    mininterval=0.5, leave=False, dynamic_ncols=True)
         shown = -math.inf
         for batch in self.reader.batches(st.pass_index, st.position):
-            try:
-                loss = self.solver.step(batch)
-            except Diverged as exc:
-                raise self._diverged(exc, batch) from None
-            if st.pass_index == 0:
-                pos = int(np.count_nonzero(batch.labels))
-                st.positives += pos
-                st.negatives += batch.n_rows - pos
-                st.entries += batch.indices.shape[0]
-            w = float(batch.weights.sum())
-            st.pv_loss += loss * w
-            st.pv_weight += w
-            window_loss += loss * w
-            window_w += w
-            st.rows_in_pass += batch.n_rows
-            st.rows_total += batch.n_rows
-            st.steps += 1
-            st.position = batch.position
-            since_ckpt += batch.n_rows
-            if self.average is not None:
-                self._average(st.rows_in_pass)
-            if window_w and (st.rows_in_pass // point_rows) != ((st.rows_in_pass - batch.n_rows) // point_rows):
-                st.progress.append({"rows": st.rows_total, "loss": window_loss / window_w})
-                window_loss = window_w = 0.0
+            if self.take(batch):
+                self.save_checkpoint()
             bar.update(batch.n_rows)
             if time.monotonic() - shown > 0.5:
                 bar.set_postfix_str(f"progressive loss {st.pv_loss / st.pv_weight:.5f}")
                 shown = time.monotonic()
-            if since_ckpt >= opt.checkpoint_every:
-                self._save_checkpoint()
-                since_ckpt = 0
             if stop.signal is not None:
                 bar.close()
-                self._save_checkpoint()
-                name = signal.Signals(stop.signal).name
-                raise Interrupted(f"{name}: stopped in pass {st.pass_index + 1} after {st.rows_in_pass:,} rows; "
-                                  f"checkpoint saved in {self.folder.checkpoint}; continue with the same command plus --resume")
+                raise self.interrupted(stop.signal)
         bar.close()
 
-    def _finish_pass(self, train_seconds: float, fitted: dict | None = None) -> None:
+    def finish_pass(self, train_seconds: float, fitted: dict | None = None) -> None:
         """Evaluate, record and checkpoint the pass just run (``fitted``: a full-batch pass's summary)."""
         st = self.state
         if st.pass_index == 0 and not self.opt.allow_one_class and not (st.positives and st.negatives):
@@ -673,7 +744,7 @@ class Trainer:
                 if st.bad_passes >= self.opt.patience and st.pass_index < self.opt.epochs:
                     st.stopped_early = True
         self.folder.append_metrics(record)
-        self.log(self._table_row(record))
+        self.log(self.table_row(record))
         ratio = _off_calibration(holdout)
         if ratio is not None:
             self.log(f"  ! pass {st.pass_index}: the holdout's mean prediction is {ratio:.2f}x its observed rate "
@@ -684,12 +755,13 @@ class Trainer:
         if st.pass_index == 1:
             st.rows_first_pass = st.rows_in_pass
         st.position, st.rows_in_pass, st.pv_loss, st.pv_weight = None, 0, 0.0, 0.0
+        self._since_checkpoint, self._window = 0, [0.0, 0.0]
         if st.pass_index == 1 and st.phase == "online" and self._full_batch_allowed() and st.pass_index < self.opt.epochs:
             size = full_batch.log_bytes(st.rows_total, st.entries)
             if size <= self._budget():
                 self._choose_phase("full-batch", f"the hashed log takes {size / 2**20:.0f} MB in memory, within "
                                    f"--full-batch-memory {self.opt.full_batch_memory} MB")
-        self._save_checkpoint()
+        self.save_checkpoint()
 
     def _final_model(self) -> Model:
         st = self.state
@@ -740,11 +812,11 @@ class Trainer:
         if not self.quiet:
             print(line, flush=True)
 
-    def _table_header(self) -> str:
+    def table_header(self) -> str:
         return (f"{'pass':>4} {'rows':>11} {'train loss':>11} {'holdout loss':>13} {'norm.ent':>9} "
                 f"{'AUC':>7} {'pred/obs':>9} {'error':>7} {'train s':>8} {'eval s':>7}  {'phase':<10}")
 
-    def _table_row(self, rec: dict) -> str:
+    def table_row(self, rec: dict) -> str:
         h = rec["holdout"] or {}
         margin = h.get("margin", {})
         loss = h.get("log_loss", h.get("squared_hinge_loss"))
