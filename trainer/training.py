@@ -328,6 +328,7 @@ class Trainer:
         self.average = np.zeros(spec.n_buckets + 1) if averaged else None
         self._since_checkpoint = 0
         self._window = [0.0, 0.0]
+        self._point_rows = max(self.reader.total_rows // PROGRESS_POINTS_PER_PASS, options.batch_rows)
         try:
             self._prepare_folder(force)
         except BaseException:
@@ -455,6 +456,8 @@ class Trainer:
         return type(exc)(f"{exc}; {kept}")
 
     def save_checkpoint(self) -> None:
+        """Write the complete state to ``checkpoint.bin`` (and the progress curve); the rows counted
+        towards the next ``checkpoint_every`` start again from zero."""
         arrays = {f"solver.{k}": np.asarray(v) for k, v in self.solver.state(copy=False).items()}
         if self.average is not None:
             arrays["average.sum"] = self.average
@@ -465,6 +468,7 @@ class Trainer:
                                               "examples": {"values": ex.values, "rows_left": ex.rows_left}},
                                      self.state.progress)
         self._saved = (self.state.pass_index, self.state.rows_in_pass)
+        self._since_checkpoint = 0
 
     # -- the model --------------------------------------------------------------------------------
 
@@ -670,14 +674,11 @@ class Trainer:
         self._since_checkpoint += batch.n_rows
         if self.average is not None:
             self._average(st.rows_in_pass)
-        point_rows = max(self.reader.total_rows // PROGRESS_POINTS_PER_PASS, self.opt.batch_rows)
-        if self._window[1] and (st.rows_in_pass // point_rows) != ((st.rows_in_pass - batch.n_rows) // point_rows):
+        point = self._point_rows
+        if self._window[1] and (st.rows_in_pass // point) != ((st.rows_in_pass - batch.n_rows) // point):
             st.progress.append({"rows": st.rows_total, "loss": self._window[0] / self._window[1]})
             self._window = [0.0, 0.0]
-        if self._since_checkpoint >= self.opt.checkpoint_every:
-            self._since_checkpoint = 0
-            return True
-        return False
+        return self._since_checkpoint >= self.opt.checkpoint_every
 
     def interrupted(self, signum: int) -> Interrupted:
         """Save a checkpoint after a signal stopped an online pass; the Interrupted error to raise.
@@ -755,7 +756,7 @@ class Trainer:
         if st.pass_index == 1:
             st.rows_first_pass = st.rows_in_pass
         st.position, st.rows_in_pass, st.pv_loss, st.pv_weight = None, 0, 0.0, 0.0
-        self._since_checkpoint, self._window = 0, [0.0, 0.0]
+        self._window = [0.0, 0.0]
         if st.pass_index == 1 and st.phase == "online" and self._full_batch_allowed() and st.pass_index < self.opt.epochs:
             size = full_batch.log_bytes(st.rows_total, st.entries)
             if size <= self._budget():
@@ -813,10 +814,22 @@ class Trainer:
             print(line, flush=True)
 
     def table_header(self) -> str:
+        """The per-pass table's header line (the columns of :meth:`table_row`)."""
         return (f"{'pass':>4} {'rows':>11} {'train loss':>11} {'holdout loss':>13} {'norm.ent':>9} "
                 f"{'AUC':>7} {'pred/obs':>9} {'error':>7} {'train s':>8} {'eval s':>7}  {'phase':<10}")
 
     def table_row(self, rec: dict) -> str:
+        """One pass's line of the per-pass table; a predicted/observed ratio outside ``CALIBRATED`` is marked "!".
+
+        Parameters
+        ----------
+        rec : dict
+            The pass's ``metrics.jsonl`` record.
+
+        Returns
+        -------
+        str
+        """
         h = rec["holdout"] or {}
         margin = h.get("margin", {})
         loss = h.get("log_loss", h.get("squared_hinge_loss"))
