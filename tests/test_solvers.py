@@ -284,3 +284,13 @@ def test_default_olbfgs_on_time_ordered_batches_with_a_batch_constant_field():
     ref = reference_optimum(fg, n + 1)
     gap = (fg(np.r_[solver.weights, solver.intercept])[0] - ref.fun) / ref.fun
     assert 0.0 <= gap <= 0.03  # the gap to the scipy optimum; +2.2% measured after three time-ordered passes
+
+
+def test_damping_grows_with_the_entries_a_row():
+    # Reference: the rule as documented in trainer.solvers.olbfgs (0.05 / l2 rows up to 20 entries a row,
+    # in proportion beyond), checked on the solver a default run builds (common practice: defaults pinned).
+    solver = make_solver("olbfgs", 64, "logistic", 1e-4)
+    assert solver.damping_rows(5.0) == pytest.approx(500.0) and solver.damping_rows(20.0) == pytest.approx(500.0)
+    assert solver.damping_rows(155.0) == pytest.approx(500.0 * 155.0 / 20.0)
+    fixed = make_solver("olbfgs", 64, "logistic", 1e-4, prior_rows=100.0, prior_entries=0.0)
+    assert fixed.damping_rows(155.0) == 100.0

@@ -24,15 +24,16 @@ Each step, on one batch:
    intercept) is stored; the l2 * s part is rebuilt from s inside the dense passes. Pairs whose s.y is
    not safely positive are skipped.
 
-Initial matrix: diagonal, H0_jj = 1 / (D_j + l2 + prior_rows * D_b / R), where D is a running, then
+Initial matrix: diagonal, H0_jj = 1 / (D_j + l2 + P * D_b / R), where D is a running, then
 exponentially averaged (over about ``curvature_window`` steps) estimate of the batch Gauss-Newton
 diagonal sum_i c_i l''_i x_ij^2 / C (the diagonal Gauss-Newton preconditioner of "Efficient
 BackProp", Neural Networks: Tricks of the Trade, Springer, 1998), D_b its intercept entry (the mean row
 curvature) and R the number of rows seen before this batch. D and R are taken before the current
 batch is folded in, so H_t does not depend on the batch it is applied to (the independence the JMLR 2015
-analysis assumes); the first step uses its own batch. The last term is a damping worth ``prior_rows``
-extra rows of average curvature for every bucket: it keeps the first sightings of a rare bucket from
-taking a huge step, and fades as 1/R, so the fixed point is unchanged.
+analysis assumes); the first step uses its own batch. The last term is a damping worth P =
+``damping_rows(k)`` extra rows of average curvature for every bucket (``prior_rows``, more for rows of
+k > ``prior_entries`` entries on average over the rows seen): it keeps the first sightings of a rare
+bucket from taking a huge step, and fades as 1/R, so the fixed point is unchanged.
 
 Choices, measured with ``scripts/bench_solvers.py`` (synthetic hashed logs: 1M training rows, 200k
 holdout rows, 20 Zipf fields with 3..1e5 values, 2^18 buckets, base rate 5%, batch 4096; the figure is
@@ -64,23 +65,37 @@ converges faster.
 Defaults chosen on the regime matrix of ``scripts/bench_regimes.py`` (logs of many shapes, each
 against its own full-batch optimum; the table is in the README, section Performance). The solver is
 one part of the default; the training loop adds two (``trainer.training``): the model of an online
-pass is the average of the iterates over the pass's last 3/4, and a log whose hashed rows fit
-``--full-batch-memory`` is finished with full-batch L-BFGS-B passes (``trainer.solvers.full_batch``).
-Measured for one online pass, holdout log-loss over LL* (300k rows of the 20-field shape, 2^20
-buckets, unless said):
+pass is the polynomial-decay average of the pass's iterates (eta = 3), and a log whose hashed rows
+fit ``--full-batch-memory`` is finished with full-batch L-BFGS-B passes
+(``trainer.solvers.full_batch``). Measured for one online pass, holdout log-loss over LL*:
 
-* the damping's worth in rows, ``prior_rows`` = 0.05 / l2 (it was a fixed 100 rows): at l2 1e-4,
-  100 / 300 / 500 / 1000 / 3000 rows gave 1.0037 / 1.0036 / 1.0041 / 1.0069 / 1.0130; at l2 1e-5,
-  100 / 300 / 1000 / 3000 / 10000 rows gave 1.0132 / 0.9883 / 0.9835 / 0.9896 / 0.9954 (a weak l2 makes
-  the optimum itself over-fit, so one damped pass can beat it); on the time-ordered drift12 log at l2
-  1e-5 (raw holdout log-loss; AdaGrad at its defaults 0.15503), 949 / 3000 / 5000 / 10000 rows gave
-  0.15661 / 0.15546 / 0.15458 / 0.15469. The weaker the l2, the longer rare buckets need damping;
-* the averaging: at l2 1e-4 and the old damping the last iterate gave 1.0246, the average over the
-  last 1/4 / 1/2 / 3/4 / whole pass 1.0101 / 1.0060 / 1.0037 / 1.0057; going on from the last
-  iterate (not the average) gave 1.0014 / 1.0011 after passes 2 / 3 of online steps, restarting
-  from the average 1.0023 / 1.0021;
-* not taken: step0 0.6 (last iterate 1.0884, average 1.0041), t0 100 (1.1572, 1.0036), step0 0.1 on
-  the drift log (0.2137 raw against 0.1546).
+* the damping's worth in rows, 0.05 / l2 x max(1, k / 20) for rows of k entries on average
+  (:meth:`OnlineLBFGS.damping_rows`; it was a fixed 100 rows, then 0.05 / l2). Worth 0.25 / 0.5 / 1 /
+  2 / 5 x 0.05 / l2 rows (the pass averaged over its last 3/4), it gave: on rows of 155 entries
+  (tags200, l2 1e-4) 1.1958 / 1.1683 / 1.0682 / 1.0213 / 1.0011 at 0.5 .. 10 x, i.e. 250 .. 5000 rows;
+  on 80 dense ordinal columns (ordinal80) 1.0029 / 1.0030 / 1.0026 / 1.0017 / 1.0055 over the same
+  rows; on the 20-field benchmark at l2 1e-4 (21 entries) 1.0035 / 1.0041 / 1.0069 / 1.0110 / 1.0152;
+  on the time-ordered drift12 log at l2 1e-5 (13 entries) 2500 .. 50000 rows gave 1.0096 / 1.0050 /
+  1.0058 / 1.0159 / 1.0532, shuffled 1.0011 / 1.0031 / 1.0051 / 1.0070 / 1.0090; on rare positives
+  (l2 1e-5) 1.0097 / 1.0097 / 1.0113 / 1.0122 / 1.0171. The weaker the l2, the longer rare buckets
+  need damping, and the more entries a row has, the more of them move together (the Gauss-Newton
+  diagonal misses their shared curvature by up to k-fold). Damping in proportion to k alone (0.0025 k
+  / l2 rows) took the time-ordered drift log to 1.0101, hence the floor of 0.05 / l2;
+* the average, with that damping: last iterate / uniform average over the pass's last 3/4 /
+  polynomial-decay average (eta = 3) gave 1.0148 / 1.0042 / 1.0040 (benchmark, l2 1e-4), 0.9882 /
+  0.9924 / 0.9889 (l2 1e-5, where the optimum itself over-fits, so one damped pass can beat it),
+  0.9997 / 1.0050 / 1.0025 (drift, time order), 1.0011 / 1.0031 / 1.0014 (drift, shuffled), 1.0437 /
+  1.0016 / 1.0030 (ordinal80), 1.0503 / 1.0241 / 1.0298 (the shipped demo, time order), 0.9932 /
+  1.0097 / 0.9968 (rare positives), 1.0541 / 0.9980 / 1.0009 (tags200): the polynomial average has
+  the smallest worst case (1.0040 against 1.0097 for the uniform one). eta = 8 was better on rare
+  positives and shuffled logs and worse on ordinal80 and the demo (1.0054, 1.0427). Going on from
+  the last iterate rather than the average (measured with the uniform average, old damping) gave
+  1.0014 / 1.0011 after passes 2 / 3 of online steps, restarting from the average 1.0023 / 1.0021;
+* not taken: t0 50 (with the rule and the polynomial average: tags200 1.0174, the demo 1.0665);
+  choosing between the last iterate and the average by their progressive loss over the pass's last
+  quarter (right on 7 of 8 logs, but on the time-ordered demo it picked the last iterate, 1.0503);
+  step0 0.6 (last iterate 1.0884, average 1.0041), t0 100 (1.1572, 1.0036), step0 0.1 on the drift
+  log (0.2137 raw against 0.1546): all with the earlier damping.
 """
 
 from __future__ import annotations
@@ -98,10 +113,11 @@ from trainer.solvers._olbfgs_kernels import (CHUNK, chunk_pointers, commit_step,
 
 
 def default_prior_rows(l2: float) -> float:
-    """The damping's default worth in rows, 0.05 / l2.
+    """The damping's default worth in rows for rows of up to ``prior_entries`` entries, 0.05 / l2.
 
     500 rows at l2 = 1e-4, 5000 at 1e-5, 50000 at 1e-6; at most 1e6; chosen on the regime matrix of
-    ``scripts/bench_regimes.py`` (module docstring).
+    ``scripts/bench_regimes.py`` (module docstring). :meth:`OnlineLBFGS.damping_rows` scales it with
+    the entries a row.
 
     Parameters
     ----------
@@ -142,6 +158,9 @@ class OnlineLBFGS(LinearSolver):
         Steps, [1, 1e12].
     prior_rows : float, optional
         Damping in rows of average curvature, [0, 1e12]; default :func:`default_prior_rows` of l2.
+    prior_entries : float, default 20
+        Rows with more entries than this on average get proportionally more damping (see
+        :meth:`damping_rows`), [0, 1e12]; 0 keeps the damping at ``prior_rows``.
     armijo : float, default 0.1
         Sufficient-decrease constant, (0, 0.5].
     pair_dtype : {"float32", "float64"}
@@ -159,12 +178,13 @@ class OnlineLBFGS(LinearSolver):
     """
 
     method = "olbfgs"
-    OPTIONS = ("t0", "curvature_window", "prior_rows", "armijo", "pair_dtype")
+    OPTIONS = ("t0", "curvature_window", "prior_rows", "prior_entries", "armijo", "pair_dtype")
     MAX_BACKTRACKS = 30
 
     def __init__(self, n_features: int, loss: str, l2: float, *, history: int = 10,
                  step0: float | None = None, t0: float = 20.0, curvature_window: float = 100.0,
-                 prior_rows: float | None = None, armijo: float = 0.1, pair_dtype: str = "float32"):
+                 prior_rows: float | None = None, prior_entries: float = 20.0, armijo: float = 0.1,
+                 pair_dtype: str = "float32"):
         super().__init__(n_features, loss, l2)
         self.history = check_int("--history", history, 1, 100)
         self.step0 = check_float("--step0", 0.3 if step0 is None else step0, 0.0, lo_open=True)
@@ -172,6 +192,7 @@ class OnlineLBFGS(LinearSolver):
         self.curvature_window = check_float("curvature_window", curvature_window, 1.0, 1e12)
         self.prior_rows = check_float("prior_rows", default_prior_rows(self.l2) if prior_rows is None else prior_rows,
                                       0.0, 1e12)
+        self.prior_entries = check_float("prior_entries", prior_entries, 0.0, 1e12)
         self.armijo = check_float("armijo", armijo, 0.0, 0.5, lo_open=True)
         self.pair_dtype = check_choice("pair_dtype", pair_dtype, ("float32", "float64"))
         self.seconds = {"gradient": 0.0, "direction": 0.0, "line_search": 0.0, "update": 0.0}
@@ -187,6 +208,7 @@ class OnlineLBFGS(LinearSolver):
         self._count = 0
         self._head = 0
         self._rows = 0
+        self._entries = 0
         self._diag = np.zeros(size, dtype=np.float64)
         self._diag_scale = 1.0
         self._q = np.empty(size, dtype=np.dtype(self.pair_dtype))
@@ -231,13 +253,14 @@ class OnlineLBFGS(LinearSolver):
         scatter_compact_squares(batch.indptr, g0.slot, batch.data, h, 1.0 / g0.weight_sum, curv)
         beta = 1.0 - 1.0 / min(self.t + 1.0, self.curvature_window)
         rows = self._rows + batch.n_rows
+        entries = self._entries + batch.indices.shape[0]
         if self.t == 0:
             diag = np.zeros_like(self._diag)
             scale = fold_diagonal(diag, 1.0, beta, g0.cols, curv, hb)
-            seen = rows
+            seen, seen_entries = rows, entries
         else:
-            diag, scale, seen = self._diag, self._diag_scale, self._rows
-        damp = self.prior_rows * scale * diag[n] / seen
+            diag, scale, seen, seen_entries = self._diag, self._diag_scale, self._rows, self._entries
+        damp = self.damping_rows(seen_entries / seen) * scale * diag[n] / seen
         gradient_done = clock()
 
         q = self._q
@@ -259,7 +282,7 @@ class OnlineLBFGS(LinearSolver):
         searched = clock()
         if eps == 0.0:
             self._fold(beta, g0.cols, curv, hb)
-            self._finish(rows, started, gradient_done, direction_done, searched, searched)
+            self._finish(rows, entries, started, gradient_done, direction_done, searched, searched)
             return g0.loss
         r1 = np.empty(batch.n_rows, dtype=np.float64)
         line_residuals(self.code, batch.labels, batch.weights, g0.z, u, -eps, r1)
@@ -282,8 +305,34 @@ class OnlineLBFGS(LinearSolver):
             self._store_y(k, gcols, ysp, gptr)
             self._head = (k + 1) % self.history
             self._count = min(self._count + 1, self.history)
-        self._finish(rows, started, gradient_done, direction_done, paired, clock())
+        self._finish(rows, entries, started, gradient_done, direction_done, paired, clock())
         return g0.loss
+
+    def damping_rows(self, entries_per_row: float) -> float:
+        """The damping's worth in rows for rows of this many entries on average.
+
+        ``prior_rows`` x max(1, entries_per_row / ``prior_entries``): with k entries a row, the Gauss-Newton
+        diagonal underestimates the curvature along directions that the k entries share by up to a
+        factor k (Gershgorin's bound on the diagonally scaled matrix), so the first sightings of a row's
+        rare buckets need holding back k-fold longer. Measured on the regime matrix (module docstring).
+
+        Parameters
+        ----------
+        entries_per_row : float
+            Mean entries a row in the rows seen so far.
+
+        Returns
+        -------
+        float
+            Rows of average curvature.
+
+        References
+        ----------
+        "Über die Abgrenzung der Eigenwerte einer Matrix", Bulletin de l'Académie des Sciences de l'URSS, 1931.
+        """
+        if self.prior_entries <= 0.0:
+            return self.prior_rows
+        return self.prior_rows * max(1.0, entries_per_row / self.prior_entries)
 
     def _fold(self, beta: float, cols, curv, curv_last: float) -> None:
         """Fold this batch's Gauss-Newton diagonal into the running one (after the step used the old one)."""
@@ -311,12 +360,13 @@ class OnlineLBFGS(LinearSolver):
             self._diverged("the objective at every trial step")
         return 0.0
 
-    def _finish(self, rows, started, gradient_done, direction_done, searched, done) -> None:
+    def _finish(self, rows, entries, started, gradient_done, direction_done, searched, done) -> None:
         """Count the step and add its phase times to ``seconds`` (sparse gradient and curvature
         work, the dense passes of the direction, the line search with the new curvature pair, the
         dense weight update)."""
         self.t += 1
         self._rows = rows
+        self._entries = entries
         sec = self.seconds
         sec["gradient"] += gradient_done - started
         sec["direction"] += direction_done - gradient_done
@@ -351,6 +401,7 @@ class OnlineLBFGS(LinearSolver):
     def _options(self) -> dict:
         return {"history": self.history, "step0": self.step0, "t0": self.t0,
                 "curvature_window": self.curvature_window, "prior_rows": self.prior_rows,
+                "prior_entries": self.prior_entries,
                 "armijo": self.armijo, "pair_dtype": self.pair_dtype}
 
     def _extra_state(self) -> dict:
@@ -360,7 +411,7 @@ class OnlineLBFGS(LinearSolver):
         yval = np.concatenate([self._y_val[k, :self._y_len[k]] for k in range(self.history)])
         return {"S": self._S, "rho": self._rho, "y_indptr": yptr, "y_index": yidx,
                 "y_value": yval, "gram": self._G, "s_dot_w": self._z, "count": self._count,
-                "head": self._head, "rows": self._rows, "diag": self._diag, "diag_scale": self._diag_scale}
+                "head": self._head, "rows": self._rows, "entries": self._entries, "diag": self._diag, "diag_scale": self._diag_scale}
 
     def _load_extra(self, state: dict) -> None:
         S = np.asarray(state["S"])
@@ -379,5 +430,6 @@ class OnlineLBFGS(LinearSolver):
         self._G[:] = state["gram"]
         self._z[:] = state["s_dot_w"]
         self._rows = int(state["rows"])
+        self._entries = int(state["entries"])
         self._diag[:] = state["diag"]
         self._diag_scale = float(state["diag_scale"])
