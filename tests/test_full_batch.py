@@ -10,11 +10,14 @@ import pyarrow.parquet as pq
 import pytest
 from sklearn.datasets import load_breast_cancer
 from sklearn.linear_model import LogisticRegression
+from scipy.special import poch
 from sklearn.metrics import log_loss
 
 from conftest import SMALL_SPEC, batch_csr, make_table, reference_objective, reference_optimum
 from trainer import api
 from trainer.reader import Reader
+from trainer.solvers import make_solver
+from trainer.training import AVERAGE_POWER
 
 
 def hashed(spec, path):
@@ -91,3 +94,22 @@ def test_full_batch_after_the_first_pass_and_only_within_the_budget(log_60k, tmp
     recs = [json.loads(x) for x in (tmp_path / "big" / "metrics.jsonl").read_text().splitlines()]
     assert [r["phase"] for r in recs] == ["online", "online"]  # 60k rows x ~8 entries take more than 1 MB
     assert json.loads((tmp_path / "big" / "run.json").read_text())["phases"] == []
+
+
+def test_an_online_pass_gives_the_polynomial_decay_average_of_its_iterates(log_60k, tmp_path):
+    # Reference: the solver replayed outside the training loop on the same batches, its iterates
+    # averaged in numpy with the weights of the polynomial-decay average written out (proportional to
+    # the rising factorial scipy.special.poch(t, eta); "Stochastic Gradient Descent for Non-smooth
+    # Optimization: Convergence Results and Optimal Averaging Schemes", ICML 2013, from memory).
+    data, spec_path = log_60k
+    model = api.train(spec_path, data, tmp_path / "m", batch_rows=1000, epochs=1).model
+    solver = make_solver("olbfgs", model.spec.n_buckets, "logistic", 1e-4)
+    iterates = []
+    for batch in Reader(model.spec, data, batch_rows=1000).batches(0):
+        solver.step(batch)
+        iterates.append(np.append(solver.weights, solver.intercept))
+    assert len(iterates) == 60  # more than a tiny log's 16 batches: an online pass
+    weights = poch(np.arange(1, len(iterates) + 1), AVERAGE_POWER)
+    expected = weights @ np.array(iterates) / weights.sum()
+    np.testing.assert_allclose(np.append(model.weights, model.intercept), expected, rtol=1e-9, atol=1e-12)
+    assert not np.allclose(expected, iterates[-1], rtol=1e-3)  # the average is not the last iterate

@@ -5,12 +5,12 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import scipy.optimize
-from scipy.special import expit, log_expit
+from scipy.special import expit, log_expit, poch
 from sklearn.metrics import log_loss
 
 from conftest import batch_csr
 from trainer.errors import UserError
-from trainer.kernels import (batch_support, curvatures_into, margins_into, predict_margin, regularized_gradient,
+from trainer.kernels import (batch_support, blend_into, curvatures_into, margins_into, predict_margin, regularized_gradient,
                              residuals_into, scatter_compact, scatter_compact_squares)
 from trainer.losses import (loss_code, pointwise_curvature, pointwise_derivative, pointwise_loss)
 from trainer.model import LOSSES
@@ -341,3 +341,18 @@ def test_line_kernels_match_numpy():
     assert sparse_dot(x, 0, np.append(cols, 17), np.append(vals, 0.5), 0, 4) == pytest.approx(
         vals @ x[cols] + 0.5 * x[17], rel=1e-12)
     assert sparse_dot(x[4:], 4, cols[[0, 2]], vals[[0, 2]], 0, 2) == pytest.approx(vals[[0, 2]] @ x[[4, 9]], rel=1e-12)
+
+
+@pytest.mark.parametrize("eta", [0.0, 3.0])
+def test_blend_into_gives_the_polynomial_decay_average(eta):
+    rng = np.random.default_rng(44)
+    iterates = rng.normal(size=(25, 31))
+    avg = np.full(31, np.nan)  # the first blend (c = 1) must overwrite whatever the buffer held
+    for t, x in enumerate(iterates, start=1):
+        blend_into(avg, x[:-1], float(x[-1]), (eta + 1.0) / (t + eta))
+    # reference: the weights of the polynomial-decay average written out, proportional to the rising
+    # factorial t (t + 1) ... (t + eta - 1) = scipy.special.poch(t, eta) (eta = 0: the plain mean); the
+    # closed form follows from multiplying out the recursion (from memory of "Stochastic Gradient Descent
+    # for Non-smooth Optimization: Convergence Results and Optimal Averaging Schemes", ICML 2013)
+    weights = poch(np.arange(1, 26), eta)
+    np.testing.assert_allclose(avg, weights @ iterates / weights.sum(), rtol=1e-12)

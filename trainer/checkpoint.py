@@ -20,7 +20,7 @@ from trainer.atomic import write_atomic
 from trainer.errors import UserError
 
 MAGIC = b"HCCKPT01"
-VERSION = 3
+VERSION = 4
 
 
 def save_checkpoint(path: Path, arrays: dict[str, np.ndarray], meta: dict) -> None:

@@ -317,3 +317,37 @@ def dot(u, v):
     for j in range(u.shape[0]):
         acc += u[j] * v[j]
     return acc
+
+
+@njit(cache=True, nogil=True, fastmath=VECTOR_MATH)
+def blend_into(avg, w, b, c):
+    """avg <- avg + c (x - avg) in place, for x the weights ``w`` then the intercept ``b``.
+
+    One step of a running weighted average of iterates: with c = (eta + 1) / (t + eta) at the t-th
+    iterate it is the polynomial-decay average of the reference below. c = 1 (at t = 1) copies x,
+    whatever ``avg`` held.
+
+    Parameters
+    ----------
+    avg : numpy.ndarray
+        float64, length n + 1; updated in place.
+    w : numpy.ndarray
+        float64 weights, length n.
+    b : float
+        The intercept.
+    c : float
+        The new iterate's weight, in (0, 1].
+
+    References
+    ----------
+    "Stochastic Gradient Descent for Non-smooth Optimization: Convergence Results and Optimal Averaging
+    Schemes", ICML, 2013.
+    """
+    n = w.shape[0]
+    if c == 1.0:
+        avg[:n] = w
+        avg[n] = b
+        return
+    for j in range(n):
+        avg[j] += c * (w[j] - avg[j])
+    avg[n] += c * (b - avg[n])

@@ -9,10 +9,13 @@ checkpoint (killed in its first seconds) starts that run afresh on ``--resume`` 
 command again; other options are refused, naming the first that differs.
 
 Iterate averaging of the default solver (``olbfgs``; ``full_batch_memory`` 0 turns it off with the
-full-batch phase, leaving plain online passes): the model of an online pass is the mean of
-the solver's iterates over the last ``AVERAGE_FRACTION`` of the pass's rows ("Acceleration of
-stochastic approximation by averaging", SIAM Journal on Control and Optimization 30, 1992); the
-solver itself goes on from its last iterate.
+full-batch phase, leaving plain online passes): the model of an online pass is a weighted mean of
+the solver's iterates in that pass ("Acceleration of stochastic approximation by averaging", SIAM
+Journal on Control and Optimization 30, 1992), the t-th iterate blended in with weight
+(eta + 1) / (t + eta), eta = ``AVERAGE_POWER``: the polynomial-decay average of "Stochastic Gradient
+Descent for Non-smooth Optimization: Convergence Results and Optimal Averaging Schemes" (ICML 2013),
+whose weights grow like t^eta, so early iterates of the pass count little. The solver itself goes on
+from its last iterate.
 
 Phases of the default solver: passes are online (one step per batch) unless the hashed log fits
 ``full_batch_memory`` MB, in which case every pass after the first is a full-batch pass
@@ -42,6 +45,7 @@ from tqdm import tqdm
 
 from trainer.errors import Diverged, Interrupted, UserError
 from trainer.evaluation import evaluate
+from trainer.kernels import blend_into
 from trainer.metrics import fit_platt
 from trainer.model import Model
 from trainer.reader.examples import BucketExamples
@@ -63,8 +67,8 @@ CALIBRATED = (0.8, 1.25)
 HUGE_NUMERIC = 1e3
 #: A log of at most this many batches is trained full-batch from the first pass (when it fits the budget).
 TINY_BATCHES = 16
-#: The model of an online pass of the default solver averages the iterates over this last part of the pass.
-AVERAGE_FRACTION = 0.75
+#: eta of the polynomial-decay average that is the model of an online pass of the default solver.
+AVERAGE_POWER = 3.0
 
 
 @dataclass
@@ -431,7 +435,7 @@ class Trainer:
         self.solver.load_state({k[7:]: (v.item() if v.ndim == 0 else v)
                                 for k, v in arrays.items() if k.startswith("solver.")})
         if self.average is not None:
-            self.average[:] = arrays["average.sum"]
+            self.average[:] = arrays["average"]
         ex = meta["examples"]
         self.examples = BucketExamples(self.spec.n_buckets, max_rows=ex["rows_left"], values=ex["values"])
         s = meta["state"]
@@ -460,7 +464,7 @@ class Trainer:
         towards the next ``checkpoint_every`` start again from zero."""
         arrays = {f"solver.{k}": np.asarray(v) for k, v in self.solver.state(copy=False).items()}
         if self.average is not None:
-            arrays["average.sum"] = self.average
+            arrays["average"] = self.average
         s = dataclasses.asdict(self.state)
         s["position"] = list(dataclasses.astuple(self.state.position)) if self.state.position else None
         ex = self.examples
@@ -516,21 +520,17 @@ class Trainer:
         """The model's weights then intercept (a new array): the averaged iterate of the last online
         pass when there is one, else the solver's weights."""
         if self.average is not None and self.state.avg_count > 0:
-            return self.average / self.state.avg_count
+            return self.average.copy()
         return np.append(self.solver.weights, self.solver.intercept)
 
-    def _average(self, rows_in_pass: int) -> None:
-        """Add the solver's iterate to the pass's average once the pass is in its last AVERAGE_FRACTION."""
+    def _average(self) -> None:
+        """Blend the solver's iterate into the pass's polynomial-decay average (module docstring)."""
         st = self.state
-        expected = st.rows_first_pass if st.pass_index else self.reader.total_rows * self.opt.negative_keep_rate
-        if rows_in_pass <= (1.0 - AVERAGE_FRACTION) * expected:
-            return
         if st.avg_pass != st.pass_index:
             st.avg_pass, st.avg_count = st.pass_index, 0
-            self.average[:] = 0.0
-        np.add(self.average[:-1], self.solver.weights, out=self.average[:-1])
-        self.average[-1] += self.solver.intercept
         st.avg_count += 1
+        blend_into(self.average, self.solver.weights, self.solver.intercept,
+                   (AVERAGE_POWER + 1.0) / (st.avg_count + AVERAGE_POWER))
 
     def run(self) -> TrainResult:
         """Train to the requested passes (or an early stop).
@@ -673,7 +673,7 @@ class Trainer:
         st.position = batch.position
         self._since_checkpoint += batch.n_rows
         if self.average is not None:
-            self._average(st.rows_in_pass)
+            self._average()
         point = self._point_rows
         if self._window[1] and (st.rows_in_pass // point) != ((st.rows_in_pass - batch.n_rows) // point):
             st.progress.append({"rows": st.rows_total, "loss": self._window[0] / self._window[1]})
