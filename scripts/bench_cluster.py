@@ -94,7 +94,7 @@ def main() -> None:
         train_end, hold_day = days[-2], days[-1]
         X, y = load_csr(spec, logs, days[0], train_end)
         Xh, yh = load_csr(spec, logs, hold_day, hold_day)
-        w, b, fstar, secs, nit = reference_optimum(X, y, TrainOptions().l2_strength)
+        w, b, fstar, secs, nit, _ = reference_optimum(X, y, TrainOptions().l2_strength)
         ll_star = log_loss(yh, Xh @ w + b)
         print(f"\nreference optimum: holdout LL* {ll_star:.5f} (scipy L-BFGS-B, {nit} iterations)", flush=True)
 

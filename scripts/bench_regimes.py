@@ -179,7 +179,7 @@ def run_regime(r: Regime, passes: int, skip_peer: bool) -> dict:
           f"{X.nnz / X.shape[0]:.1f} entries per row, base rate {y.mean():.4f}, l2 {r.l2:g}", flush=True)
     settings = {"data": r.data_key if r.config not in ("demo", "fair") else r.config, "l2": r.l2,
                 "spec": spec.fingerprint(), "rows": int(X.shape[0]), "nnz": int(X.nnz),
-                "method": "scipy L-BFGS-B, ftol 1e-15, gtol 1e-10, maxcor 20"}
+                "method": "scipy L-BFGS-B, Jacobi-scaled, ftol 1e-15, gtol 1e-12, maxcor 20"}
     w, b = cached_optimum(ROOT / "optima" / f"{settings['data']}-l2-{r.l2:g}.npz", settings, X, y, r.l2)
     ll_star = log_loss(yh, Xh @ w + b)
     print(f"  LL* = {ll_star:.5f}", flush=True)
