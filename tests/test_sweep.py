@@ -1,6 +1,6 @@
 """Several L2 strengths from one read (trainer.sweep): each value's weights against a separate
 single-value run, bit for bit; resume after SIGKILL; the auto grid and its narrowing rule; the memory
-estimate; export of a value's model. The refusals are cases of
+estimate; the report's chart; export of a value's model. The refusals are cases of
 test_bad_inputs.py."""
 
 import json
@@ -20,6 +20,7 @@ from trainer import api
 from trainer.cli import main
 from trainer.model import load_model
 from trainer.reader import Reader, parse_day
+from trainer.report import render_report
 from trainer.run_folder import l2_label
 from trainer.solvers.olbfgs import OnlineLBFGS
 from trainer.spec import load_spec
@@ -200,6 +201,29 @@ def test_memory_estimate_is_the_arrays_the_solver_and_average_allocate():
     allocated = sum(a.nbytes for a in (s._S, s._q, s._x, s._diag, s._bits))
     assert value_bytes(n, TrainOptions(history=history)) == allocated + 8 * (n + 1)
     assert value_bytes(n, TrainOptions(history=history, full_batch_memory=0)) == allocated
+
+
+def test_report_of_a_sweep_draws_every_value_and_pass(small_log, tmp_path):
+    # Reference: metrics.jsonl (one record per value per pass) read with json; the chart's dots
+    # counted with a plain string search of its SVG.
+    root, spec = small_log
+    r = api.train(spec, root, tmp_path / "m", l2_strength=VALUES, quiet=True, **SMALL)
+    page = Path(api.report(tmp_path / "m")).read_text()
+    records = [json.loads(x) for x in (tmp_path / "m" / "metrics.jsonl").read_text().splitlines()]
+    at = page.index('aria-label="Holdout log-loss against L2 strength')
+    chart = page[page.rindex("<svg", 0, at):page.index("</svg>", at)]
+    assert chart.count("<circle") == len(records)
+    assert chart.count("stroke-dasharray") == 2  # the kept value's line and its legend entry
+    section = page[page.index("<h2>L2 strength</h2>"):page.index("<h2>Calibration")]
+    assert section.count("<tr>") == 1 + len(VALUES) and section.count('<td class="t">kept</td>') == 1
+    assert f"<td>{l2_label(r.l2_strength)}</td>" in section
+    own = render_report({**_plain_run(), "sweep": None})
+    assert own.count("<svg") == page.count("<svg") - 1
+
+
+def _plain_run():
+    return {"title": "t", "options": {}, "passes": [], "progress": [], "final_holdout": None, "top_weights": [],
+            "loss": "logistic"}
 
 
 def test_export_of_a_value_scores_like_the_in_run_model(small_log, tmp_path):

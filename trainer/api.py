@@ -270,16 +270,25 @@ def report(model_dir: str | Path, out: str | Path | None = None, *, top: int = 1
         raise UserError(f"--probability-axis must be auto, linear or log; got {probability_axis!r}")
     folder = RunFolder(model_dir)
     model = folder.load_model()
+    records, progress, options = folder.metrics(), folder.progress(), model.info.get("options", {})
+    run_doc = folder.read_run() or {}
+    kept = (run_doc.get("sweep") or {}).get("kept")
+    sweep = None
+    if kept is not None:  # several L2 strengths: the kept one's figures, and a section of them all
+        sweep = {"kept": kept, "points": [{k: r[k] for k in ("l2_strength", "pass", "holdout")} for r in records]}
+        records = [r for r in records if r["l2_strength"] == kept]
+        progress = [p for p in progress if p["l2_strength"] == kept]
+        options = {**options, "l2_strength": run_doc["options"]["l2_strength"]}
     passes = [{"pass": rec["pass"], "rows": rec["rows"], "progressive_loss": rec["progressive_loss"],
-               "holdout": rec["holdout"]} for rec in folder.metrics()]
+               "holdout": rec["holdout"]} for rec in records]
     top_weights = model.top_weights(top, 1) + model.top_weights(top, -1)
     summary = model.info.get("summary", {})
-    run = {"title": f"hashcurve report: {model_dir}", "options": model.info.get("options", {}),
+    run = {"title": f"hashcurve report: {model_dir}", "options": options,
            "option_defaults": TrainOptions().as_json(),
            "resolved_options": {"step0": summary["step0"]} if "step0" in summary else {},
            "best_pass": summary.get("best_pass"),
-           "passes": passes, "progress": folder.progress(), "final_holdout": model.info.get("holdout"),
-           "top_weights": top_weights, "loss": model.loss}
+           "passes": passes, "progress": progress, "final_holdout": model.info.get("holdout"),
+           "top_weights": top_weights, "loss": model.loss, "sweep": sweep}
     path = Path(out) if out is not None else folder.report
     write_report(run, path, probability_axis)
     return path
