@@ -92,9 +92,9 @@ def log_with_holdout(tmp_path_factory):
 
 
 def sweep_args(root, spec, out, *extra):
-    return ["train", "--spec", str(spec), "--data", str(root / "train"), "--holdout", str(root / "holdout.parquet"),
-            "--out", str(out), "--batch-rows", "500", "--epochs", "2", "--shuffle-buffer", "3000", "--seed", "4",
-            "--l2-strength", "1e-4,1e-2", "--quiet", *extra]
+    return ["train", "--spec", str(spec), "--data", str(root / "train"), "--holdout",
+            str(root / "holdout.parquet"), "--out", str(out), "--batch-rows", "500", "--epochs", "2",
+            "--shuffle-buffer", "3000", "--seed", "4", "--l2-strength", "1e-4,1e-2", "--quiet", *extra]
 
 
 def kill_after_first_checkpoint(args, out: Path) -> subprocess.Popen:
@@ -153,7 +153,8 @@ def test_auto_grid_is_five_values_a_factor_of_about_3_apart_around_the_default()
     ratios = np.array(AUTO_GRID[1:]) / np.array(AUTO_GRID[:-1])
     assert np.all((ratios > 3.0 - 1e-9) & (ratios < 3.34))
     assert grid(1e-3) == (1e-4, 3e-4, 1e-3, 3e-3, 1e-2)
-    assert l2_option("auto") == "auto" and l2_option("1e-4") == 1e-4 and l2_option("1e-5, 1e-4") == (1e-5, 1e-4)
+    assert l2_option("auto") == "auto" and l2_option("1e-4") == 1e-4
+    assert l2_option("1e-5, 1e-4") == (1e-5, 1e-4)
 
 
 def test_auto_rule_stops_values_clearly_worse_than_the_best_but_not_its_neighbours():
@@ -168,7 +169,8 @@ def test_auto_rule_stops_values_clearly_worse_than_the_best_but_not_its_neighbou
     scores = dict(zip(values, [best, clearly, clearly, clearly, clearly]))
     assert narrowed(values, scores) == [1e-4, 3e-4, 1e-3]
     assert narrowed(values, dict(zip(values, [best] * 5))) == []
-    assert "largest" in edge_note(values, 1e-3) and "--l2-strength 1e-04,3e-04,1e-03,3e-03,1e-02" in edge_note(values, 1e-3)
+    assert "largest" in edge_note(values, 1e-3)
+    assert "--l2-strength 1e-04,3e-04,1e-03,3e-03,1e-02" in edge_note(values, 1e-3)
     assert "smallest" in edge_note(values, 1e-5) and edge_note(values, 1e-4) is None
 
 
@@ -222,8 +224,8 @@ def test_report_of_a_sweep_draws_every_value_and_pass(small_log, tmp_path):
 
 
 def _plain_run():
-    return {"title": "t", "options": {}, "passes": [], "progress": [], "final_holdout": None, "top_weights": [],
-            "loss": "logistic"}
+    return {"title": "t", "options": {}, "passes": [], "progress": [], "final_holdout": None,
+            "top_weights": [], "loss": "logistic"}
 
 
 def test_export_of_a_value_scores_like_the_in_run_model(small_log, tmp_path):

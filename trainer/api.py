@@ -275,7 +275,8 @@ def report(model_dir: str | Path, out: str | Path | None = None, *, top: int = 1
     kept = (run_doc.get("sweep") or {}).get("kept")
     sweep = None
     if kept is not None:  # several L2 strengths: the kept one's figures, and a section of them all
-        sweep = {"kept": kept, "points": [{k: r[k] for k in ("l2_strength", "pass", "holdout")} for r in records]}
+        points = [{k: r[k] for k in ("l2_strength", "pass", "holdout")} for r in records]
+        sweep = {"kept": kept, "points": points}
         records = [r for r in records if r["l2_strength"] == kept]
         progress = [p for p in progress if p["l2_strength"] == kept]
         options = {**options, "l2_strength": run_doc["options"]["l2_strength"]}

@@ -63,9 +63,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--loss", default=d.loss, help="logistic or squared-hinge (default: %(default)s)")
     p.add_argument("--solver", default=d.solver, help="olbfgs, res, sgd or adagrad (default: %(default)s)")
     p.add_argument("--l2-strength", default=d.l2_strength, metavar="L2[,L2...]|auto",
-                   help="L2 strength lambda, per-row average form; up to 8 values separated by commas, or auto "
-                        "(5 values around the default), train one model each from one read and keep the best on "
-                        "the holdout (default: %(default)s)")
+                   help="L2 strength lambda, per-row average form; up to 8 values separated by commas, or "
+                        "auto (5 values around the default), train one model each from one read and keep the "
+                        "best on the holdout (default: %(default)s)")
     p.add_argument("--history", type=int, default=d.history, help="curvature pairs kept (default: %(default)s)")
     p.add_argument("--batch-rows", type=int, default=d.batch_rows, help="rows per step (default: %(default)s)")
     p.add_argument("--step0", type=float, default=d.step0, help="initial step size (default: the solver's)")

@@ -788,8 +788,8 @@ def train(cluster, spec, data, out, options, **kwargs) -> TrainResult:
         :meth:`ClusterTrainer.run`.
     """
     if is_sweep(options.l2_strength):
-        raise UserError("--l2-strength: --cluster trains one L2 strength; give one value, or train the values "
-                        "without --cluster")
+        raise UserError("--l2-strength: --cluster trains one L2 strength; give one value, or train the "
+                        "values without --cluster")
     default = type(options)()
     for name in ("epochs", "patience", "checkpoint_every"):
         if getattr(options, name) != getattr(default, name):

@@ -224,7 +224,8 @@ def _add(state: EvalState, model, batch, by: str | None) -> None:
         state.probs.update(batch.labels, probs, batch.weights,
                            margins=margins if model.loss == "logistic" else None)
         if state.segments is not None:
-            state.segments.update(batch.columns.column(by).combine_chunks(), batch.labels, probs, batch.weights)
+            column = batch.columns.column(by).combine_chunks()
+            state.segments.update(column, batch.labels, probs, batch.weights)
 
 
 def summarize(state: EvalState, segments: int = 20) -> EvaluationResult:

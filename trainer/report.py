@@ -384,8 +384,10 @@ def _sweep_chart(sweep, loss: str) -> str:
     the kept value marked by a dashed vertical line."""
     loss_name = "log-loss" if loss == "logistic" else "squared hinge loss"
     title = f"Holdout {loss_name} against L2 strength"
-    by_pass = {k: [(math.log10(v), y) for v, y in pts if v > 0] for k, pts in _sweep_points(sweep, loss).items()}
-    by_pass = {k: pts for k, pts in by_pass.items() if pts}
+    by_pass = {}
+    for k, pts in _sweep_points(sweep, loss).items():
+        if any(v > 0 for v, _ in pts):
+            by_pass[k] = [(math.log10(v), y) for v, y in pts if v > 0]
     if not by_pass:
         return _empty_chart(title, "no holdout figures recorded")
     xs = sorted({x for pts in by_pass.values() for x, _ in pts})
@@ -591,9 +593,10 @@ def _sweep_section(sweep, loss: str) -> str:
         return ""
     values = {p.get("l2_strength") for p in sweep["points"]}
     return ("<section><h2>L2 strength</h2>"
-            f'<p class="note">{_esc(len(values))} L2 strengths were trained from one read of the log; the one '
-            f"with the lowest holdout loss, {_esc(l2_label(sweep['kept']))}, is kept, and the figures above and "
-            "below are its own. Each dot is one value after one pass; the dashed line marks the kept value.</p>"
+            f'<p class="note">{_esc(len(values))} L2 strengths were trained from one read of the log; the '
+            f"one with the lowest holdout loss, {_esc(l2_label(sweep['kept']))}, is kept, and the figures "
+            "above and below are its own. Each dot is one value after one pass; the dashed line marks the "
+            "kept value.</p>"
             f'<div class="row">{_sweep_chart(sweep, loss)}</div>'
             f'<div class="row" style="margin-top:18px">{_sweep_table(sweep, loss)}</div></section>')
 

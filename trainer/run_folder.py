@@ -245,7 +245,8 @@ class RunFolder:
         """
         path = self.path / METRICS_FILE
         before = path.read_bytes() if path.exists() else b""
-        write_atomic(path, [before, *((json.dumps(jsonable(r), allow_nan=False) + "\n").encode() for r in records)])
+        lines = ((json.dumps(jsonable(r), allow_nan=False) + "\n").encode() for r in records)
+        write_atomic(path, [before, *lines])
 
     def metrics(self) -> list[dict]:
         """Read ``metrics.jsonl``.

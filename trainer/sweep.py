@@ -97,8 +97,8 @@ def l2_option(value):
         try:
             values = [float(part) for part in value.split(",")]
         except ValueError:
-            raise UserError(f"--l2-strength must be a number, up to {MAX_VALUES} numbers separated by commas, "
-                            f"or {AUTO}; got {value!r}") from None
+            raise UserError(f"--l2-strength must be a number, up to {MAX_VALUES} numbers separated by "
+                            f"commas, or {AUTO}; got {value!r}") from None
     elif isinstance(value, (list, tuple)):
         values = list(value)
     else:
@@ -179,10 +179,11 @@ def check_budget(spec: Spec, options: TrainOptions, count: int) -> None:
     budget = memory_budget()
     if count * each > budget:
         mb = 2**20
-        raise UserError(f"--l2-strength: {count} values need about {count * each / mb:,.0f} MB for their solvers "
-                        f"({each / mb:,.0f} MB each at {spec.n_buckets:,} buckets, --solver {options.solver}, "
-                        f"--history {options.history}), over the budget of {budget / mb:,.0f} MB (half of this "
-                        "machine's physical memory); give fewer values, fewer hashing bits or a smaller --history")
+        raise UserError(f"--l2-strength: {count} values need about {count * each / mb:,.0f} MB for their "
+                        f"solvers ({each / mb:,.0f} MB each at {spec.n_buckets:,} buckets, --solver "
+                        f"{options.solver}, --history {options.history}), over the budget of "
+                        f"{budget / mb:,.0f} MB (half of this machine's physical memory); give fewer values, "
+                        "fewer hashing bits or a smaller --history")
 
 
 def l2_values(l2_strength) -> tuple[float, ...]:
@@ -255,17 +256,17 @@ def edge_note(values: tuple[float, ...], kept: float) -> str | None:
 
 
 class _Lane(Trainer):
-    """One value of a sweep: a Trainer's own solver, training state and iterate average, reading the
-    sweep's readers, bucket examples and in-memory log.
+    """One value of a sweep: a Trainer's own solver, training state and iterate average, on the sweep's
+    readers and bucket examples.
 
-    It writes no file (the sweep keeps its models, metrics and checkpoint); the sweep calls its
-    per-value methods (``take``, ``fit_full_batch``, ``record_pass``, ``notes``, ``current_model``,
-    ``finished``, ``checkpoint_parts``, ``restore``).
+    It owns no folder, readers or checkpoint, so ``Trainer.__init__`` (which opens them) is not called;
+    the sweep calls only its value methods (``take``, ``fit_full_batch``, ``record_pass``, ``notes``,
+    ``current_model``, ``finished``, ``checkpoint_parts``, ``restore``) and writes its files.
     """
 
     def __init__(self, sweep: SweepTrainer, value: float):
         self.sweep = sweep
-        self.spec, self.data, self.holdout_path, self.quiet = sweep.spec, sweep.data, sweep.holdout_path, True
+        self.spec, self.data, self.holdout_path = sweep.spec, sweep.data, sweep.holdout_path
         self.opt = dataclasses.replace(sweep.opt, l2_strength=value)
         self.reader, self.holdout = sweep.reader, sweep.holdout
         self._since_checkpoint = 0
@@ -310,8 +311,8 @@ class SweepTrainer(Trainer):
         options.validate()
         self.values = l2_values(options.l2_strength)
         if self.holdout_of(data, holdout, options) is None:
-            raise UserError("--l2-strength: several values need a holdout to choose among them; give --holdout "
-                            "PATH, or --holdout-start/--holdout-end days of --data")
+            raise UserError("--l2-strength: several values need a holdout to choose among them; give "
+                            "--holdout PATH, or --holdout-start/--holdout-end days of --data")
         check_budget(spec, options, len(self.values))
         self.auto = options.l2_strength == AUTO
         self.narrowed: list[float] = []
@@ -354,12 +355,24 @@ class SweepTrainer(Trainer):
         return self.count(batch)
 
     def progress_text(self) -> str:
-        """The progress bar's note: each value's progressive loss so far."""
-        return "progressive loss " + ", ".join(f"{l2_label(lane.value)} {lane.state.pv_loss / lane.state.pv_weight:.5f}"
-                                               for lane in self.stepping if lane.state.pv_weight)
+        """The progress bar's note.
+
+        Returns
+        -------
+        str
+            Each value's progressive loss so far in the pass.
+        """
+        losses = (f"{l2_label(lane.value)} {lane.state.pv_loss / lane.state.pv_weight:.5f}"
+                  for lane in self.stepping if lane.state.pv_weight)
+        return "progressive loss " + ", ".join(losses)
 
     def full_batch_pass(self, stop: _StopFlag) -> dict:
         """One full-batch pass of every value still training, on the log collected once.
+
+        Parameters
+        ----------
+        stop : _StopFlag
+            Polled after every iteration.
 
         Returns
         -------
@@ -398,7 +411,8 @@ class SweepTrainer(Trainer):
         eval_seconds = time.monotonic() - started
         records = []
         for lane, holdout in zip(lanes, summaries):
-            record, improved = lane.record_pass(train_seconds, eval_seconds, (fitted or {}).get(lane.value), holdout)
+            full = (fitted or {}).get(lane.value)
+            record, improved = lane.record_pass(train_seconds, eval_seconds, full, holdout)
             if improved:
                 lane.current_model(holdout).save(self.folder.value_folder(lane.value))
             records.append({"l2_strength": lane.value, **record})
@@ -423,9 +437,9 @@ class SweepTrainer(Trainer):
                 lane.state.stopped_early = True
         if self.narrowed:
             best = min(self.values, key=lambda v: _rank(scores[v]))
-            self.log(f"auto: l2 {', '.join(l2_label(v) for v in self.narrowed)} stop after pass 1: holdout loss "
-                     f"more than {AUTO_MARGIN:.0%} above the best ({l2_label(best)}: {scores[best]:.5f}) and not "
-                     "next to it on the grid")
+            self.log(f"auto: l2 {', '.join(l2_label(v) for v in self.narrowed)} stop after pass 1: holdout "
+                     f"loss more than {AUTO_MARGIN:.0%} above the best ({l2_label(best)}: "
+                     f"{scores[best]:.5f}) and not next to it on the grid")
         self._write_sweep()
 
     # -- the checkpoint ---------------------------------------------------------------------------
@@ -439,8 +453,8 @@ class SweepTrainer(Trainer):
             arrays.update({f"l2/{l2_label(lane.value)}/{k}": v for k, v in parts.items()})
             lanes.append(state)
             progress += [{"l2_strength": lane.value, **point} for point in lane.state.progress]
-        self.write_checkpoint(arrays, {"state": self.state.to_json(), "lanes": lanes, "narrowed": self.narrowed},
-                              progress)
+        meta = {"state": self.state.to_json(), "lanes": lanes, "narrowed": self.narrowed}
+        self.write_checkpoint(arrays, meta, progress)
 
     def _load_checkpoint(self) -> None:
         arrays, meta = self._read_checkpoint()
@@ -466,10 +480,10 @@ class SweepTrainer(Trainer):
         name = "log-loss" if self.opt.loss == "logistic" else "loss"
         for lane in self.lanes:
             s = lane.state
-            self.log(f"l2 {l2_label(lane.value)}: best holdout {name} {s.best_score:.5f} at pass {s.best_pass} "
-                     f"({self._stopped(lane)})")
-        self.log(f"kept l2 strength {l2_label(self.kept.value)}, the best holdout {name}; each value's model is in "
-                 f"{self.folder.path / 'l2'}")
+            self.log(f"l2 {l2_label(lane.value)}: best holdout {name} {s.best_score:.5f} at pass "
+                     f"{s.best_pass} ({self._stopped(lane)})")
+        self.log(f"kept l2 strength {l2_label(self.kept.value)}, the best holdout {name}; each value's model "
+                 f"is in {self.folder.path / 'l2'}")
         note = edge_note(self.values, self.kept.value)
         if note:
             self.log(note)
@@ -504,6 +518,6 @@ class SweepTrainer(Trainer):
                  for lane in self.lanes]
         reason = ("every value stopped before --epochs" if st.stopped_early
                   else f"reached --epochs {self.opt.epochs}")
-        return TrainResult(model, self.folder.path, st.pass_index, records, kept.state.best_pass, st.stopped_early,
-                           reason, per_pass("train_seconds"), per_pass("eval_seconds"), l2_strength=kept.value,
-                           sweep=sweep)
+        return TrainResult(model, self.folder.path, st.pass_index, records, kept.state.best_pass,
+                           st.stopped_early, reason, per_pass("train_seconds"), per_pass("eval_seconds"),
+                           l2_strength=kept.value, sweep=sweep)

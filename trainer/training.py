@@ -719,9 +719,23 @@ class Trainer:
         return True
 
     def full_batch_pass(self, stop: _StopFlag) -> dict:
-        """One full-batch pass on the collected log (:meth:`collect`); returns its summary.
+        """One full-batch pass on the collected log (:meth:`collect`).
 
-        Raises Interrupted on SIGINT/SIGTERM, keeping the checkpoint of the last finished pass."""
+        Parameters
+        ----------
+        stop : _StopFlag
+            Polled after every iteration.
+
+        Returns
+        -------
+        dict
+            The pass's summary (:meth:`fit_full_batch`).
+
+        Raises
+        ------
+        Interrupted
+            On SIGINT/SIGTERM, keeping the checkpoint of the last finished pass.
+        """
         fitted = self.fit_full_batch(self.memory, stop)
         if fitted["stopped"]:
             raise self._stopped_in_full_batch(stop.signal)
@@ -756,9 +770,9 @@ class Trainer:
 
     def _stopped_in_full_batch(self, signum: int) -> Interrupted:
         st = self.state
-        return Interrupted(f"{signal.Signals(signum).name}: stopped in full-batch pass {st.pass_index + 1}; the "
-                           f"checkpoint of pass {st.pass_index} in {self.folder.checkpoint} is kept; continue "
-                           "with the same command plus --resume")
+        return Interrupted(f"{signal.Signals(signum).name}: stopped in full-batch pass {st.pass_index + 1}; "
+                           f"the checkpoint of pass {st.pass_index} in {self.folder.checkpoint} is kept; "
+                           "continue with the same command plus --resume")
 
     def _diverged(self, exc: Diverged, batch) -> Diverged:
         """The solver's Diverged message, naming a numeric column without edges whose huge values in
@@ -822,7 +836,8 @@ class Trainer:
         return self._since_checkpoint >= self.opt.checkpoint_every
 
     def step(self, batch) -> None:
-        """Step the solver on a batch :meth:`count` counted: progressive loss, progress curve, iterate average.
+        """Step the solver on a batch :meth:`count` counted; add to the progressive loss, the progress
+        curve and the iterate average.
 
         Parameters
         ----------
@@ -871,7 +886,13 @@ class Trainer:
                            "with the same command plus --resume")
 
     def progress_text(self) -> str:
-        """The progress bar's note: the pass's progressive loss so far."""
+        """The progress bar's note.
+
+        Returns
+        -------
+        str
+            The pass's progressive loss so far.
+        """
         st = self.state
         return f"progressive loss {st.pv_loss / st.pv_weight:.5f}"
 
@@ -895,7 +916,15 @@ class Trainer:
         bar.close()
 
     def finish_pass(self, train_seconds: float, fitted: dict | None = None) -> None:
-        """Evaluate, record and checkpoint the pass just run (``fitted``: a full-batch pass's summary)."""
+        """Evaluate, record and checkpoint the pass just run.
+
+        Parameters
+        ----------
+        train_seconds : float
+            The pass's time reading and stepping.
+        fitted : dict, optional
+            A full-batch pass's summary (None after an online pass).
+        """
         self.check_classes()
         started = time.monotonic()
         holdout = None
@@ -912,7 +941,13 @@ class Trainer:
         self.save_checkpoint()
 
     def check_classes(self) -> None:
-        """After the first pass: refuse a log of one class unless ``allow_one_class`` (a no-op later)."""
+        """After the first pass: refuse a log of one class unless ``allow_one_class`` (a no-op later).
+
+        Raises
+        ------
+        UserError
+            Naming the log, the two counts and the label column.
+        """
         st = self.state
         if st.pass_index == 0 and not self.opt.allow_one_class and not (st.positives and st.negatives):
             raise UserError(f"{self.data}: the training rows after the filters hold {st.negatives:,} negative "
@@ -921,7 +956,8 @@ class Trainer:
 
     def record_pass(self, train_seconds: float, eval_seconds: float, fitted: dict | None,
                     holdout: dict | None) -> tuple[dict, bool]:
-        """Close this value's pass (:meth:`end_pass`): its ``metrics.jsonl`` record, the best pass and early stop.
+        """Close this value's pass (:meth:`end_pass`): its ``metrics.jsonl`` record, the best pass and
+        the early stop.
 
         Parameters
         ----------
@@ -967,7 +1003,8 @@ class Trainer:
         st.position, st.rows_in_pass = None, 0
 
     def notes(self, record: dict, who: str = "") -> list[str]:
-        """The lines that follow a pass's table row: a predicted/observed ratio outside ``CALIBRATED``, an early stop.
+        """The lines that follow a pass's table row: a predicted/observed ratio outside ``CALIBRATED``,
+        an early stop.
 
         Parameters
         ----------
@@ -993,7 +1030,7 @@ class Trainer:
     def next_phase(self) -> None:
         """After the first online pass: switch to full-batch passes when the hashed log fits the budget."""
         st = self.state
-        if st.pass_index == 1 and st.phase == "online" and self.opt.phased and st.pass_index < self.opt.epochs:
+        if st.pass_index == 1 and st.phase == "online" and self.opt.phased and self.opt.epochs > 1:
             size = full_batch.log_bytes(st.rows_total, st.entries)
             if size <= self._budget():
                 self._choose_phase("full-batch", f"the hashed log takes {size / 2**20:.0f} MB in memory, within "
@@ -1094,7 +1131,8 @@ class Trainer:
         flagged = _off_calibration(h) is not None
 
         f = format_cell
-        return (f"{rec['pass']:>4}{value} {rec['rows']:>11,} {f(rec['progressive_loss'], '11.5f')} {f(loss, '13.5f')} "
+        return (f"{rec['pass']:>4}{value} {rec['rows']:>11,} {f(rec['progressive_loss'], '11.5f')} "
+                f"{f(loss, '13.5f')} "
                 f"{f(h.get('normalized_entropy'), '9.4f')} {f(h.get('auc', margin.get('auc')), '7.4f')} "
                 f"{f(h.get('calibration_ratio'), '8.4f')}{'!' if flagged else ' '} {f(h.get('error_rate', margin.get('error_rate')), '7.4f')} "
                 f"{rec['train_seconds']:8.1f} {rec['eval_seconds']:7.1f}  {rec.get('phase', ''):<10}")
