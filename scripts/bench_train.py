@@ -2,6 +2,7 @@
 
 Usage:
     python scripts/bench_train.py [--rows-per-day 250000] [--train-days 4] [--memory]
+    python scripts/bench_train.py --sweep [--rows-per-day 250000] [--train-days 4] [--epochs 3] [--repeats 3]
 
 Generates (once, under bench_data/) the 20-field benchmark log of scripts/loggen.py (config
 "bench20": Zipf vocabularies from 3 to 2e5, one interaction, 2^20 buckets): ``--train-days`` days of
@@ -21,6 +22,14 @@ training rows and one holdout day. In one run it measures
   then one solver pass over them;
 - with --memory: peak RSS of `hashcurve train` on the benchmark log and on a log 4x as long (the
   child's own VmHWM, read at its exit).
+
+With --sweep it measures instead (after the same warm-up) one read feeding several L2 strengths
+(trainer.sweep): the wall time of `api.train` with the five values of ``--l2-strength auto`` given
+as a list (no narrowing) and with ``auto`` (narrowing after pass 1), against the wall time of one
+value (the default) in the same run, patience = passes in all (``--repeats`` interleaved rounds, the
+median of each reported); each value's holdout log-loss after every pass against a separate
+single-value run's (target: equal to 1e-12); and where the time goes: each pass's training and
+holdout seconds of the sweep and of the single run, and the reading + hashing of one pass alone.
 
 It prints every figure and the ratios the targets are stated in.
 """
@@ -52,6 +61,7 @@ from trainer.losses import pointwise_loss  # noqa: E402
 from trainer.reader import Reader, parse_day  # noqa: E402
 from trainer.solvers import make_solver  # noqa: E402
 from trainer.spec import load_spec  # noqa: E402
+from trainer.sweep import AUTO_GRID  # noqa: E402
 from trainer.training import TrainOptions  # noqa: E402
 
 PEER_STEPS = (0.002, 0.005, 0.01, 0.02, 0.05)
@@ -233,6 +243,68 @@ def peak_rss(logs: Path, spec_path: Path, train_end: str) -> float:
         return int(done.stderr.split("VmHWM:")[-1].split()[0]) / 1024
 
 
+def timed_train(spec_path: Path, data: Path, l2, passes: int, **options):
+    """(wall seconds, TrainResult) of one `api.train` into a temporary folder (quiet, patience = passes)."""
+    with tempfile.TemporaryDirectory(prefix="bench-model-") as out:
+        t = time.perf_counter()
+        result = api.train(spec_path, data, Path(out) / "m", l2_strength=l2, epochs=passes, patience=passes,
+                           quiet=True, **options)
+        return time.perf_counter() - t, result
+
+
+def bench_sweep(spec, spec_path: Path, logs: Path, train_end: str, hold_day: str, passes: int,
+                repeats: int) -> None:
+    """A sweep of the auto grid's five values (as a list, then auto) against one value (see --sweep);
+    the three runs are repeated ``repeats`` times, interleaved, and the median of each is reported."""
+    values = AUTO_GRID
+    one = TrainOptions().l2_strength
+    common = {"end": train_end, "holdout_start": hold_day, "holdout_end": hold_day}
+    walls = {"one": [], "list": [], "auto": []}
+    runs = {}
+    for k in range(repeats):
+        for name, l2 in (("one", one), ("list", values), ("auto", "auto")):
+            wall, runs[name] = timed_train(spec_path, logs, l2, passes, **common)
+            walls[name].append(wall)
+            print(f"  round {k + 1}: {name:<4} {wall:6.1f} s", flush=True)
+    single, sweep, auto = runs["one"], runs["list"], runs["auto"]
+    wall_one, wall_sweep, wall_auto = (float(np.median(walls[name])) for name in ("one", "list", "auto"))
+    singles = {one: single}
+    for v in values:
+        if v not in singles:
+            singles[v] = timed_train(spec_path, logs, v, passes, **common)[1]
+    reader = Reader(spec, logs, end=parse_day(train_end, "train_end"), batch_rows=TrainOptions().batch_rows)
+    t = time.perf_counter()
+    for _ in reader.batches():
+        pass
+    t_read = time.perf_counter() - t
+
+    narrowed = [f"{s['l2_strength']:g}" for s in auto.sweep if "auto rule" in s["stopped"]]
+    listed = ", ".join(f"{v:g}" for v in values)
+    print(f"\n(e) one read, {len(values)} L2 strengths ({listed}), {passes} passes, patience {passes}")
+    print(f"  median wall time of {repeats} interleaved rounds: one value ({one:g}) {wall_one:.1f} s; the "
+          f"{len(values)} values as a list "
+          f"{wall_sweep:.1f} s = {wall_sweep / wall_one:.2f}x; auto (stopped after pass 1: "
+          f"{', '.join(narrowed) or 'none'}) {wall_auto:.1f} s = {wall_auto / wall_one:.2f}x   "
+          "(target <= 2.5x)")
+    worst, count = 0.0, 0
+    for name, run in (("list", sweep), ("auto", auto)):
+        for r in run.per_pass:
+            theirs = next(x for x in singles[r["l2_strength"]].per_pass if x["pass"] == r["pass"])
+            worst = max(worst, abs(r["holdout"]["log_loss"] - theirs["holdout"]["log_loss"]))
+            count += 1
+    print(f"  holdout log-loss of each value and pass against its single-value run: max |difference| "
+          f"{worst:.3g} over {count} figures   (target <= 1e-12)")
+    print(f"  reading + hashing alone, one pass over the training log: {t_read:.1f} s")
+    print("  per pass of the last round, training s / holdout s:   one value    list of 5    auto")
+    for k in range(1, passes + 1):
+        cells = []
+        for run in (single, sweep, auto):
+            rec = next((r for r in run.per_pass if r["pass"] == k), None)
+            cells.append(f"{rec['train_seconds']:6.1f} / {rec['eval_seconds']:4.1f}" if rec else f"{'-':>13}")
+        phase = next(r["phase"] for r in single.per_pass if r["pass"] == k)
+        print(f"    pass {k} ({phase:<10})        {'   '.join(cells)}")
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--rows-per-day", type=int, default=250_000)
@@ -240,6 +312,9 @@ def main() -> None:
     ap.add_argument("--epochs", type=int, default=3, help="hashcurve passes to run (defaults otherwise)")
     ap.add_argument("--memory", action="store_true", help="also measure peak RSS on 1x and 4x the log")
     ap.add_argument("--skip-peer", action="store_true")
+    ap.add_argument("--sweep", action="store_true",
+                    help="measure a sweep of 5 L2 strengths against one value instead (see the docstring)")
+    ap.add_argument("--repeats", type=int, default=3, help="with --sweep: interleaved rounds (default: 3)")
     a = ap.parse_args()
     configure_process()
     opt = TrainOptions()
@@ -253,6 +328,10 @@ def main() -> None:
     with tempfile.TemporaryDirectory() as tmp:
         api.train(spec_path, folder / "logs", Path(tmp) / "w", start=days[0], end=days[0], epochs=1,
                   holdout_start=hold_day, holdout_end=hold_day, quiet=True)
+
+    if a.sweep:
+        bench_sweep(spec, spec_path, folder / "logs", train_end, hold_day, a.epochs, a.repeats)
+        return
 
     X, y = load_csr(spec, folder / "logs", days[0], train_end)
     Xh, yh = load_csr(spec, folder / "logs", hold_day, hold_day)

@@ -219,6 +219,16 @@ def _huge_identity(c: Case):
     return c.train("--full-batch-memory", "0", spec=c.write_spec(spec, "identity.json"), data=c.log([big(t1), big(t2)]))
 
 
+def _sweep(*extra, spec_changes=None):
+    """A run of several L2 strengths (day 2 held out unless ``extra`` says otherwise)."""
+    def build(c: Case):
+        spec = c.spec_with(**spec_changes) if spec_changes else None
+        holdout = () if "--holdout-start" in extra or "no holdout" in extra else (
+            "--holdout-start", "2026-03-02", "--holdout-end", "2026-03-02")
+        return c.train(*(e for e in extra if e != "no holdout"), *holdout, spec=spec)
+    return build
+
+
 ONE_CLASS_ZERO = _data_case(_labels(np.zeros(ROWS, dtype=np.int64)), every_day=True)
 
 # name -> (build(case) -> argv, text the one line must hold)
@@ -274,6 +284,20 @@ CASES = {
     "--out holds other files": (_out_holds_other_files, "folder is not empty"),
     "--resume without a folder": (_resume_nothing, "no checkpoint to resume from"),
     "--holdout missing": (lambda c: c.train("--holdout", str(c.inp / "gone")), "gone: no such file or folder"),
+    # several L2 strengths (trainer.sweep)
+    "--l2-strength 9 values": (_sweep("--l2-strength", ",".join(f"{k}e-4" for k in range(1, 10))),
+                               "--l2-strength: 9 values given; one run trains at most 8"),
+    "--l2-strength not a number in the list": (_sweep("--l2-strength", "1e-4,abc"), "--l2-strength must be a number"),
+    "--l2-strength empty item": (_sweep("--l2-strength", "1e-4,,1e-3"), "--l2-strength must be a number"),
+    "--l2-strength negative in the list": (_sweep("--l2-strength", "1e-4,-1"), "--l2-strength must be a finite"),
+    "--l2-strength given twice": (_sweep("--l2-strength", "1e-4,1e-3,0.0001"), "--l2-strength: 0.0001 is given twice"),
+    "--l2-strength several without a holdout": (_sweep("--l2-strength", "1e-4,1e-3", "no holdout"),
+                                                "--l2-strength: several values need a holdout"),
+    "--l2-strength over the memory budget": (_sweep("--l2-strength", "auto",
+                                                    spec_changes={"hashing": {"bits": 30, "seed": 42}}),
+                                             "over the budget of"),
+    "--l2-strength several with --cluster": (_sweep("--l2-strength", "1e-4,1e-3", "--cluster", "local:1"),
+                                             "--l2-strength: --cluster trains one L2 strength"),
     # models and exports
     "export: byte flipped in weights.parquet, score": (_model_case("score", "export", _weights_byte),
                                                        "weights.parquet: checksum does not match"),

@@ -22,6 +22,7 @@ from trainer.report import write_report
 from trainer.run_folder import RunFolder
 from trainer.scoring import check_keep, check_paths, score_to_parquet
 from trainer.spec import Spec, load_spec
+from trainer.sweep import SweepTrainer, is_sweep, l2_option
 from trainer.training import TrainOptions, Trainer, TrainResult
 
 __all__ = ["EvaluationResult", "TrainResult", "train", "evaluate", "score", "export", "inspect", "report", "demo", "load_model", "TrainOptions"]
@@ -53,11 +54,15 @@ def train(spec: str | Path | Spec, data: str | Path, out: str | Path, *, holdout
         pass per shard, averaged, then full-batch L-BFGS; see ``trainer.cluster``).
     **options
         Any :class:`trainer.training.TrainOptions` field (dates as YYYY-MM-DD strings or dates).
+        ``l2_strength`` takes a float, a sequence of up to 8 floats or "auto" (also as text: "1e-5,1e-4");
+        several values train one model each from one read of the log and keep the best
+        (:class:`trainer.sweep.SweepTrainer`; needs a holdout).
 
     Returns
     -------
     trainer.training.TrainResult
-        The model, its folder, passes run, per-pass metrics, best pass, stopping reason, timings.
+        The model, its folder, passes run, per-pass metrics, best pass, stopping reason, timings (and, for
+        several L2 strengths, the kept one and each value's outcome).
 
     Raises
     ------
@@ -67,6 +72,8 @@ def train(spec: str | Path | Spec, data: str | Path, out: str | Path, *, holdout
         On SIGINT/SIGTERM (after saving a checkpoint).
     """
     spec = spec if isinstance(spec, Spec) else load_spec(spec)
+    if "l2_strength" in options:
+        options["l2_strength"] = l2_option(options["l2_strength"])
     for key in ("start", "end", "holdout_start", "holdout_end"):
         if key in options:
             options[key] = parse_day(options[key], f"--{key.replace('_', '-')}")
@@ -78,9 +85,9 @@ def train(spec: str | Path | Spec, data: str | Path, out: str | Path, *, holdout
 
         return dask_cluster.train(cluster, spec, data, out, TrainOptions(**options), holdout=holdout, resume=resume,
                                   force=force, quiet=quiet)
-    trainer = Trainer(spec, data, out, TrainOptions(**options), holdout=holdout, resume=resume, force=force,
-                      quiet=quiet)
-    return trainer.run()
+    opts = TrainOptions(**options)
+    runner = SweepTrainer if is_sweep(opts.l2_strength) else Trainer
+    return runner(spec, data, out, opts, holdout=holdout, resume=resume, force=force, quiet=quiet).run()
 
 
 def evaluate(model: str | Path | Model, data: str | Path, *, start=None, end=None, by: str | None = None,
@@ -263,16 +270,26 @@ def report(model_dir: str | Path, out: str | Path | None = None, *, top: int = 1
         raise UserError(f"--probability-axis must be auto, linear or log; got {probability_axis!r}")
     folder = RunFolder(model_dir)
     model = folder.load_model()
+    records, progress, options = folder.metrics(), folder.progress(), model.info.get("options", {})
+    run_doc = folder.read_run() or {}
+    kept = (run_doc.get("sweep") or {}).get("kept")
+    sweep = None
+    if kept is not None:  # several L2 strengths: the kept one's figures, and a section of them all
+        points = [{k: r[k] for k in ("l2_strength", "pass", "holdout")} for r in records]
+        sweep = {"kept": kept, "points": points}
+        records = [r for r in records if r["l2_strength"] == kept]
+        progress = [p for p in progress if p["l2_strength"] == kept]
+        options = {**options, "l2_strength": run_doc["options"]["l2_strength"]}
     passes = [{"pass": rec["pass"], "rows": rec["rows"], "progressive_loss": rec["progressive_loss"],
-               "holdout": rec["holdout"]} for rec in folder.metrics()]
+               "holdout": rec["holdout"]} for rec in records]
     top_weights = model.top_weights(top, 1) + model.top_weights(top, -1)
     summary = model.info.get("summary", {})
-    run = {"title": f"hashcurve report: {model_dir}", "options": model.info.get("options", {}),
+    run = {"title": f"hashcurve report: {model_dir}", "options": options,
            "option_defaults": TrainOptions().as_json(),
            "resolved_options": {"step0": summary["step0"]} if "step0" in summary else {},
            "best_pass": summary.get("best_pass"),
-           "passes": passes, "progress": folder.progress(), "final_holdout": model.info.get("holdout"),
-           "top_weights": top_weights, "loss": model.loss}
+           "passes": passes, "progress": progress, "final_holdout": model.info.get("holdout"),
+           "top_weights": top_weights, "loss": model.loss, "sweep": sweep}
     path = Path(out) if out is not None else folder.report
     write_report(run, path, probability_axis)
     return path

@@ -14,6 +14,7 @@ import pyarrow as pa
 
 from trainer import __version__, api
 from trainer.errors import Interrupted, UserError
+from trainer.run_folder import l2_label
 from trainer.training import format_cell
 
 
@@ -61,8 +62,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--epochs", type=int, default=d.epochs, help="passes over the data (default: %(default)s)")
     p.add_argument("--loss", default=d.loss, help="logistic or squared-hinge (default: %(default)s)")
     p.add_argument("--solver", default=d.solver, help="olbfgs, res, sgd or adagrad (default: %(default)s)")
-    p.add_argument("--l2-strength", type=float, default=d.l2_strength, help="L2 strength lambda, per-row average form "
-                   "(default: %(default)s)")
+    p.add_argument("--l2-strength", default=d.l2_strength, metavar="L2[,L2...]|auto",
+                   help="L2 strength lambda, per-row average form; up to 8 values separated by commas, or "
+                        "auto (5 values around the default), train one model each from one read and keep the "
+                        "best on the holdout (default: %(default)s)")
     p.add_argument("--history", type=int, default=d.history, help="curvature pairs kept (default: %(default)s)")
     p.add_argument("--batch-rows", type=int, default=d.batch_rows, help="rows per step (default: %(default)s)")
     p.add_argument("--step0", type=float, default=d.step0, help="initial step size (default: the solver's)")
@@ -239,7 +242,10 @@ def format_train_result(r) -> str:
     """
     lines = [f"{r.passes} pass(es), {r.train_seconds:.1f} s training + {r.eval_seconds:.1f} s holdout evaluation; "
              f"{r.stopping_reason}"]
-    if r.best_pass is not None:
+    if r.sweep:
+        lines.append(f"best holdout pass {r.best_pass} of l2 strength {l2_label(r.l2_strength)}, kept from "
+                     f"{len(r.sweep)} values (each value's model under {r.model_dir / 'l2'})")
+    elif r.best_pass is not None:
         lines.append(f"best holdout pass {r.best_pass}")
     lines.append(f"model written to {r.model_dir}")
     return "\n".join(lines)

@@ -51,6 +51,7 @@ from trainer.reader import Part, Reader
 from trainer.reader.examples import BucketExamples
 from trainer.scoring import write_scores
 from trainer.solvers import make_solver
+from trainer.sweep import is_sweep
 from trainer.training import Trainer, TrainResult, _StopFlag
 
 INSTALL = 'pip install -e ".[dask]"'
@@ -786,6 +787,9 @@ def train(cluster, spec, data, out, options, **kwargs) -> TrainResult:
         For a single-machine option changed, a cluster that cannot be reached, or as
         :meth:`ClusterTrainer.run`.
     """
+    if is_sweep(options.l2_strength):
+        raise UserError("--l2-strength: --cluster trains one L2 strength; give one value, or train the "
+                        "values without --cluster")
     default = type(options)()
     for name in ("epochs", "patience", "checkpoint_every"):
         if getattr(options, name) != getattr(default, name):

@@ -199,22 +199,33 @@ def accumulate(model, batches, *, by: str | None = None) -> EvalState:
     EvalState
         The accumulators over every batch.
     """
-    state = EvalState(BinaryMetrics() if model.has_probability else None,
-                      MarginMetrics() if model.loss == "squared-hinge" else None,
-                      SegmentSums() if by else None, np.zeros(2))
+    state = _new_state(model, by)
     for batch in batches:
-        margins = model.margin(batch)
-        if state.margins is not None:
-            state.margins.update(batch.labels, margins, batch.weights)
-            slack = np.maximum(0.0, 1.0 - (2.0 * batch.labels - 1.0) * margins)
-            state.hinge += (float(batch.weights @ slack**2), float(batch.weights.sum()))
-        if state.probs is not None:
-            probs = model.probability_from_margin(margins)
-            state.probs.update(batch.labels, probs, batch.weights,
-                               margins=margins if model.loss == "logistic" else None)
-            if state.segments is not None:
-                state.segments.update(batch.columns.column(by).combine_chunks(), batch.labels, probs, batch.weights)
+        _add(state, model, batch, by)
     return state
+
+
+def _new_state(model, by: str | None) -> EvalState:
+    """Empty accumulators for a model's scores (probabilities, margins, segments as they apply)."""
+    return EvalState(BinaryMetrics() if model.has_probability else None,
+                     MarginMetrics() if model.loss == "squared-hinge" else None,
+                     SegmentSums() if by else None, np.zeros(2))
+
+
+def _add(state: EvalState, model, batch, by: str | None) -> None:
+    """Score one batch with a model into its accumulators."""
+    margins = model.margin(batch)
+    if state.margins is not None:
+        state.margins.update(batch.labels, margins, batch.weights)
+        slack = np.maximum(0.0, 1.0 - (2.0 * batch.labels - 1.0) * margins)
+        state.hinge += (float(batch.weights @ slack**2), float(batch.weights.sum()))
+    if state.probs is not None:
+        probs = model.probability_from_margin(margins)
+        state.probs.update(batch.labels, probs, batch.weights,
+                           margins=margins if model.loss == "logistic" else None)
+        if state.segments is not None:
+            column = batch.columns.column(by).combine_chunks()
+            state.segments.update(column, batch.labels, probs, batch.weights)
 
 
 def summarize(state: EvalState, segments: int = 20) -> EvaluationResult:
@@ -270,3 +281,28 @@ def evaluate(model, reader: Reader, *, by: str | None = None, segments: int = 20
         The metrics summary.
     """
     return summarize(accumulate(model, reader.batches(), by=by), segments)
+
+
+def evaluate_many(models, reader: Reader) -> list[EvaluationResult]:
+    """Score every row of a reader with several models, reading and hashing the rows once.
+
+    Each model's summary equals :func:`evaluate` of that model on the same reader, bit for bit: its
+    accumulators see the same batches in the same order.
+
+    Parameters
+    ----------
+    models : sequence of trainer.model.Model
+        The models to score with.
+    reader : trainer.reader.stream.Reader
+        The labelled rows.
+
+    Returns
+    -------
+    list of EvaluationResult
+        One summary per model, in order.
+    """
+    states = [_new_state(model, None) for model in models]
+    for batch in reader.batches():
+        for model, state in zip(models, states):
+            _add(state, model, batch, None)
+    return [summarize(state) for state in states]

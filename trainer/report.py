@@ -14,6 +14,7 @@ from pathlib import Path
 
 from trainer.atomic import write_atomic
 from trainer.errors import UserError
+from trainer.run_folder import l2_label
 
 _WIDTH = 540
 _HEIGHT = 320
@@ -24,6 +25,8 @@ _PAD_BOTTOM = 52
 _BLUE = "#1f5f99"
 _ORANGE = "#d0661a"
 _GREY = "#8a8f98"
+#: Colours of the passes in the L2 sweep chart, in pass order (then again).
+_PASS_COLOURS = (_BLUE, _ORANGE, "#2e7d32", "#7b3fa0", "#8c564b", "#c2185b", "#00838f", "#5d6b00")
 _PROBABILITY_AXES = ("auto", "linear", "log")
 #: With ``probability_axis="auto"`` the reliability diagram is log-scaled below this base rate.
 LOG_AXIS_BELOW_BASE_RATE = 0.1
@@ -366,6 +369,62 @@ def _histogram_chart(hist) -> str:
     return plot.svg()
 
 
+def _sweep_points(sweep, loss: str) -> dict:
+    """{pass: [(l2 strength, holdout loss), ...]} of a sweep's records, finite losses only, by l2."""
+    by_pass: dict = {}
+    for p in sweep["points"]:
+        value = _holdout_loss(_with_margin_figures(p.get("holdout")), loss)
+        if math.isfinite(value) and math.isfinite(_num(p.get("l2_strength"))):
+            by_pass.setdefault(p["pass"], []).append((p["l2_strength"], value))
+    return {k: sorted(v) for k, v in sorted(by_pass.items())}
+
+
+def _sweep_chart(sweep, loss: str) -> str:
+    """Holdout loss against the L2 strength (log axis): one dot per value per pass, a line per pass,
+    the kept value marked by a dashed vertical line."""
+    loss_name = "log-loss" if loss == "logistic" else "squared hinge loss"
+    title = f"Holdout {loss_name} against L2 strength"
+    by_pass = {}
+    for k, pts in _sweep_points(sweep, loss).items():
+        if any(v > 0 for v, _ in pts):
+            by_pass[k] = [(math.log10(v), y) for v, y in pts if v > 0]
+    if not by_pass:
+        return _empty_chart(title, "no holdout figures recorded")
+    xs = sorted({x for pts in by_pass.values() for x, _ in pts})
+    ys = [y for pts in by_pass.values() for _, y in pts]
+    x_range = (xs[0] - 0.5, xs[-1] + 0.5) if len(xs) == 1 else _domain(xs)
+    plot = _Plot(title, x_range, _domain(ys), "L2 strength (log scale)", loss_name)
+    plot.axes([(x, l2_label(10.0 ** x)) for x in xs], [(t, _fmt(t)) for t in _nice_ticks(plot.y0, plot.y1)])
+    kept = _num(sweep.get("kept"))
+    if kept > 0:
+        x = plot.px(math.log10(kept))
+        plot.parts.append(f'<line x1="{x:.1f}" y1="{_PAD_TOP}" x2="{x:.1f}" y2="{_HEIGHT - _PAD_BOTTOM}" '
+                          f'stroke="{_GREY}" stroke-width="1.5" stroke-dasharray="6 4"/>')
+    legend = []
+    for i, (k, pts) in enumerate(by_pass.items()):
+        colour = _PASS_COLOURS[i % len(_PASS_COLOURS)]
+        plot.line([x for x, _ in pts], [y for _, y in pts], colour)
+        legend.append((f"pass {k}", colour, False))
+    plot.legend(legend + ([("kept", _GREY, True)] if kept > 0 else []))
+    return plot.svg()
+
+
+def _sweep_table(sweep, loss: str) -> str:
+    """A row per L2 strength: its holdout loss after each pass it ran, its best pass, and which is kept."""
+    by_pass = _sweep_points(sweep, loss)
+    passes = list(by_pass)
+    values = sorted({v for pts in by_pass.values() for v, _ in pts})
+    rows = []
+    for v in values:
+        losses = {k: y for k in passes for vv, y in by_pass[k] if vv == v}
+        best = min(losses, key=losses.get)
+        rows.append((l2_label(v), *(_fmt(losses[k], 5) if k in losses else "\u2013" for k in passes), best,
+                     "kept" if v == sweep.get("kept") else ""))
+    name = "log-loss" if loss == "logistic" else "squared hinge loss"
+    return _table(["L2 strength", *(f"holdout {name}, pass {k}" for k in passes), "best pass", ""], rows,
+                  text_cols=(len(passes) + 2,))
+
+
 def _table(headers, rows, text_cols=()) -> str:
     head = "".join(f'<th class="t">{_esc(h)}</th>' if i in text_cols else f"<th>{_esc(h)}</th>"
                    for i, h in enumerate(headers))
@@ -528,6 +587,20 @@ def _weights_tables(top_weights) -> str:
     return '<div class="row">' + "".join(parts) + "</div>"
 
 
+def _sweep_section(sweep, loss: str) -> str:
+    """The section of a run of several L2 strengths ("" for one)."""
+    if not sweep:
+        return ""
+    values = {p.get("l2_strength") for p in sweep["points"]}
+    return ("<section><h2>L2 strength</h2>"
+            f'<p class="note">{_esc(len(values))} L2 strengths were trained from one read of the log; the '
+            f"one with the lowest holdout loss, {_esc(l2_label(sweep['kept']))}, is kept, and the figures "
+            "above and below are its own. Each dot is one value after one pass; the dashed line marks the "
+            "kept value.</p>"
+            f'<div class="row">{_sweep_chart(sweep, loss)}</div>'
+            f'<div class="row" style="margin-top:18px">{_sweep_table(sweep, loss)}</div></section>')
+
+
 def render_report(run: dict, probability_axis: str = "auto") -> str:
     """Render a training run as one self-contained HTML page.
 
@@ -550,7 +623,10 @@ def render_report(run: dict, probability_axis: str = "auto") -> str:
         summary, or None), ``top_weights`` (list of {"bucket", "weight", "examples": [str, ...]}) and
         ``loss`` ("logistic" or "squared-hinge"); optional ``option_defaults`` (dict: each option's
         default value), ``resolved_options`` (dict: the value an unset option resolved to, e.g. the
-        solver's initial step) and ``best_pass`` (the pass whose weights were kept).
+        solver's initial step), ``best_pass`` (the pass whose weights were kept) and, after several L2
+        strengths (``trainer.sweep``), ``sweep``: {"kept": the value kept, "points": list of
+        {"l2_strength", "pass", "holdout"}, one per value per pass}, drawn as a chart of holdout loss
+        against L2 strength with a table of the same figures.
     probability_axis : {"auto", "linear", "log"}
         auto gives log-scaled axes when the final holdout's base rate is below
         :data:`LOG_AXIS_BELOW_BASE_RATE`: the equal-weight bins of a rare response sit at small
@@ -650,6 +726,7 @@ def render_report(run: dict, probability_axis: str = "auto") -> str:
         f'<div class="row" style="margin-top:18px">{ratio_chart}'
         f'{_progress_chart(run["progress"], loss_name)}</div>'
         f'<div class="row" style="margin-top:18px">{pass_table}</div></section>',
+        _sweep_section(run.get("sweep"), loss),
         "<section><h2>Calibration on the final holdout</h2>"
         f'<p class="note">{_esc(calibration_note)} Each dot is one bin of holdout rows of equal '
         f"weight{bin_count}, placed at its mean prediction and observed rate; bars show the 95% "

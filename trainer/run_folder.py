@@ -11,6 +11,8 @@ One training run owns one model folder (``MODEL_DIR``):
 - ``progress.json``: the progressive-validation curve;
 - ``model.json`` + ``model.npz``: the model (the best pass's when a holdout decides), written by
   :meth:`trainer.model.Model.save`;
+- ``l2/<value>/model.json`` + ``model.npz``: after a run of several L2 strengths (:mod:`trainer.sweep`),
+  each value's model, ``<value>`` written as :func:`l2_label` writes it;
 - ``report.html``: the report's default place.
 """
 
@@ -36,6 +38,27 @@ METRICS_FILE = "metrics.jsonl"
 PROGRESS_FILE = "progress.json"
 REPORT_FILE = "report.html"
 RUN_FILES = (RUN_FILE, CHECKPOINT_FILE, METRICS_FILE, PROGRESS_FILE, META_FILE, ARRAYS_FILE, REPORT_FILE)
+#: The folder of a sweep's per-value models.
+L2_FOLDER = "l2"
+MODEL_FILES = (META_FILE, ARRAYS_FILE)
+
+
+def l2_label(value: float) -> str:
+    """An L2 strength as the per-pass table and the ``l2/<value>`` folders write it.
+
+    The shortest scientific form that reads back as the same float (numpy's), e.g. ``1e-04``,
+    ``3e-05``, ``1.5e-04``.
+
+    Parameters
+    ----------
+    value : float
+        The L2 strength.
+
+    Returns
+    -------
+    str
+    """
+    return np.format_float_scientific(value, trim="-")
 
 
 class RunFolder:
@@ -90,9 +113,10 @@ class RunFolder:
             raise UserError(f"{self.path}: another hashcurve run is working in this folder right now; "
                             "wait for it to end or choose another --out") from None
         self._lock_fd = fd
-        for name in RUN_FILES:
-            for stale in self.path.glob(f".{name}.*.tmp"):
-                stale.unlink(missing_ok=True)
+        for folder, names in ((self.path, RUN_FILES), *((f, MODEL_FILES) for f in self._value_folders())):
+            for name in names:
+                for stale in folder.glob(f".{name}.*.tmp"):
+                    stale.unlink(missing_ok=True)
 
     def release(self) -> None:
         """Give up the folder's lock (a no-op when not held)."""
@@ -142,10 +166,33 @@ class RunFolder:
         """
         write_atomic(self.path / RUN_FILE, [json.dumps(run, indent=2).encode()])
 
+    def value_folder(self, value: float) -> Path:
+        """The folder of one L2 strength's model after a sweep (``l2/<value>``).
+
+        Parameters
+        ----------
+        value : float
+            The L2 strength.
+
+        Returns
+        -------
+        Path
+        """
+        return self.path / L2_FOLDER / l2_label(value)
+
+    def _value_folders(self) -> list[Path]:
+        top = self.path / L2_FOLDER
+        return sorted(p for p in top.iterdir() if p.is_dir()) if top.is_dir() else []
+
     def clear(self) -> None:
-        """Remove every file a run writes (other files are left alone)."""
+        """Remove every file a run writes, and the ``l2`` folders left empty (other files are left alone)."""
         for name in RUN_FILES:
             (self.path / name).unlink(missing_ok=True)
+        for folder in self._value_folders():
+            for name in MODEL_FILES:
+                (folder / name).unlink(missing_ok=True)
+            _remove_if_empty(folder)
+        _remove_if_empty(self.path / L2_FOLDER)
 
     def remove_new(self) -> None:
         """Remove the run's files and the folders :meth:`claim` made (a refused run leaves nothing)."""
@@ -186,19 +233,20 @@ class RunFolder:
         save_checkpoint(self.checkpoint, arrays, meta)
         write_atomic(self.path / PROGRESS_FILE, [json.dumps(progress).encode()])
 
-    def append_metrics(self, record: dict) -> None:
-        """Append one finished pass's record to ``metrics.jsonl``.
+    def append_metrics(self, *records: dict) -> None:
+        """Append a finished pass's records (one, or one per value of a sweep) to ``metrics.jsonl``.
 
-        The file is rewritten atomically, so a kill never leaves half a line.
+        The file is rewritten atomically, so a kill never leaves half a line or part of a pass's records.
 
         Parameters
         ----------
-        record : dict
-            The pass's record; non-finite values are written as null.
+        *records : dict
+            The pass's records; non-finite values are written as null.
         """
         path = self.path / METRICS_FILE
         before = path.read_bytes() if path.exists() else b""
-        write_atomic(path, [before, (json.dumps(jsonable(record), allow_nan=False) + "\n").encode()])
+        lines = ((json.dumps(jsonable(r), allow_nan=False) + "\n").encode() for r in records)
+        write_atomic(path, [before, *lines])
 
     def metrics(self) -> list[dict]:
         """Read ``metrics.jsonl``.
@@ -266,3 +314,10 @@ class RunFolder:
             For a missing, incomplete, corrupt or tampered-with model.
         """
         return load_model(self.path)
+
+
+def _remove_if_empty(folder: Path) -> None:
+    try:
+        folder.rmdir()
+    except OSError:
+        pass

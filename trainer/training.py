@@ -27,6 +27,12 @@ makes it the same way.
 
 Progressive validation ("online" or "test-then-train" evaluation, common practice): each batch's
 loss is measured before the solver learns from it.
+
+A :class:`Trainer`'s methods are of two kinds: those of its value (``take``/``step``,
+``fit_full_batch``, ``record_pass``, ``notes``, ``current_model``, ``finished``, ``checkpoint_parts``,
+``restore``) touch only its solver, iterate average and state; the others run the model folder,
+readers, phases, checkpoint file and per-pass table. :class:`trainer.sweep.SweepTrainer` is one run
+over several values, each stepped through the value methods of its own Trainer.
 """
 
 from __future__ import annotations
@@ -50,7 +56,7 @@ from trainer.metrics import fit_platt
 from trainer.model import Model
 from trainer.reader.examples import BucketExamples
 from trainer.reader.stream import Position, Reader
-from trainer.run_folder import RunFolder
+from trainer.run_folder import RunFolder, l2_label
 from trainer.solvers import full_batch
 from trainer.solvers import check_choice, check_float, check_int, make_solver, SOLVER_NAMES
 from trainer.spec import Spec
@@ -85,8 +91,9 @@ class TrainOptions:
         The data loss.
     solver : {"olbfgs", "res", "sgd", "adagrad"}
         The online method (:func:`trainer.solvers.make_solver`).
-    l2_strength : float, default 1e-4
-        lambda of the per-row-average objective ``(lambda / 2) ||w||^2``.
+    l2_strength : float, tuple of float or "auto", default 1e-4
+        lambda of the per-row-average objective ``(lambda / 2) ||w||^2``; several values (a tuple) or
+        "auto" train one model per value from one read of the log (:mod:`trainer.sweep`).
     history : int, default 10
         Curvature pairs kept (``olbfgs`` only; also scipy's L-BFGS-B memory of the full-batch phase).
     batch_rows : int, default 4096
@@ -123,7 +130,7 @@ class TrainOptions:
     epochs: int = 3
     loss: str = "logistic"
     solver: str = "olbfgs"
-    l2_strength: float = 1e-4
+    l2_strength: float | tuple[float, ...] | str = 1e-4
     history: int = 10
     batch_rows: int = 4096
     step0: float | None = None
@@ -149,7 +156,9 @@ class TrainOptions:
         check_int("--epochs", self.epochs, 1, 10_000)
         check_choice("--loss", self.loss, ("logistic", "squared-hinge"))
         check_choice("--solver", self.solver, SOLVER_NAMES)
-        check_float("--l2-strength", self.l2_strength, 0.0, 1e6)
+        if self.l2_strength != "auto":  # trainer.sweep.l2_option also checks the count and repeats of several
+            for value in self.l2_strength if isinstance(self.l2_strength, tuple) else (self.l2_strength,):
+                check_float("--l2-strength", value, 0.0, 1e6)
         check_int("--history", self.history, 1, 100)
         check_int("--batch-rows", self.batch_rows, 1, 10_000_000)
         if self.step0 is not None:
@@ -168,13 +177,19 @@ class TrainOptions:
         Returns
         -------
         dict
-            Every field by name; dates as YYYY-MM-DD.
+            Every field by name; dates as YYYY-MM-DD, several l2 strengths as a list.
         """
         out = {}
         for f in dataclasses.fields(self):
             v = getattr(self, f.name)
-            out[f.name] = v.isoformat() if isinstance(v, dt.date) else v
+            out[f.name] = v.isoformat() if isinstance(v, dt.date) else list(v) if isinstance(v, tuple) else v
         return out
+
+    @property
+    def phased(self) -> bool:
+        """Whether training goes in the default solver's phases: online passes whose model is the iterate
+        average, then full-batch passes when the hashed log fits ``full_batch_memory``."""
+        return self.solver == "olbfgs" and self.full_batch_memory > 0
 
 
 @dataclass
@@ -202,6 +217,17 @@ class _State:
     avg_pass: int = -1
     phases: list = dataclasses.field(default_factory=list)
 
+    def to_json(self) -> dict:
+        """The state as the checkpoint's meta holds it."""
+        s = dataclasses.asdict(self)
+        s["position"] = list(dataclasses.astuple(self.position)) if self.position else None
+        return s
+
+    @classmethod
+    def from_json(cls, s: dict) -> "_State":
+        """The state :meth:`to_json` wrote."""
+        return cls(**{**s, "position": Position(*s["position"]) if s["position"] is not None else None})
+
 
 @dataclass
 class TrainResult:
@@ -227,6 +253,12 @@ class TrainResult:
         Why training ended, in words.
     train_seconds, eval_seconds : float
         The passes' time reading and stepping, and evaluating the holdout, summed.
+    l2_strength : float or None
+        The model's L2 strength (the kept one of a sweep).
+    sweep : list of dict or None
+        Per value of a sweep (:mod:`trainer.sweep`): ``l2_strength``, ``best_pass``, ``holdout_loss``
+        (the best pass's), ``passes``, ``stopped`` (why it stopped stepping) and ``model_dir``; None for
+        one value.
     """
 
     model: Model
@@ -238,6 +270,8 @@ class TrainResult:
     stopping_reason: str
     train_seconds: float
     eval_seconds: float
+    l2_strength: float | None = None
+    sweep: list[dict] | None = None
 
 
 class _StopFlag:
@@ -317,21 +351,15 @@ class Trainer:
         self.spec, self.opt = spec, options
         self.quiet = quiet
         self.data = str(data)
-        self.holdout_path = str(holdout) if holdout is not None else (
-            self.data if (options.holdout_start or options.holdout_end) else None)
+        self.holdout_path = self.holdout_of(data, holdout, options)
         self.reader, self.holdout = self.readers(spec, data, options, self.holdout_path)
-        self.solver = make_solver(options.solver, spec.n_buckets, options.loss, options.l2_strength,
-                                  history=options.history, step0=options.step0, seed=options.seed)
-        self.state = _State()
+        self._make_state()
         self.folder = RunFolder(out)
         self.resume = resume
         self.examples = BucketExamples(spec.n_buckets)
         self._saved: tuple[int, int] | None = None
         self.memory = None
-        averaged = options.solver == "olbfgs" and options.full_batch_memory > 0
-        self.average = np.zeros(spec.n_buckets + 1) if averaged else None
         self._since_checkpoint = 0
-        self._window = [0.0, 0.0]
         self._point_rows = max(self.reader.total_rows // PROGRESS_POINTS_PER_PASS, options.batch_rows)
         try:
             self._prepare_folder(force)
@@ -339,6 +367,36 @@ class Trainer:
             self.folder.release()
             raise
         self.reader.watch(self.examples)
+
+    def _make_state(self) -> None:
+        """The solver this run steps, its training state and iterate average (``self.opt``'s value)."""
+        o = self.opt
+        self.solver = make_solver(o.solver, self.spec.n_buckets, o.loss, o.l2_strength, history=o.history,
+                                  step0=o.step0, seed=o.seed)
+        self.state = _State()
+        self.average = np.zeros(self.spec.n_buckets + 1) if o.phased else None
+        self._window = [0.0, 0.0]
+
+    @staticmethod
+    def holdout_of(data: str | Path, holdout: str | Path | None, options: TrainOptions) -> str | None:
+        """The holdout log's path: ``holdout``, else the training log when holdout days are given, else None.
+
+        Parameters
+        ----------
+        data : str or Path
+            The training log.
+        holdout : str or Path or None
+            The holdout log given.
+        options : TrainOptions
+            The options (``holdout_start``, ``holdout_end``).
+
+        Returns
+        -------
+        str or None
+        """
+        if holdout is not None:
+            return str(holdout)
+        return str(data) if (options.holdout_start or options.holdout_end) else None
 
     @staticmethod
     def readers(spec: Spec, data: str | Path, options: TrainOptions, holdout: str | None) -> tuple:
@@ -428,21 +486,46 @@ class Trainer:
         self.log(f"passes from {st.pass_index + 1} on: {phase} ({reason})")
 
     def _load_checkpoint(self) -> None:
+        arrays, meta = self._read_checkpoint()
+        self.restore(arrays, meta["state"])
+        self._resumed(meta)
+
+    def _read_checkpoint(self) -> tuple[dict, dict]:
+        """The folder's checkpoint (arrays, meta); refuses one of another run."""
         arrays, meta = self.folder.read_checkpoint()
         why = self._difference(meta["fingerprint"])
         if why:
             raise UserError(f"{self.folder.checkpoint}: cannot resume: {why}")
+        return arrays, meta
+
+    def _resumed(self, meta: dict) -> None:
+        """After the state was restored from a checkpoint's ``meta``: take its bucket examples, and drop the
+        metrics lines of the passes it does not count."""
+        ex = meta["examples"]
+        self.examples = BucketExamples(self.spec.n_buckets, max_rows=ex["rows_left"], values=ex["values"])
+        self._saved = (self.state.pass_index, self.state.rows_in_pass)
+        self.folder.keep_metrics(self.state.pass_index)
+
+    def restore(self, arrays: dict, state: dict) -> None:
+        """Take back the solver, iterate average and training state of :meth:`checkpoint_parts`.
+
+        Parameters
+        ----------
+        arrays : dict of str to numpy.ndarray
+            The arrays :meth:`checkpoint_parts` gave.
+        state : dict
+            The state it gave.
+
+        Raises
+        ------
+        UserError
+            When the solver's state was written with other settings.
+        """
         self.solver.load_state({k[7:]: (v.item() if v.ndim == 0 else v)
                                 for k, v in arrays.items() if k.startswith("solver.")})
         if self.average is not None:
             self.average[:] = arrays["average"]
-        ex = meta["examples"]
-        self.examples = BucketExamples(self.spec.n_buckets, max_rows=ex["rows_left"], values=ex["values"])
-        s = meta["state"]
-        s["position"] = Position(*s["position"]) if s["position"] is not None else None
-        self.state = _State(**s)
-        self._saved = (self.state.pass_index, self.state.rows_in_pass)
-        self.folder.keep_metrics(self.state.pass_index)
+        self.state = _State.from_json(state)
 
     def _refused(self, exc: UserError) -> UserError:
         """After a UserError stopped the run: remove what a run without a checkpoint wrote (and the
@@ -462,17 +545,41 @@ class Trainer:
     def save_checkpoint(self) -> None:
         """Write the complete state to ``checkpoint.bin`` (and the progress curve); the rows counted
         towards the next ``checkpoint_every`` start again from zero."""
+        arrays, state = self.checkpoint_parts()
+        self.write_checkpoint(arrays, {"state": state}, self.state.progress)
+
+    def write_checkpoint(self, arrays: dict, meta: dict, progress: list) -> None:
+        """Write ``checkpoint.bin`` (with the run's fingerprint and bucket examples added to ``meta``) and
+        ``progress.json``; the rows counted towards the next ``checkpoint_every`` start again from zero.
+
+        Parameters
+        ----------
+        arrays : dict of str to numpy.ndarray
+            The checkpoint's arrays.
+        meta : dict
+            Its meta: ``state``, the run's :class:`_State` as JSON, and whatever else the run keeps.
+        progress : list
+            The progressive-validation curve.
+        """
+        ex = self.examples
+        self.folder.write_checkpoint(arrays, {"fingerprint": self._fingerprint(), **meta,
+                                              "examples": {"values": ex.values, "rows_left": ex.rows_left}},
+                                     progress)
+        self._saved = (self.state.pass_index, self.state.rows_in_pass)
+        self._since_checkpoint = 0
+
+    def checkpoint_parts(self) -> tuple[dict, dict]:
+        """The solver, iterate average and training state as a checkpoint holds them.
+
+        Returns
+        -------
+        tuple of (dict of str to numpy.ndarray, dict)
+            The arrays (views of the live state, valid until the next step) and the state as JSON.
+        """
         arrays = {f"solver.{k}": np.asarray(v) for k, v in self.solver.state(copy=False).items()}
         if self.average is not None:
             arrays["average"] = self.average
-        s = dataclasses.asdict(self.state)
-        s["position"] = list(dataclasses.astuple(self.state.position)) if self.state.position else None
-        ex = self.examples
-        self.folder.write_checkpoint(arrays, {"fingerprint": self._fingerprint(), "state": s,
-                                              "examples": {"values": ex.values, "rows_left": ex.rows_left}},
-                                     self.state.progress)
-        self._saved = (self.state.pass_index, self.state.rows_in_pass)
-        self._since_checkpoint = 0
+        return arrays, self.state.to_json()
 
     # -- the model --------------------------------------------------------------------------------
 
@@ -560,7 +667,7 @@ class Trainer:
                 while st.pass_index < self.opt.epochs and not st.stopped_early:
                     started = time.monotonic()
                     fitted = None
-                    if st.phase == "full-batch":
+                    if st.phase == "full-batch" and self.collect():
                         fitted = self.full_batch_pass(stop)
                     if fitted is None:
                         self._one_pass(stop)
@@ -582,42 +689,90 @@ class Trainer:
         if not self.fresh or st.phases:
             return
         batches = -(-self.reader.total_rows // self.opt.batch_rows)
-        if self._full_batch_allowed() and batches <= TINY_BATCHES:
+        if self.opt.phased and batches <= TINY_BATCHES:
             self._choose_phase("full-batch", f"a tiny log: {self.reader.total_rows:,} rows, at most "
                                f"{TINY_BATCHES} batches of {self.opt.batch_rows}")
-
-    def _full_batch_allowed(self) -> bool:
-        return self.opt.solver == "olbfgs" and self.opt.full_batch_memory > 0
 
     def _budget(self) -> int:
         return self.opt.full_batch_memory * 2**20
 
-    def full_batch_pass(self, stop: _StopFlag) -> dict | None:
-        """One full-batch pass (reads the log into memory first when needed); returns its summary, or
-        None after switching back to online passes when the log turned out not to fit the budget.
-        Raises Interrupted on SIGINT/SIGTERM, keeping the checkpoint of the last finished pass."""
-        st, opt = self.state, self.opt
+    def collect(self) -> bool:
+        """Before a full-batch pass: read the log into memory (``self.memory``) unless it is there.
+
+        In the first pass, the class counts come from it.
+
+        Returns
+        -------
+        bool
+            False after switching back to online passes, when the log turned out not to fit the budget.
+        """
+        st = self.state
         if self.memory is None:
             self.memory = full_batch.InMemoryLog.collect(self.reader.batches(0), self._budget(), self.spec.n_buckets)
             if self.memory is None:
-                self._choose_phase("online", f"the hashed log does not fit --full-batch-memory {opt.full_batch_memory} MB")
-                return None
+                self._choose_phase("online", f"the hashed log does not fit --full-batch-memory "
+                                   f"{self.opt.full_batch_memory} MB")
+                return False
         if st.pass_index == 0:
             st.positives = int(np.count_nonzero(self.memory.labels))
             st.negatives = self.memory.n_rows - st.positives
-        x = self._model_x()
-        fitted = full_batch.minimize(self.memory, self.solver.code, opt.l2_strength, x, history=opt.history,
-                                     stop=lambda: stop.signal is not None)
+        return True
+
+    def full_batch_pass(self, stop: _StopFlag) -> dict:
+        """One full-batch pass on the collected log (:meth:`collect`).
+
+        Parameters
+        ----------
+        stop : _StopFlag
+            Polled after every iteration.
+
+        Returns
+        -------
+        dict
+            The pass's summary (:meth:`fit_full_batch`).
+
+        Raises
+        ------
+        Interrupted
+            On SIGINT/SIGTERM, keeping the checkpoint of the last finished pass.
+        """
+        fitted = self.fit_full_batch(self.memory, stop)
         if fitted["stopped"]:
-            name = signal.Signals(stop.signal).name
-            raise Interrupted(f"{name}: stopped in full-batch pass {st.pass_index + 1}; the checkpoint of pass "
-                              f"{st.pass_index} in {self.folder.checkpoint} is kept; continue with the same "
-                              "command plus --resume")
-        self.solver.assign(x)
-        st.avg_count = 0
-        st.rows_in_pass = self.memory.n_rows
-        st.rows_total += self.memory.n_rows
+            raise self._stopped_in_full_batch(stop.signal)
         return fitted
+
+    def fit_full_batch(self, memory: full_batch.InMemoryLog, stop: _StopFlag) -> dict:
+        """Run this value's full-batch pass on an in-memory log, from the model's weights.
+
+        Parameters
+        ----------
+        memory : trainer.solvers.full_batch.InMemoryLog
+            The hashed log.
+        stop : _StopFlag
+            Polled after every iteration.
+
+        Returns
+        -------
+        dict
+            The summary of :func:`trainer.solvers.full_batch.minimize`; with ``stopped`` set by a signal,
+            the weights and state are left as they were.
+        """
+        st, opt = self.state, self.opt
+        x = self._model_x()
+        fitted = full_batch.minimize(memory, self.solver.code, opt.l2_strength, x, history=opt.history,
+                                     stop=lambda: stop.signal is not None)
+        if not fitted["stopped"]:
+            self.solver.assign(x)
+            st.avg_count = 0
+            st.rows_in_pass = memory.n_rows
+            st.rows_total += memory.n_rows
+        return fitted
+
+    def _stopped_in_full_batch(self, signum: int) -> Interrupted:
+        st = self.state
+        return Interrupted(f"{signal.Signals(signum).name}: stopped in full-batch pass {st.pass_index + 1}; "
+                           f"the checkpoint of pass {st.pass_index} in {self.folder.checkpoint} is kept; "
+                           "continue with the same command plus --resume")
 
     def _diverged(self, exc: Diverged, batch) -> Diverged:
         """The solver's Diverged message, naming a numeric column without edges whose huge values in
@@ -634,8 +789,7 @@ class Trainer:
                         "\"log1p\" or \"edges\" in the spec")
 
     def take(self, batch) -> bool:
-        """Step the solver on one batch of the current pass and count it (progressive loss, progress
-        curve, first-pass class counts, iterate average).
+        """Count one batch of the current pass and step the solver on it (:meth:`count`, :meth:`step`).
 
         Parameters
         ----------
@@ -652,33 +806,66 @@ class Trainer:
         Diverged
             When the step would make the loss, gradient or weights non-finite.
         """
+        due = self.count(batch)
+        self.step(batch)
+        return due
+
+    def count(self, batch) -> bool:
+        """Count one batch of the current pass: rows, reader position, first-pass class counts and entries.
+
+        Parameters
+        ----------
+        batch : trainer.reader.stream.Batch
+            The pass's next batch.
+
+        Returns
+        -------
+        bool
+            True when ``checkpoint_every`` rows have gone by since the last checkpoint.
+        """
         st = self.state
-        try:
-            loss = self.solver.step(batch)
-        except Diverged as exc:
-            raise self._diverged(exc, batch) from None
         if st.pass_index == 0:
             pos = int(np.count_nonzero(batch.labels))
             st.positives += pos
             st.negatives += batch.n_rows - pos
             st.entries += batch.indices.shape[0]
+        st.rows_in_pass += batch.n_rows
+        st.rows_total += batch.n_rows
+        st.position = batch.position
+        self._since_checkpoint += batch.n_rows
+        return self._since_checkpoint >= self.opt.checkpoint_every
+
+    def step(self, batch) -> None:
+        """Step the solver on a batch :meth:`count` counted; add to the progressive loss, the progress
+        curve and the iterate average.
+
+        Parameters
+        ----------
+        batch : trainer.reader.stream.Batch
+            The batch.
+
+        Raises
+        ------
+        Diverged
+            When the step would make the loss, gradient or weights non-finite.
+        """
+        st = self.state
+        try:
+            loss = self.solver.step(batch)
+        except Diverged as exc:
+            raise self._diverged(exc, batch) from None
         w = float(batch.weights.sum())
         st.pv_loss += loss * w
         st.pv_weight += w
         self._window[0] += loss * w
         self._window[1] += w
-        st.rows_in_pass += batch.n_rows
-        st.rows_total += batch.n_rows
         st.steps += 1
-        st.position = batch.position
-        self._since_checkpoint += batch.n_rows
         if self.average is not None:
             self._average()
         point = self._point_rows
         if self._window[1] and (st.rows_in_pass // point) != ((st.rows_in_pass - batch.n_rows) // point):
             st.progress.append({"rows": st.rows_total, "loss": self._window[0] / self._window[1]})
             self._window = [0.0, 0.0]
-        return self._since_checkpoint >= self.opt.checkpoint_every
 
     def interrupted(self, signum: int) -> Interrupted:
         """Save a checkpoint after a signal stopped an online pass; the Interrupted error to raise.
@@ -698,6 +885,17 @@ class Trainer:
                            f"{st.rows_in_pass:,} rows; checkpoint saved in {self.folder.checkpoint}; continue "
                            "with the same command plus --resume")
 
+    def progress_text(self) -> str:
+        """The progress bar's note.
+
+        Returns
+        -------
+        str
+            The pass's progressive loss so far.
+        """
+        st = self.state
+        return f"progressive loss {st.pv_loss / st.pv_weight:.5f}"
+
     def _one_pass(self, stop: _StopFlag) -> None:
         st = self.state
         bar = tqdm(total=self.reader.total_rows, initial=st.rows_in_pass, unit="rows", unit_scale=True,
@@ -710,7 +908,7 @@ class Trainer:
                 self.save_checkpoint()
             bar.update(batch.n_rows)
             if time.monotonic() - shown > 0.5:
-                bar.set_postfix_str(f"progressive loss {st.pv_loss / st.pv_weight:.5f}")
+                bar.set_postfix_str(self.progress_text())
                 shown = time.monotonic()
             if stop.signal is not None:
                 bar.close()
@@ -718,58 +916,150 @@ class Trainer:
         bar.close()
 
     def finish_pass(self, train_seconds: float, fitted: dict | None = None) -> None:
-        """Evaluate, record and checkpoint the pass just run (``fitted``: a full-batch pass's summary)."""
+        """Evaluate, record and checkpoint the pass just run.
+
+        Parameters
+        ----------
+        train_seconds : float
+            The pass's time reading and stepping.
+        fitted : dict, optional
+            A full-batch pass's summary (None after an online pass).
+        """
+        self.check_classes()
+        started = time.monotonic()
+        holdout = None
+        if self.holdout is not None:
+            holdout = evaluate(self.current_model(), self.holdout)
+        record, improved = self.record_pass(train_seconds, time.monotonic() - started, fitted, holdout)
+        if improved:
+            self.folder.save_model(self.current_model(holdout))
+        self.folder.append_metrics(record)
+        self.log(self.table_row(record))
+        for line in self.notes(record):
+            self.log(line)
+        self.next_phase()
+        self.save_checkpoint()
+
+    def check_classes(self) -> None:
+        """After the first pass: refuse a log of one class unless ``allow_one_class`` (a no-op later).
+
+        Raises
+        ------
+        UserError
+            Naming the log, the two counts and the label column.
+        """
         st = self.state
         if st.pass_index == 0 and not self.opt.allow_one_class and not (st.positives and st.negatives):
             raise UserError(f"{self.data}: the training rows after the filters hold {st.negatives:,} negative "
                             f"and {st.positives:,} positive labels (column '{self.spec.label_column}'); a "
                             "response model needs both classes; --allow-one-class trains anyway")
-        started = time.monotonic()
-        holdout = None
-        if self.holdout is not None:
-            holdout = evaluate(self.current_model(), self.holdout)
-        st.pass_index += 1
-        record = {"pass": st.pass_index, "rows": st.rows_in_pass, "rows_total": st.rows_total,
+
+    def record_pass(self, train_seconds: float, eval_seconds: float, fitted: dict | None,
+                    holdout: dict | None) -> tuple[dict, bool]:
+        """Close this value's pass (:meth:`end_pass`): its ``metrics.jsonl`` record, the best pass and
+        the early stop.
+
+        Parameters
+        ----------
+        train_seconds, eval_seconds : float
+            The pass's time reading and stepping, and evaluating the holdout.
+        fitted : dict or None
+            A full-batch pass's summary (None after an online pass).
+        holdout : dict or None
+            The holdout metrics of the pass's model (None without a holdout).
+
+        Returns
+        -------
+        tuple of (dict, bool)
+            The record, and whether its holdout loss is the best so far (the caller keeps the model).
+        """
+        st = self.state
+        record = {"pass": st.pass_index + 1, "rows": st.rows_in_pass, "rows_total": st.rows_total,
                   "progressive_loss": st.pv_loss / st.pv_weight if st.pv_weight else None,
-                  "holdout": holdout, "train_seconds": train_seconds, "eval_seconds": time.monotonic() - started,
+                  "holdout": holdout, "train_seconds": train_seconds, "eval_seconds": eval_seconds,
                   "phase": "online" if fitted is None else "full-batch"}
         if fitted is not None:
             record["full_batch"] = {k: fitted[k] for k in ("iterations", "evaluations", "objective", "converged")}
-        if holdout is not None:
-            score = _holdout_score(holdout, self.opt.loss)
-            if st.best_score is None or score < st.best_score:
-                st.best_score, st.best_pass, st.bad_passes = score, st.pass_index, 0
-                self.folder.save_model(self.current_model(holdout))
-            else:
-                st.bad_passes += 1
-                if st.bad_passes >= self.opt.patience and st.pass_index < self.opt.epochs:
-                    st.stopped_early = True
-        self.folder.append_metrics(record)
-        self.log(self.table_row(record))
-        ratio = _off_calibration(holdout)
-        if ratio is not None:
-            self.log(f"  ! pass {st.pass_index}: the holdout's mean prediction is {ratio:.2f}x its observed rate "
-                     f"(outside [{CALIBRATED[0]}, {CALIBRATED[1]}]): not calibrated yet")
-        if st.stopped_early:
-            self.log(f"early stop: holdout loss has not improved for {st.bad_passes} pass(es); "
-                     f"keeping the weights of pass {st.best_pass}")
+        self.end_pass()
+        st.pv_loss, st.pv_weight = 0.0, 0.0
+        self._window = [0.0, 0.0]
+        if holdout is None:
+            return record, False
+        score = _holdout_score(holdout, self.opt.loss)
+        if st.best_score is None or score < st.best_score:
+            st.best_score, st.best_pass, st.bad_passes = score, st.pass_index, 0
+            return record, True
+        st.bad_passes += 1
+        if st.bad_passes >= self.opt.patience and st.pass_index < self.opt.epochs:
+            st.stopped_early = True
+        return record, False
+
+    def end_pass(self) -> None:
+        """Count a finished pass: the pass index, the first pass's rows, the position back to the start."""
+        st = self.state
+        st.pass_index += 1
         if st.pass_index == 1:
             st.rows_first_pass = st.rows_in_pass
-        st.position, st.rows_in_pass, st.pv_loss, st.pv_weight = None, 0, 0.0, 0.0
-        self._window = [0.0, 0.0]
-        if st.pass_index == 1 and st.phase == "online" and self._full_batch_allowed() and st.pass_index < self.opt.epochs:
+        st.position, st.rows_in_pass = None, 0
+
+    def notes(self, record: dict, who: str = "") -> list[str]:
+        """The lines that follow a pass's table row: a predicted/observed ratio outside ``CALIBRATED``,
+        an early stop.
+
+        Parameters
+        ----------
+        record : dict
+            The pass's record (:meth:`record_pass`).
+        who : str, optional
+            Text naming the value, after "pass N" and "early stop" (a sweep's).
+
+        Returns
+        -------
+        list of str
+        """
+        st, lines = self.state, []
+        ratio = _off_calibration(record["holdout"])
+        if ratio is not None:
+            lines.append(f"  ! pass {record['pass']}{who}: the holdout's mean prediction is {ratio:.2f}x its "
+                         f"observed rate (outside [{CALIBRATED[0]}, {CALIBRATED[1]}]): not calibrated yet")
+        if st.stopped_early:
+            lines.append(f"early stop{who}: holdout loss has not improved for {st.bad_passes} pass(es); "
+                         f"keeping the weights of pass {st.best_pass}")
+        return lines
+
+    def next_phase(self) -> None:
+        """After the first online pass: switch to full-batch passes when the hashed log fits the budget."""
+        st = self.state
+        if st.pass_index == 1 and st.phase == "online" and self.opt.phased and self.opt.epochs > 1:
             size = full_batch.log_bytes(st.rows_total, st.entries)
             if size <= self._budget():
                 self._choose_phase("full-batch", f"the hashed log takes {size / 2**20:.0f} MB in memory, within "
                                    f"--full-batch-memory {self.opt.full_batch_memory} MB")
-        self.save_checkpoint()
 
     def _final_model(self) -> Model:
+        model = self.finished(self.current_model() if self.holdout is None else self.folder.load_model())
+        self.folder.save_model(model)
+        return model
+
+    def finished(self, model: Model) -> Model:
+        """The final form of the kept model: a squared-hinge model with a holdout gets its Platt
+        calibration, and the summary says how training ended.
+
+        Parameters
+        ----------
+        model : Model
+            The model kept (the best pass's with a holdout, else the last).
+
+        Returns
+        -------
+        Model
+
+        References
+        ----------
+        "Probabilistic Outputs for Support Vector Machines and Comparisons to Regularized Likelihood
+        Methods", Advances in Large Margin Classifiers, MIT Press, 1999.
+        """
         st = self.state
-        if self.holdout is None:
-            model = self.current_model()
-        else:
-            model = self.folder.load_model()
         if self.opt.loss == "squared-hinge" and self.holdout is not None:
             margins, labels, weights = [], [], []
             rows = 0
@@ -786,7 +1076,6 @@ class Trainer:
                           {**model.info, "calibration": calibration})
         model.info["summary"].update({"passes": st.pass_index, "stopped_early": st.stopped_early,
                                       "best_pass": st.best_pass})
-        self.folder.save_model(model)
         return model
 
     def _result(self, model: Model) -> TrainResult:
@@ -798,7 +1087,8 @@ class Trainer:
         else:
             reason = f"reached --epochs {self.opt.epochs}"
         return TrainResult(model, self.folder.path, st.pass_index, records, st.best_pass, st.stopped_early, reason,
-                           sum(r["train_seconds"] for r in records), sum(r["eval_seconds"] for r in records))
+                           sum(r["train_seconds"] for r in records), sum(r["eval_seconds"] for r in records),
+                           l2_strength=self.opt.l2_strength)
 
     # -- the per-pass table -------------------------------------------------------------------------
 
@@ -813,9 +1103,13 @@ class Trainer:
         if not self.quiet:
             print(line, flush=True)
 
+    #: Whether the per-pass table has a column naming each row's L2 strength (a sweep's rows).
+    value_column = False
+
     def table_header(self) -> str:
         """The per-pass table's header line (the columns of :meth:`table_row`)."""
-        return (f"{'pass':>4} {'rows':>11} {'train loss':>11} {'holdout loss':>13} {'norm.ent':>9} "
+        value = f" {'l2':>9}" if self.value_column else ""
+        return (f"{'pass':>4}{value} {'rows':>11} {'train loss':>11} {'holdout loss':>13} {'norm.ent':>9} "
                 f"{'AUC':>7} {'pred/obs':>9} {'error':>7} {'train s':>8} {'eval s':>7}  {'phase':<10}")
 
     def table_row(self, rec: dict) -> str:
@@ -824,19 +1118,21 @@ class Trainer:
         Parameters
         ----------
         rec : dict
-            The pass's ``metrics.jsonl`` record.
+            The pass's ``metrics.jsonl`` record (with ``l2_strength`` in a table of :attr:`value_column`).
 
         Returns
         -------
         str
         """
+        value = f" {l2_label(rec['l2_strength']):>9}" if self.value_column else ""
         h = rec["holdout"] or {}
         margin = h.get("margin", {})
         loss = h.get("log_loss", h.get("squared_hinge_loss"))
         flagged = _off_calibration(h) is not None
 
         f = format_cell
-        return (f"{rec['pass']:>4} {rec['rows']:>11,} {f(rec['progressive_loss'], '11.5f')} {f(loss, '13.5f')} "
+        return (f"{rec['pass']:>4}{value} {rec['rows']:>11,} {f(rec['progressive_loss'], '11.5f')} "
+                f"{f(loss, '13.5f')} "
                 f"{f(h.get('normalized_entropy'), '9.4f')} {f(h.get('auc', margin.get('auc')), '7.4f')} "
                 f"{f(h.get('calibration_ratio'), '8.4f')}{'!' if flagged else ' '} {f(h.get('error_rate', margin.get('error_rate')), '7.4f')} "
                 f"{rec['train_seconds']:8.1f} {rec['eval_seconds']:7.1f}  {rec.get('phase', ''):<10}")

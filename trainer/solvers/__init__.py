@@ -314,6 +314,26 @@ class LinearSolver:
         self._bits = np.zeros((self.n + 63) // 64, dtype=np.uint64)
         self.t = 0
 
+    @classmethod
+    def dense_bytes(cls, n_features: int, history: int = 10) -> int:
+        """Bytes of the arrays the method keeps whose size grows with the buckets.
+
+        Here the float64 weights (n_features + 1 values) and the bitmap of a batch's buckets; methods
+        with more state add theirs.
+
+        Parameters
+        ----------
+        n_features : int
+            Number of buckets.
+        history : int, default 10
+            The curvature memory (read by the methods that keep one).
+
+        Returns
+        -------
+        int
+        """
+        return 8 * (n_features + 1) + 8 * ((n_features + 63) // 64)
+
     @property
     def weights(self) -> np.ndarray:
         """Bucket weights, a read-only float64 view of length n_features."""
@@ -474,21 +494,52 @@ def make_solver(name: str, n_features: int, loss: str, l2: float, *, history: in
         Naming the option for an unknown name, loss or option, ``history`` with another method, or a
         value out of range.
     """
-    check_choice("--solver", name, SOLVER_NAMES)
+    cls = _method(name)
     check_int("--seed", seed, 0, 2**32 - 1)
     if name != "olbfgs" and history != 10:
         raise UserError(f"--history applies to --solver olbfgs only; got --solver {name}")
     if name == "olbfgs":
-        from trainer.solvers.olbfgs import OnlineLBFGS as cls
         method_options["history"] = history
+    for key in method_options:
+        if key != "history" and key not in cls.OPTIONS:
+            accepted = ", ".join(cls.OPTIONS) or "none"
+            raise UserError(f"unknown option {key!r} for --solver {name}; accepted: {accepted}")
+    return cls(n_features, loss, l2, step0=step0, **method_options)
+
+
+def solver_bytes(name: str, n_features: int, history: int = 10) -> int:
+    """Bytes of the state a solver keeps per bucket, before it steps (each method's ``dense_bytes``).
+
+    Parameters
+    ----------
+    name : {"olbfgs", "res", "sgd", "adagrad"}
+        The method.
+    n_features : int
+        Number of buckets.
+    history : int, default 10
+        The curvature memory (olbfgs).
+
+    Returns
+    -------
+    int
+
+    Raises
+    ------
+    UserError
+        For an unknown method.
+    """
+    return _method(name).dense_bytes(n_features, history)
+
+
+def _method(name: str) -> type:
+    """The class of a method named by ``make_solver``; raises UserError for another name."""
+    check_choice("--solver", name, SOLVER_NAMES)
+    if name == "olbfgs":
+        from trainer.solvers.olbfgs import OnlineLBFGS as cls
     elif name == "res":
         from trainer.solvers.res import RES as cls
     elif name == "sgd":
         from trainer.solvers.sgd import SGD as cls
     else:
         from trainer.solvers.adagrad import AdaGrad as cls
-    for key in method_options:
-        if key != "history" and key not in cls.OPTIONS:
-            accepted = ", ".join(cls.OPTIONS) or "none"
-            raise UserError(f"unknown option {key!r} for --solver {name}; accepted: {accepted}")
-    return cls(n_features, loss, l2, step0=step0, **method_options)
+    return cls

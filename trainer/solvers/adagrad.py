@@ -56,6 +56,24 @@ class AdaGrad(FirstOrderSolver):
         self.delta = check_float("delta", delta, 0.0, 1e6, lo_open=True)
         self._acc = np.zeros(self.n + 1, dtype=np.float64)
 
+    @classmethod
+    def dense_bytes(cls, n_features: int, history: int = 10) -> int:
+        """Bytes of the weights, the bitmap of a batch's buckets and the float64 sums of squared
+        gradients (n_features + 1 values); ``history`` is not read.
+
+        Parameters
+        ----------
+        n_features : int
+            Number of buckets.
+        history : int, default 10
+            Unused (no curvature memory).
+
+        Returns
+        -------
+        int
+        """
+        return super().dense_bytes(n_features) + 8 * (n_features + 1)
+
     def _options(self) -> dict:
         return {"step0": self.step0, "delta": self.delta}
 

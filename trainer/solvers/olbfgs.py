@@ -213,6 +213,28 @@ class OnlineLBFGS(LinearSolver):
         self._diag_scale = 1.0
         self._q = np.empty(size, dtype=np.dtype(self.pair_dtype))
 
+    @classmethod
+    def dense_bytes(cls, n_features: int, history: int = 10) -> int:
+        """Bytes of the arrays that grow with the buckets, at the default float32 ``pair_dtype``.
+
+        The stored steps and the direction ((history + 1) x (n_features + 1) float32 values), the
+        weights and the curvature diagonal (2 x (n_features + 1) float64) and the bitmap of a batch's
+        buckets. Not counted: the sparse parts of the pairs (at most ``history`` x a batch's distinct
+        buckets) and the diagonal's copy during the first step.
+
+        Parameters
+        ----------
+        n_features : int
+            Number of buckets.
+        history : int, default 10
+            Pairs kept.
+
+        Returns
+        -------
+        int
+        """
+        return super().dense_bytes(n_features) + (4 * (history + 1) + 8) * (n_features + 1)
+
     def step(self, batch) -> float:
         """One oLBFGS update from a batch.
 

@@ -79,6 +79,24 @@ class RES(LinearSolver):
         self._B = np.zeros((self.n + 1, self.n + 1), dtype=np.float64, order="F")
         self._started = False
 
+    @classmethod
+    def dense_bytes(cls, n_features: int, history: int = 10) -> int:
+        """Bytes of the weights, the bitmap of a batch's buckets and the dense float64 matrix B
+        ((n_features + 1)^2 values); ``history`` is not read.
+
+        Parameters
+        ----------
+        n_features : int
+            Number of buckets.
+        history : int, default 10
+            Unused (B replaces a curvature memory).
+
+        Returns
+        -------
+        int
+        """
+        return super().dense_bytes(n_features) + 8 * (n_features + 1) ** 2
+
     def _options(self) -> dict:
         return {"step0": self.step0, "t0": self.t0, "delta": self.delta, "gamma": self.gamma}
 
