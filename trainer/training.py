@@ -44,11 +44,12 @@ from trainer.errors import Diverged, Interrupted, UserError
 from trainer.evaluation import evaluate
 from trainer.metrics import fit_platt
 from trainer.model import Model
+from trainer.options import TrainOptions
 from trainer.reader.examples import BucketExamples
 from trainer.reader.stream import Position, Reader
 from trainer.run_folder import RunFolder
 from trainer.solvers import full_batch
-from trainer.solvers import check_choice, check_float, check_int, make_solver, SOLVER_NAMES
+from trainer.solvers import make_solver
 from trainer.spec import Spec
 
 PROGRESS_POINTS_PER_PASS = 200
@@ -65,112 +66,6 @@ HUGE_NUMERIC = 1e3
 TINY_BATCHES = 16
 #: The model of an online pass of the default solver averages the iterates over this last part of the pass.
 AVERAGE_FRACTION = 0.75
-
-
-@dataclass
-class TrainOptions:
-    """Training options; the ones in ``TRAJECTORY`` decide the weights and must match on resume.
-
-    Each is the command line's option of the same name (``--l2-strength`` for ``l2_strength``).
-
-    Attributes
-    ----------
-    epochs : int, default 3
-        Passes over the log.
-    loss : {"logistic", "squared-hinge"}
-        The data loss.
-    solver : {"olbfgs", "res", "sgd", "adagrad"}
-        The online method (:func:`trainer.solvers.make_solver`).
-    l2_strength : float, default 1e-4
-        lambda of the per-row-average objective ``(lambda / 2) ||w||^2``.
-    history : int, default 10
-        Curvature pairs kept (``olbfgs`` only; also scipy's L-BFGS-B memory of the full-batch phase).
-    batch_rows : int, default 4096
-        Rows per minibatch.
-    step0 : float or None
-        The solver's initial step (None: the method's default).
-    seed : int, default 0
-        Seed of shuffling and negative sampling (no solver draws random numbers).
-    shuffle_buffer : int, default 0
-        Rows per shuffle window (0: file order).
-    negative_keep_rate : float, default 1.0
-        Keep each negative row with this probability; ``ln Q`` is added to the intercept so predictions
-        stay calibrated on unsampled data ("Practical Lessons from Predicting Clicks on Ads at
-        Facebook", ADKDD, 2014).
-    checkpoint_every : int, default 2000000
-        Rows between checkpoints (and one at each pass end).
-    patience : int, default 1
-        Passes without a better holdout loss before an early stop.
-    start, end : datetime.date or None
-        Inclusive day filter of the training log.
-    holdout_start, holdout_end : datetime.date or None
-        Days of the training log used as the holdout.
-    skip_bad_labels : bool
-        Drop rows with a null or unaccepted label instead of refusing the log.
-    allow_one_class : bool
-        Accept a log whose labels are all 0 or all 1.
-    full_batch_memory : int, default 1024
-        MB within which the hashed log is trained full-batch after the first pass (0: plain online
-        passes, no iterate averaging).
-    refine_iterations : int, default 20
-        L-BFGS-B iterations of training over a cluster only (``trainer.cluster``).
-    """
-
-    epochs: int = 3
-    loss: str = "logistic"
-    solver: str = "olbfgs"
-    l2_strength: float = 1e-4
-    history: int = 10
-    batch_rows: int = 4096
-    step0: float | None = None
-    seed: int = 0
-    shuffle_buffer: int = 0
-    negative_keep_rate: float = 1.0
-    checkpoint_every: int = 2_000_000
-    patience: int = 1
-    start: dt.date | None = None
-    end: dt.date | None = None
-    holdout_start: dt.date | None = None
-    holdout_end: dt.date | None = None
-    skip_bad_labels: bool = False
-    allow_one_class: bool = False
-    full_batch_memory: int = 1024
-    refine_iterations: int = 20
-
-    TRAJECTORY = ("loss", "solver", "l2_strength", "history", "batch_rows", "step0", "seed", "shuffle_buffer",
-                  "negative_keep_rate", "start", "end", "skip_bad_labels", "full_batch_memory")
-
-    def validate(self) -> None:
-        """Raise UserError naming the first option outside its accepted range."""
-        check_int("--epochs", self.epochs, 1, 10_000)
-        check_choice("--loss", self.loss, ("logistic", "squared-hinge"))
-        check_choice("--solver", self.solver, SOLVER_NAMES)
-        check_float("--l2-strength", self.l2_strength, 0.0, 1e6)
-        check_int("--history", self.history, 1, 100)
-        check_int("--batch-rows", self.batch_rows, 1, 10_000_000)
-        if self.step0 is not None:
-            check_float("--step0", self.step0, 0.0, 1e6, lo_open=True)
-        check_int("--seed", self.seed, 0, 2**32 - 1)
-        check_int("--shuffle-buffer", self.shuffle_buffer, 0, 100_000_000)
-        check_float("--negative-keep-rate", self.negative_keep_rate, 0.0, 1.0, lo_open=True)
-        check_int("--checkpoint-every", self.checkpoint_every, 1, 10**15)
-        check_int("--patience", self.patience, 1, 10_000)
-        check_int("--full-batch-memory", self.full_batch_memory, 0, 10_000_000)
-        check_int("--refine-iterations", self.refine_iterations, 0, 100_000)
-
-    def as_json(self) -> dict:
-        """The options as JSON values.
-
-        Returns
-        -------
-        dict
-            Every field by name; dates as YYYY-MM-DD.
-        """
-        out = {}
-        for f in dataclasses.fields(self):
-            v = getattr(self, f.name)
-            out[f.name] = v.isoformat() if isinstance(v, dt.date) else v
-        return out
 
 
 @dataclass
