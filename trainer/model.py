@@ -21,7 +21,6 @@ import zipfile
 from pathlib import Path
 
 import numpy as np
-from scipy.special import expit
 
 from trainer import __version__
 from trainer.atomic import atomic_path, write_atomic
@@ -30,6 +29,7 @@ from trainer.export import (EXPORT_FILES, EXPORT_FORMAT, FORMAT_VERSION, META_FI
                             scoring_sha256, sha256_file)
 from trainer.json_values import jsonable
 from trainer.kernels import predict_margin
+from trainer.losses import expit
 from trainer.spec import Spec, parse_spec
 
 LOSSES = ("logistic", "squared-hinge")
@@ -164,7 +164,7 @@ class Model:
     def probability_from_margin(self, margins) -> np.ndarray:
         """Probabilities of an array of margins: logistic sigmoid(z), or Platt sigmoid(a z + b).
 
-        Overflow-safe (``scipy.special.expit``). Sources: see the class docstring.
+        Overflow-safe (:func:`trainer.losses.expit`). Sources: see the class docstring.
 
         Parameters
         ----------
