@@ -42,6 +42,7 @@ from tqdm import tqdm
 
 from trainer.errors import Diverged, Interrupted, UserError
 from trainer.evaluation import evaluate
+from trainer.json_values import jsonable
 from trainer.metrics import fit_platt
 from trainer.model import Model
 from trainer.options import TrainOptions
@@ -218,6 +219,7 @@ class Trainer:
         self.resume = resume
         self.examples = BucketExamples(spec.n_buckets)
         self._saved: tuple[int, int] | None = None
+        self._written: Model | None = None  # the model finish_pass just wrote, until another pass starts
         self.memory = None
         averaged = options.solver == "olbfgs" and options.full_batch_memory > 0
         self.average = np.zeros(spec.n_buckets + 1) if averaged else None
@@ -453,6 +455,7 @@ class Trainer:
             self.start()
             with _StopFlag() as stop:
                 while st.pass_index < self.opt.epochs and not st.stopped_early:
+                    self._written = None  # not held in memory through another pass
                     started = time.monotonic()
                     fitted = None
                     if st.phase == "full-batch":
@@ -620,9 +623,10 @@ class Trainer:
                             f"and {st.positives:,} positive labels (column '{self.spec.label_column}'); a "
                             "response model needs both classes; --allow-one-class trains anyway")
         started = time.monotonic()
-        holdout = None
+        model = holdout = None
         if self.holdout is not None:
-            holdout = evaluate(self.current_model(), self.holdout)
+            model = self.current_model()
+            holdout = evaluate(model, self.holdout)
         st.pass_index += 1
         record = {"pass": st.pass_index, "rows": st.rows_in_pass, "rows_total": st.rows_total,
                   "progressive_loss": st.pv_loss / st.pv_weight if st.pv_weight else None,
@@ -634,7 +638,10 @@ class Trainer:
             score = _holdout_score(holdout, self.opt.loss)
             if st.best_score is None or score < st.best_score:
                 st.best_score, st.best_pass, st.bad_passes = score, st.pass_index, 0
-                self.folder.save_model(self.current_model(holdout))
+                model.info["holdout"] = jsonable(holdout)  # as model.json holds it
+                model.info["summary"].update(passes=st.pass_index, best_pass=st.best_pass)
+                self.folder.save_model(model)
+                self._written = model
             else:
                 st.bad_passes += 1
                 if st.bad_passes >= self.opt.patience and st.pass_index < self.opt.epochs:
@@ -660,11 +667,16 @@ class Trainer:
         self.save_checkpoint()
 
     def _final_model(self) -> Model:
+        """The run's model, with its final summary, saved in the folder: the solver's current one
+        without a holdout, else the best pass's (still in memory when the last pass was the best, else
+        read back); not written again when model.json already holds it as it is."""
         st = self.state
+        final = {"passes": st.pass_index, "stopped_early": st.stopped_early, "best_pass": st.best_pass}
         if self.holdout is None:
-            model = self.current_model()
+            model, saved = self.current_model(), False
         else:
-            model = self.folder.load_model()
+            model = self._written or self.folder.load_model()
+            saved = all(model.info["summary"].get(k) == v for k, v in final.items())
         if self.opt.loss == "squared-hinge" and self.holdout is not None:
             margins, labels, weights = [], [], []
             rows = 0
@@ -679,9 +691,10 @@ class Trainer:
             calibration = {"method": "platt", "a": a, "b": b, "fitted_on": self.holdout_path, "rows": rows}
             model = Model(model.spec, model.weights, model.intercept, model.loss,
                           {**model.info, "calibration": calibration})
-        model.info["summary"].update({"passes": st.pass_index, "stopped_early": st.stopped_early,
-                                      "best_pass": st.best_pass})
-        self.folder.save_model(model)
+            saved = False
+        model.info["summary"].update(final)
+        if not saved:
+            self.folder.save_model(model)
         return model
 
     def _result(self, model: Model) -> TrainResult:
