@@ -188,7 +188,9 @@ class Featurizer:
         self._last_dictionary: dict[str, tuple[pa.Array, np.ndarray]] = {}
         self.seed = np.uint32(spec.seed)
         self.mask = np.uint32(spec.n_buckets - 1)
-        self.prefixes = {f.column: np.frombuffer(f.column.encode("utf-8") + b"\x1f", dtype=np.uint8)
+        # writable like the crosses' empty prefix: numba compiles (and loads from its cache) one
+        # specialization per array type, and a read-only array is another type
+        self.prefixes = {f.column: np.array(bytearray(f.column.encode("utf-8") + b"\x1f"), dtype=np.uint8)
                          for f in spec.features}
 
     def value_buckets(self) -> dict[str, int]:
