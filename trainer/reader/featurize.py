@@ -102,13 +102,16 @@ def _token_source(values: pa.Array, where: str):
     return buf, off, codes, encoded.dictionary if encoded is values else None
 
 
-
 def _categorical_tokens(arr: pa.Array, prefix: np.ndarray, where: str) -> TokenTable:
-    valid = valid_mask(arr)
     buf, off, codes, dictionary = _token_source(arr, where)
+    n = len(arr)
+    if arr.null_count == 0:  # a token in every row
+        return TokenTable(np.arange(n + 1), np.arange(n) if codes is None else codes, prefix, buf, off,
+                          dictionary=dictionary)
+    valid = valid_mask(arr)
     rows = np.flatnonzero(valid)
     ids = rows if codes is None else codes[rows]
-    ptr = np.zeros(len(arr) + 1, dtype=np.int64)
+    ptr = np.zeros(n + 1, dtype=np.int64)
     np.cumsum(valid, out=ptr[1:])
     return TokenTable(ptr, ids.astype(np.int64, copy=False), prefix, buf, off, dictionary=dictionary)
 
@@ -278,13 +281,11 @@ class Featurizer:
                                              b.ptr, b.ids, b.prefix, b.buf, b.off)
                 acc = TokenTable(ptr, np.arange(ptr[-1], dtype=np.int64), _EMPTY_BYTES, buf, off)
             parts.append(acc)
-        counts = np.zeros(n, dtype=np.int64)
-        for t in parts:
-            counts += np.diff(t.ptr)
         indptr = np.zeros(n + 1, dtype=np.int64)
-        np.cumsum(counts, out=indptr[1:])
+        for t in parts:  # a row's entries before row r: those of every table
+            indptr += t.ptr
         indices = np.empty(indptr[-1], dtype=np.int32)
-        data = np.empty(indptr[-1], dtype=np.float64)
+        data = np.ones(indptr[-1], dtype=np.float64)  # one-hot entries; scatter_rows writes the other values
         cursor = indptr[:-1].copy()
         empty = np.zeros(0, dtype=np.float64)
         for name, t in zip(names, parts):
