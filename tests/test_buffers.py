@@ -45,6 +45,7 @@ def test_all_null_and_null_typed_arrays():
     for arr in (pa.nulls(5), pa.nulls(5, pa.string()), pa.array([None, None], pa.int64())):
         assert np.array_equal(valid_mask(arr), arr.is_valid().to_numpy(zero_copy_only=False))
     assert valid_mask(pa.array([], pa.string())).shape == (0,)
+    assert values_of(pa.Array.from_buffers(pa.int64(), 0, [None, None])).shape == (0,)  # no buffers at all
 
 
 def test_index_array_takes_like_a_pyarrow_array():

@@ -58,9 +58,11 @@ def values_of(arr: pa.Array) -> np.ndarray:
         1970-01-01); read-only when it is a view of Arrow memory.
     """
     t = arr.type
+    dtype = np.dtype(bool if pa.types.is_boolean(t) else np.int32 if pa.types.is_date32(t) else t.to_pandas_dtype())
+    if len(arr) == 0:  # its buffers may be missing
+        return np.zeros(0, dtype=dtype)
     if pa.types.is_boolean(t):
         return _bits(arr, 1)
-    dtype = np.int32 if pa.types.is_date32(t) else np.dtype(t.to_pandas_dtype())
     return np.frombuffer(arr.buffers()[1], dtype=dtype)[arr.offset: arr.offset + len(arr)]
 
 

@@ -16,9 +16,9 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from trainer.errors import UserError
-from trainer.hashing import cross_tokens, hash_bytes, hash_tokens
+from trainer.hashing import cross_pairs, cross_tokens, hash_bytes, hash_tokens
 from trainer.reader._kernels import scatter_rows
-from trainer.reader.buffers import valid_mask, values_of
+from trainer.reader.buffers import index_array, valid_mask, values_of
 from trainer.spec import Feature, Spec
 
 _EMPTY_BYTES = np.zeros(0, dtype=np.uint8)
@@ -169,6 +169,18 @@ def _numeric_tokens(arr: pa.Array, feat: Feature, prefix: np.ndarray, where: str
                    np.zeros(2, dtype=np.int64), values=values)
 
 
+def _cross(a: TokenTable, b: TokenTable) -> TokenTable:
+    """The cross of two token tables: a table of the distinct pairs' tokens ``token(a) 0x1E token(b)``,
+    in order of first appearance, each built and hashed once per chunk (a chunk of 32,768 rows of
+    two dictionary columns holds a few thousand distinct pairs)."""
+    b_tokens = b.off.shape[0] - 1
+    ptr, keys = cross_pairs(a.ptr, a.ids, b.ptr, b.ids, b_tokens)
+    encoded = pc.dictionary_encode(index_array(keys))
+    a_ids, b_ids = np.divmod(values_of(encoded.dictionary), max(b_tokens, 1))
+    buf, off = cross_tokens(a_ids, a.prefix, a.buf, a.off, b_ids, b.prefix, b.buf, b.off)
+    return TokenTable(ptr, values_of(encoded.indices).astype(np.int64), _EMPTY_BYTES, buf, off)
+
+
 class Featurizer:
     """Hashes the spec's features of a chunk of rows into CSR (``trainer.hashing`` contract).
 
@@ -276,10 +288,7 @@ class Featurizer:
         for cross in self.spec.crosses:
             acc = toks[cross[0]]
             for name in cross[1:]:
-                b = toks[name]
-                ptr, buf, off = cross_tokens(acc.ptr, acc.ids, acc.prefix, acc.buf, acc.off,
-                                             b.ptr, b.ids, b.prefix, b.buf, b.off)
-                acc = TokenTable(ptr, np.arange(ptr[-1], dtype=np.int64), _EMPTY_BYTES, buf, off)
+                acc = _cross(acc, toks[name])
             parts.append(acc)
         indptr = np.zeros(n + 1, dtype=np.int64)
         for t in parts:  # a row's entries before row r: those of every table
