@@ -249,8 +249,8 @@ class Model:
         """Write a training model folder.
 
         Writes ``model_dir/model.npz`` (weights, intercept) and ``model_dir/model.json`` (format, version,
-        spec, loss, info, SHA-256 of model.npz; JSON on one line), each atomically (temporary file in the same folder, fsync,
-        os.replace). Creates the folder.
+        spec, loss, info, SHA-256 of model.npz; JSON on one line), each atomically (temporary file in
+        the same folder, fsync, os.replace). Creates the folder.
 
         Parameters
         ----------

@@ -111,7 +111,6 @@ def check_choice(option: str, value, choices) -> str:
     return value
 
 
-
 @dataclass
 class TrainOptions:
     """Training options; the ones in ``TRAJECTORY`` decide the weights and must match on resume.

@@ -18,8 +18,9 @@ import pyarrow as pa
 
 def _bits(arr: pa.Array, buffer: int) -> np.ndarray:
     """Buffer ``buffer`` of ``arr`` (bit-packed) as one bool per element."""
-    packed = np.frombuffer(arr.buffers()[buffer], dtype=np.uint8)
-    return np.unpackbits(packed, bitorder="little")[arr.offset: arr.offset + len(arr)].view(bool)
+    first, n = arr.offset, len(arr)
+    packed = np.frombuffer(arr.buffers()[buffer], dtype=np.uint8)[first // 8: (first + n + 7) // 8]
+    return np.unpackbits(packed, bitorder="little")[first % 8: first % 8 + n].view(bool)
 
 
 def valid_mask(arr: pa.Array) -> np.ndarray:
@@ -58,7 +59,10 @@ def values_of(arr: pa.Array) -> np.ndarray:
         1970-01-01); read-only when it is a view of Arrow memory.
     """
     t = arr.type
-    dtype = np.dtype(bool if pa.types.is_boolean(t) else np.int32 if pa.types.is_date32(t) else t.to_pandas_dtype())
+    if pa.types.is_boolean(t):
+        dtype = np.dtype(bool)
+    else:  # to_pandas_dtype names the numpy type (it imports nothing); date32 is stored as int32 days
+        dtype = np.dtype(np.int32 if pa.types.is_date32(t) else t.to_pandas_dtype())
     if len(arr) == 0:  # its buffers may be missing
         return np.zeros(0, dtype=dtype)
     if pa.types.is_boolean(t):
