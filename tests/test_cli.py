@@ -2,6 +2,8 @@
 (common practice for command-line tools: errors go to stderr with a non-zero status)."""
 
 import json
+import subprocess
+import sys
 
 import numpy as np
 import pyarrow as pa
@@ -93,3 +95,34 @@ def test_evaluate_by_table_columns_line_up_and_no_empty_null_row(tmp_path, capsy
     assert [r.split()[0] for r in rows] == list(values[np.lexsort((values, -counts))])  # numpy count order
     assert "(null)" not in out
     assert len({len(r) for r in rows}) == 1
+
+
+LOADED_AFTER = """
+import json, sys
+from trainer.cli import main
+try:
+    main(sys.argv[1].split("|"))
+except SystemExit:  # --help
+    pass
+print(json.dumps(sorted(set(sys.modules) & {"numpy", "pyarrow", "numba", "pandas", "scipy.special", "scipy.optimize"})))
+"""
+
+
+def _loaded_after(argv: str) -> list:
+    """The heavy modules loaded by one command line run in a fresh interpreter."""
+    proc = subprocess.run([sys.executable, "-c", LOADED_AFTER, argv], capture_output=True, text=True, timeout=300)
+    assert proc.returncode == 0, proc.stderr
+    return json.loads(proc.stdout.strip().splitlines()[-1])
+
+
+def test_start_up_loads_only_what_the_command_needs(small_log, tmp_path):
+    # The README's start-up figures rest on these (Performance, fixed cost of a run): help loads no
+    # numeric library; an online run with a holdout never loads pandas (pyarrow imports it on its
+    # numpy conversions; the reader reads Arrow buffers instead), nor scipy's special functions
+    # or optimizers (the project's expit kernel; L-BFGS-B only for a full-batch pass).
+    root, spec = small_log
+    assert _loaded_after("--help") == []
+    assert _loaded_after("train|--help") == []
+    run = (f"train|--spec|{spec}|--data|{root}|--out|{tmp_path / 'm'}|--epochs|1|--quiet|--full-batch-memory|0"
+           "|--end|2026-03-02|--holdout-start|2026-03-03|--holdout-end|2026-03-03")
+    assert _loaded_after(run) == ["numba", "numpy", "pyarrow"]

@@ -5,7 +5,7 @@ import numpy as np
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from trainer.hashing import cross_tokens, hash_bytes, hash_tokens
+from trainer.hashing import cross_pairs, cross_tokens, hash_bytes, hash_tokens
 
 # MurmurHash3_x86_32 verification values (from memory of the SMHasher reference; each is confirmed
 # against the mmh3 library in the same test).
@@ -46,7 +46,7 @@ def test_hash_tokens_with_prefix_matches_mmh3(values, seed, bits):
     assert got.tolist() == want
 
 
-def test_cross_tokens_cartesian_product():
+def test_cross_pairs_and_tokens_cartesian_product():
     # reference: the contract's cross rule written out by hand (common practice for feature crosses)
     a_prefix = np.frombuffer(b"a\x1f", np.uint8)
     b_prefix = np.frombuffer(b"b\x1f", np.uint8)
@@ -59,7 +59,9 @@ def test_cross_tokens_cartesian_product():
     a_ids = np.array([0, 1, 1], np.int64)
     b_ptr = np.array([0, 1, 2, 4], np.int64)
     b_ids = np.array([0, 1, 1, 2], np.int64)
-    ptr, buf, off = cross_tokens(a_ptr, a_ids, a_prefix, a_buf, a_off, b_ptr, b_ids, b_prefix, b_buf, b_off)
-    tokens = [buf[off[i]:off[i + 1]].tobytes() for i in range(off.size - 1)]
+    ptr, keys = cross_pairs(a_ptr, a_ids, b_ptr, b_ids, 3)
     assert ptr.tolist() == [0, 2, 2, 4]
+    assert keys.tolist() == [0 * 3 + 0, 1 * 3 + 0, 1 * 3 + 1, 1 * 3 + 2]  # (a, b) as a * 3 + b, a-major
+    buf, off = cross_tokens(keys // 3, a_prefix, a_buf, a_off, keys % 3, b_prefix, b_buf, b_off)
+    tokens = [buf[off[i]:off[i + 1]].tobytes() for i in range(off.size - 1)]
     assert tokens == [b"a\x1fx\x1eb\x1fp", b"a\x1fy\x1eb\x1fp", b"a\x1fy\x1eb\x1fq", b"a\x1fy\x1eb\x1fr"]

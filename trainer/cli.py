@@ -2,6 +2,10 @@
 
 Exit codes: 0 done; 2 the user's mistake (one line on stderr, no traceback); 130 stopped by a signal
 after saving a checkpoint; 1 a bug (with its traceback).
+
+Only the standard library and ``trainer.options`` load with this module: each command imports
+``trainer.api`` (numpy, pyarrow, numba) when it runs, so ``hashcurve --help`` and argument errors
+answer without loading them.
 """
 
 from __future__ import annotations
@@ -10,12 +14,9 @@ import argparse
 import json
 import sys
 
-import pyarrow as pa
-
-from trainer import __version__, api
+from trainer import __version__
 from trainer.errors import Interrupted, UserError
-from trainer.run_folder import l2_label
-from trainer.training import format_cell
+from trainer.options import TrainOptions
 
 
 class _Parser(argparse.ArgumentParser):
@@ -41,7 +42,7 @@ def build_parser() -> argparse.ArgumentParser:
     -------
     argparse.ArgumentParser
     """
-    d = api.TrainOptions()
+    d = TrainOptions()
     top = _Parser(prog="hashcurve", description="Train, check and export calibrated response-rate models "
                   "from hashed Parquet logs.")
     top.add_argument("--version", action="version", version=f"hashcurve {__version__}")
@@ -142,6 +143,8 @@ def format_summary(s: dict) -> str:
     str
         The text: probability metrics, margin metrics and the segment table, those the summary holds.
     """
+    from trainer.training import format_cell
+
     lines = [f"rows {s.get('rows', 0):,}   positives {s.get('positives', 0):,}"]
     if "log_loss" in s:
         lines += [f"  log-loss            {format_cell(s['log_loss'])}",
@@ -240,6 +243,8 @@ def format_train_result(r) -> str:
     str
         Passes, timings and stopping reason, the best holdout pass, the model folder.
     """
+    from trainer.run_folder import l2_label
+
     lines = [f"{r.passes} pass(es), {r.train_seconds:.1f} s training + {r.eval_seconds:.1f} s holdout evaluation; "
              f"{r.stopping_reason}"]
     if r.sweep:
@@ -252,6 +257,8 @@ def format_train_result(r) -> str:
 
 
 def _train(a) -> None:
+    from trainer import api
+
     options = {k: getattr(a, k) for k in ("epochs", "loss", "solver", "l2_strength", "history", "batch_rows", "step0",
                                           "seed", "shuffle_buffer", "negative_keep_rate", "patience",
                                           "checkpoint_every", "start", "end", "holdout_start", "holdout_end",
@@ -262,6 +269,8 @@ def _train(a) -> None:
 
 
 def _demo(a) -> None:
+    from trainer import api
+
     out = api.demo(a.out, quiet=a.quiet)
     print(f"\ntrained on {out['train_days']}, held out {out['holdout_day']}:")
     print(format_summary(out["summary"]))
@@ -272,20 +281,28 @@ def _demo(a) -> None:
 
 
 def _evaluate(a) -> None:
+    from trainer import api
+
     s = api.evaluate(a.model, a.data, start=a.start, end=a.end, by=a.by, segments=a.segments,
                      skip_bad_labels=a.skip_bad_labels, json_out=a.json, cluster=a.cluster)
     print(format_summary(s))
 
 
 def _report(a) -> None:
+    from trainer import api
+
     print(f"report written to {api.report(a.model, a.out, probability_axis=a.probability_axis)}")
 
 
 def _export(a) -> None:
+    from trainer import api
+
     print(f"export written to {api.export(a.model, a.out, force=a.force)}")
 
 
 def _score(a) -> None:
+    from trainer import api
+
     r = api.score(a.model, a.data, a.out, keep=tuple(a.keep), missing_as_null=a.missing_as_null,
                   start=a.start, end=a.end, cluster=a.cluster, force=a.force)
     parts = f" ({r['parts']} part files)" if "parts" in r else ""
@@ -293,6 +310,8 @@ def _score(a) -> None:
 
 
 def _inspect(a) -> None:
+    from trainer import api
+
     d = api.inspect(a.model)
     print(json.dumps(d, indent=2) if a.json else format_inspect(d))
 
@@ -306,6 +325,8 @@ def configure_process() -> None:
     from the system allocator, which hands the memory of finished row groups back to the OS where
     pyarrow's bundled allocator keeps it (peak RSS of a 1M-row training about 40 MB lower, measured
     with scripts/bench_train.py --memory; reading speed unchanged within noise)."""
+    import pyarrow as pa
+
     pa.set_memory_pool(pa.system_memory_pool())
 
 
@@ -324,9 +345,9 @@ def main(argv: list[str] | None = None) -> int:
     int
         The exit code: 0, 2 for a user mistake, 130 after SIGINT/SIGTERM.
     """
-    configure_process()
     try:
         args = build_parser().parse_args(argv)
+        configure_process()
         COMMANDS[args.command](args)
     except UserError as exc:
         print(f"hashcurve: error: {' '.join(str(exc).split())}", file=sys.stderr)

@@ -147,67 +147,85 @@ def hash_tokens(prefix, buf, offsets, seed, mask):
     return out
 
 
-@nb.njit(cache=True)
-def cross_tokens(a_ptr, a_ids, a_prefix, a_buf, a_off, b_ptr, b_ids, b_prefix, b_buf, b_off):
-    """Join two token streams row by row into cross tokens ``token(a) 0x1E token(b)``.
+@nb.njit(cache=True, nogil=True)
+def cross_pairs(a_ptr, a_ids, b_ptr, b_ids, b_tokens):
+    """Join two token streams row by row into the pairs of a cross, each as the key ``a * b_tokens + b``.
 
-    Each side is a row structure (``ptr`` int64 n + 1 over ``ids`` int64) pointing into a token table
-    whose token k is ``prefix + buf[off[k]:off[k+1]]``.
+    Each side is a row structure (``ptr`` int64 n + 1 over ``ids`` int64) into its own token table;
+    the table of the second side holds ``b_tokens`` tokens, so a key names one (a-token, b-token) pair.
 
     Parameters
     ----------
-    a_ptr, a_ids, a_prefix, a_buf, a_off : numpy.ndarray
-        The first side's rows and token table.
-    b_ptr, b_ids, b_prefix, b_buf, b_off : numpy.ndarray
+    a_ptr, a_ids : numpy.ndarray
+        The first side's rows.
+    b_ptr, b_ids : numpy.ndarray
         The second side's.
+    b_tokens : int
+        Tokens in the second side's token table.
 
     Returns
     -------
     tuple of numpy.ndarray
-        ``(ptr, buf, off)``: for row r the Cartesian product of its a-tokens and b-tokens, in a-major
-        order, as a new table with empty prefix (the ids of the result are 0..len-1 in row order).
+        ``(ptr, keys)``: for row r the Cartesian product of its a-tokens and b-tokens, in a-major order,
+        ``keys[ptr[r]:ptr[r+1]]`` (int64).
     """
     n = a_ptr.size - 1
     ptr = np.zeros(n + 1, dtype=np.int64)
-    total_bytes = 0
     for r in range(n):
-        na = a_ptr[r + 1] - a_ptr[r]
-        nbb = b_ptr[r + 1] - b_ptr[r]
-        ptr[r + 1] = ptr[r] + na * nbb
-        if na and nbb:
-            la = 0
-            for p in range(a_ptr[r], a_ptr[r + 1]):
-                k = a_ids[p]
-                la += a_off[k + 1] - a_off[k]
-            lb = 0
-            for q in range(b_ptr[r], b_ptr[r + 1]):
-                k = b_ids[q]
-                lb += b_off[k + 1] - b_off[k]
-            total_bytes += (la + na * a_prefix.size) * nbb + (lb + nbb * b_prefix.size) * na + na * nbb
-    out = np.empty(total_bytes, dtype=np.uint8)
-    off = np.empty(ptr[n] + 1, dtype=np.int64)
-    off[0] = 0
+        ptr[r + 1] = ptr[r] + (a_ptr[r + 1] - a_ptr[r]) * (b_ptr[r + 1] - b_ptr[r])
+    keys = np.empty(ptr[n], dtype=np.int64)
     t = 0
-    pos = 0
     for r in range(n):
         for p in range(a_ptr[r], a_ptr[r + 1]):
-            ka = a_ids[p]
+            base = a_ids[p] * b_tokens
             for q in range(b_ptr[r], b_ptr[r + 1]):
-                kb = b_ids[q]
-                for j in range(a_prefix.size):
-                    out[pos] = a_prefix[j]
-                    pos += 1
-                for j in range(a_off[ka], a_off[ka + 1]):
-                    out[pos] = a_buf[j]
-                    pos += 1
-                out[pos] = 0x1E
-                pos += 1
-                for j in range(b_prefix.size):
-                    out[pos] = b_prefix[j]
-                    pos += 1
-                for j in range(b_off[kb], b_off[kb + 1]):
-                    out[pos] = b_buf[j]
-                    pos += 1
+                keys[t] = base + b_ids[q]
                 t += 1
-                off[t] = pos
-    return ptr, out, off
+    return ptr, keys
+
+
+@nb.njit(cache=True, nogil=True)
+def cross_tokens(a_ids, a_prefix, a_buf, a_off, b_ids, b_prefix, b_buf, b_off):
+    """The cross tokens ``token(a) 0x1E token(b)`` of pairs of tokens, as a new token table.
+
+    Each side's token k is ``prefix + buf[off[k]:off[k+1]]``; pair i joins token ``a_ids[i]`` of the
+    first side's table and token ``b_ids[i]`` of the second's.
+
+    Parameters
+    ----------
+    a_ids, a_prefix, a_buf, a_off : numpy.ndarray
+        The first tokens of the pairs (int64) and the first side's token table.
+    b_ids, b_prefix, b_buf, b_off : numpy.ndarray
+        The second tokens and the second side's token table.
+
+    Returns
+    -------
+    tuple of numpy.ndarray
+        ``(buf, off)``: token i is ``buf[off[i]:off[i+1]]`` (empty prefix).
+    """
+    m = a_ids.size
+    total_bytes = m * (a_prefix.size + 1 + b_prefix.size)
+    for i in range(m):
+        total_bytes += a_off[a_ids[i] + 1] - a_off[a_ids[i]] + b_off[b_ids[i] + 1] - b_off[b_ids[i]]
+    out = np.empty(total_bytes, dtype=np.uint8)
+    off = np.empty(m + 1, dtype=np.int64)
+    off[0] = 0
+    pos = 0
+    for i in range(m):
+        ka, kb = a_ids[i], b_ids[i]
+        for j in range(a_prefix.size):
+            out[pos] = a_prefix[j]
+            pos += 1
+        for j in range(a_off[ka], a_off[ka + 1]):
+            out[pos] = a_buf[j]
+            pos += 1
+        out[pos] = CROSS_SEP
+        pos += 1
+        for j in range(b_prefix.size):
+            out[pos] = b_prefix[j]
+            pos += 1
+        for j in range(b_off[kb], b_off[kb + 1]):
+            out[pos] = b_buf[j]
+            pos += 1
+        off[i + 1] = pos
+    return out, off

@@ -13,7 +13,8 @@ max(-m, 0) + log1p(exp(-|m|)) and its derivative as -s * sigmoid(-m) with the si
 ``exp`` never receives a positive argument (no overflow, no cancellation in 1 - p).
 
 The scalar functions are numba kernels (``@njit(cache=True)``) used by :mod:`trainer.kernels`; the
-``pointwise_*`` functions are the array versions for Python callers.
+``pointwise_*`` functions are the array versions for Python callers, and :func:`expit` gives the
+probabilities of margins for models and metrics.
 """
 
 from __future__ import annotations
@@ -72,6 +73,37 @@ def sigmoid(z: float) -> float:
         return 1.0 / (1.0 + math.exp(-z))
     e = math.exp(z)
     return e / (1.0 + e)
+
+
+@njit(cache=True, nogil=True)
+def _expit(z: np.ndarray) -> np.ndarray:
+    out = np.empty(z.shape[0], dtype=np.float64)
+    for i in range(z.shape[0]):
+        out[i] = 1.0 / (1.0 + math.exp(-z[i]))
+    return out
+
+
+def expit(z) -> np.ndarray:
+    """The logistic function 1 / (1 + exp(-z)) of every element, by the formula of
+    ``scipy.special.expit`` (the same values bit for bit, without importing scipy.special, about
+    0.2 s of a run's start-up); 0 and 1 at the extremes instead of an overflow.
+
+    Parameters
+    ----------
+    z : array_like
+        The margins.
+
+    Returns
+    -------
+    numpy.ndarray
+        float64 probabilities, shaped like ``z``.
+
+    References
+    ----------
+    "The Regression Analysis of Binary Sequences", Journal of the Royal Statistical Society B, 1958.
+    """
+    z = np.asarray(z, dtype=np.float64)
+    return _expit(np.ascontiguousarray(z).reshape(-1)).reshape(z.shape)
 
 
 @njit(cache=True)

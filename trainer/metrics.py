@@ -27,11 +27,11 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy.special import expit
 
 from trainer._metrics_kernels import (BRIER, FN, FP, LOSS, MARGIN_OCTAVES, N_SUMS, PRED, PROB_OCTAVES, PW, REL_ROWS,
                                       REL_W2, REL_WP, TN, TP, W, accumulate_binary, accumulate_margin, platt_terms)
 from trainer.errors import UserError
+from trainer.losses import expit
 
 #: Standard normal 0.975 quantile, for 95% Wilson intervals.
 WILSON_Z = 1.959963984540054

@@ -51,14 +51,16 @@ from tqdm import tqdm
 
 from trainer.errors import Diverged, Interrupted, UserError
 from trainer.evaluation import evaluate
+from trainer.json_values import jsonable
 from trainer.kernels import blend_into
 from trainer.metrics import fit_platt
 from trainer.model import Model
+from trainer.options import TrainOptions
 from trainer.reader.examples import BucketExamples
 from trainer.reader.stream import Position, Reader
 from trainer.run_folder import RunFolder, l2_label
 from trainer.solvers import full_batch
-from trainer.solvers import check_choice, check_float, check_int, make_solver, SOLVER_NAMES
+from trainer.solvers import make_solver
 from trainer.spec import Spec
 
 PROGRESS_POINTS_PER_PASS = 200
@@ -75,121 +77,6 @@ HUGE_NUMERIC = 1e3
 TINY_BATCHES = 16
 #: eta of the polynomial-decay average that is the model of an online pass of the default solver.
 AVERAGE_POWER = 3.0
-
-
-@dataclass
-class TrainOptions:
-    """Training options; the ones in ``TRAJECTORY`` decide the weights and must match on resume.
-
-    Each is the command line's option of the same name (``--l2-strength`` for ``l2_strength``).
-
-    Attributes
-    ----------
-    epochs : int, default 3
-        Passes over the log.
-    loss : {"logistic", "squared-hinge"}
-        The data loss.
-    solver : {"olbfgs", "res", "sgd", "adagrad"}
-        The online method (:func:`trainer.solvers.make_solver`).
-    l2_strength : float, tuple of float or "auto", default 1e-4
-        lambda of the per-row-average objective ``(lambda / 2) ||w||^2``; several values (a tuple) or
-        "auto" train one model per value from one read of the log (:mod:`trainer.sweep`).
-    history : int, default 10
-        Curvature pairs kept (``olbfgs`` only; also scipy's L-BFGS-B memory of the full-batch phase).
-    batch_rows : int, default 4096
-        Rows per minibatch.
-    step0 : float or None
-        The solver's initial step (None: the method's default).
-    seed : int, default 0
-        Seed of shuffling and negative sampling (no solver draws random numbers).
-    shuffle_buffer : int, default 0
-        Rows per shuffle window (0: file order).
-    negative_keep_rate : float, default 1.0
-        Keep each negative row with this probability; ``ln Q`` is added to the intercept so predictions
-        stay calibrated on unsampled data ("Practical Lessons from Predicting Clicks on Ads at
-        Facebook", ADKDD, 2014).
-    checkpoint_every : int, default 2000000
-        Rows between checkpoints (and one at each pass end).
-    patience : int, default 1
-        Passes without a better holdout loss before an early stop.
-    start, end : datetime.date or None
-        Inclusive day filter of the training log.
-    holdout_start, holdout_end : datetime.date or None
-        Days of the training log used as the holdout.
-    skip_bad_labels : bool
-        Drop rows with a null or unaccepted label instead of refusing the log.
-    allow_one_class : bool
-        Accept a log whose labels are all 0 or all 1.
-    full_batch_memory : int, default 1024
-        MB within which the hashed log is trained full-batch after the first pass (0: plain online
-        passes, no iterate averaging).
-    refine_iterations : int, default 20
-        L-BFGS-B iterations of training over a cluster only (``trainer.cluster``).
-    """
-
-    epochs: int = 3
-    loss: str = "logistic"
-    solver: str = "olbfgs"
-    l2_strength: float | tuple[float, ...] | str = 1e-4
-    history: int = 10
-    batch_rows: int = 4096
-    step0: float | None = None
-    seed: int = 0
-    shuffle_buffer: int = 0
-    negative_keep_rate: float = 1.0
-    checkpoint_every: int = 2_000_000
-    patience: int = 1
-    start: dt.date | None = None
-    end: dt.date | None = None
-    holdout_start: dt.date | None = None
-    holdout_end: dt.date | None = None
-    skip_bad_labels: bool = False
-    allow_one_class: bool = False
-    full_batch_memory: int = 1024
-    refine_iterations: int = 20
-
-    TRAJECTORY = ("loss", "solver", "l2_strength", "history", "batch_rows", "step0", "seed", "shuffle_buffer",
-                  "negative_keep_rate", "start", "end", "skip_bad_labels", "full_batch_memory")
-
-    def validate(self) -> None:
-        """Raise UserError naming the first option outside its accepted range."""
-        check_int("--epochs", self.epochs, 1, 10_000)
-        check_choice("--loss", self.loss, ("logistic", "squared-hinge"))
-        check_choice("--solver", self.solver, SOLVER_NAMES)
-        if self.l2_strength != "auto":  # trainer.sweep.l2_option also checks the count and repeats of several
-            for value in self.l2_strength if isinstance(self.l2_strength, tuple) else (self.l2_strength,):
-                check_float("--l2-strength", value, 0.0, 1e6)
-        check_int("--history", self.history, 1, 100)
-        check_int("--batch-rows", self.batch_rows, 1, 10_000_000)
-        if self.step0 is not None:
-            check_float("--step0", self.step0, 0.0, 1e6, lo_open=True)
-        check_int("--seed", self.seed, 0, 2**32 - 1)
-        check_int("--shuffle-buffer", self.shuffle_buffer, 0, 100_000_000)
-        check_float("--negative-keep-rate", self.negative_keep_rate, 0.0, 1.0, lo_open=True)
-        check_int("--checkpoint-every", self.checkpoint_every, 1, 10**15)
-        check_int("--patience", self.patience, 1, 10_000)
-        check_int("--full-batch-memory", self.full_batch_memory, 0, 10_000_000)
-        check_int("--refine-iterations", self.refine_iterations, 0, 100_000)
-
-    def as_json(self) -> dict:
-        """The options as JSON values.
-
-        Returns
-        -------
-        dict
-            Every field by name; dates as YYYY-MM-DD, several l2 strengths as a list.
-        """
-        out = {}
-        for f in dataclasses.fields(self):
-            v = getattr(self, f.name)
-            out[f.name] = v.isoformat() if isinstance(v, dt.date) else list(v) if isinstance(v, tuple) else v
-        return out
-
-    @property
-    def phased(self) -> bool:
-        """Whether training goes in the default solver's phases: online passes whose model is the iterate
-        average, then full-batch passes when the hashed log fits ``full_batch_memory``."""
-        return self.solver == "olbfgs" and self.full_batch_memory > 0
 
 
 @dataclass
@@ -358,6 +245,7 @@ class Trainer:
         self.resume = resume
         self.examples = BucketExamples(spec.n_buckets)
         self._saved: tuple[int, int] | None = None
+        self._written: Model | None = None  # the model finish_pass just wrote, until another pass starts
         self.memory = None
         self._since_checkpoint = 0
         self._point_rows = max(self.reader.total_rows // PROGRESS_POINTS_PER_PASS, options.batch_rows)
@@ -665,6 +553,7 @@ class Trainer:
             self.start()
             with _StopFlag() as stop:
                 while st.pass_index < self.opt.epochs and not st.stopped_early:
+                    self._written = None  # not held in memory through another pass
                     started = time.monotonic()
                     fitted = None
                     if st.phase == "full-batch" and self.collect():
@@ -927,12 +816,16 @@ class Trainer:
         """
         self.check_classes()
         started = time.monotonic()
-        holdout = None
+        model = holdout = None
         if self.holdout is not None:
-            holdout = evaluate(self.current_model(), self.holdout)
+            model = self.current_model()
+            holdout = evaluate(model, self.holdout)
         record, improved = self.record_pass(train_seconds, time.monotonic() - started, fitted, holdout)
         if improved:
-            self.folder.save_model(self.current_model(holdout))
+            model.info["holdout"] = jsonable(holdout)  # as model.json holds it
+            model.info["summary"].update(passes=self.state.pass_index, best_pass=self.state.best_pass)
+            self.folder.save_model(model)
+            self._written = model
         self.folder.append_metrics(record)
         self.log(self.table_row(record))
         for line in self.notes(record):
@@ -1037,9 +930,22 @@ class Trainer:
                                    f"--full-batch-memory {self.opt.full_batch_memory} MB")
 
     def _final_model(self) -> Model:
-        model = self.finished(self.current_model() if self.holdout is None else self.folder.load_model())
-        self.folder.save_model(model)
-        return model
+        """The run's model, with its final summary, saved in the folder: the solver's current one
+        without a holdout, else the best pass's (still in memory when the last pass was the best, else
+        read back); not written again when model.json already holds it as it is."""
+        if self.holdout is None:
+            model, saved = self.current_model(), False
+        else:
+            model = self._written or self.folder.load_model()
+            saved = all(model.info["summary"].get(k) == v for k, v in self._final_summary().items())
+        final = self.finished(model)
+        if final is not model or not saved:
+            self.folder.save_model(final)
+        return final
+
+    def _final_summary(self) -> dict:
+        st = self.state
+        return {"passes": st.pass_index, "stopped_early": st.stopped_early, "best_pass": st.best_pass}
 
     def finished(self, model: Model) -> Model:
         """The final form of the kept model: a squared-hinge model with a holdout gets its Platt
@@ -1059,7 +965,6 @@ class Trainer:
         "Probabilistic Outputs for Support Vector Machines and Comparisons to Regularized Likelihood
         Methods", Advances in Large Margin Classifiers, MIT Press, 1999.
         """
-        st = self.state
         if self.opt.loss == "squared-hinge" and self.holdout is not None:
             margins, labels, weights = [], [], []
             rows = 0
@@ -1074,8 +979,7 @@ class Trainer:
             calibration = {"method": "platt", "a": a, "b": b, "fitted_on": self.holdout_path, "rows": rows}
             model = Model(model.spec, model.weights, model.intercept, model.loss,
                           {**model.info, "calibration": calibration})
-        model.info["summary"].update({"passes": st.pass_index, "stopped_early": st.stopped_early,
-                                      "best_pass": st.best_pass})
+        model.info["summary"].update(self._final_summary())
         return model
 
     def _result(self, model: Model) -> TrainResult:

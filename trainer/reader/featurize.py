@@ -16,8 +16,9 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from trainer.errors import UserError
-from trainer.hashing import cross_tokens, hash_bytes, hash_tokens
+from trainer.hashing import cross_pairs, cross_tokens, hash_bytes, hash_tokens
 from trainer.reader._kernels import scatter_rows
+from trainer.reader.buffers import index_array, valid_mask, values_of
 from trainer.spec import Feature, Spec
 
 _EMPTY_BYTES = np.zeros(0, dtype=np.uint8)
@@ -60,12 +61,6 @@ class TokenTable:
     dictionary: pa.Array | None = None
 
 
-def _valid_mask(arr: pa.Array) -> np.ndarray:
-    if arr.null_count == 0:
-        return np.ones(len(arr), dtype=bool)
-    return arr.is_valid().to_numpy(zero_copy_only=False)
-
-
 def _string_table(arr: pa.Array) -> tuple[np.ndarray, np.ndarray]:
     """(bytes, int64 offsets) of a plain string array, without copying the bytes."""
     bufs = arr.buffers()
@@ -103,16 +98,20 @@ def _token_source(values: pa.Array, where: str):
         if codes["min"] is not None and (codes["min"] < 0 or codes["max"] >= len(values.dictionary)):
             raise UserError(f"{where} holds dictionary codes outside its dictionary; the file is damaged")
     buf, off = _string_table(_canonical_strings(encoded.dictionary, where))
-    codes = encoded.indices.fill_null(0).to_numpy(zero_copy_only=False).astype(np.int64, copy=False)
+    codes = values_of(encoded.indices).astype(np.int64)  # under a null: any code; callers skip nulls
     return buf, off, codes, encoded.dictionary if encoded is values else None
 
 
 def _categorical_tokens(arr: pa.Array, prefix: np.ndarray, where: str) -> TokenTable:
-    valid = _valid_mask(arr)
     buf, off, codes, dictionary = _token_source(arr, where)
+    n = len(arr)
+    if arr.null_count == 0:  # a token in every row
+        return TokenTable(np.arange(n + 1), np.arange(n) if codes is None else codes, prefix, buf, off,
+                          dictionary=dictionary)
+    valid = valid_mask(arr)
     rows = np.flatnonzero(valid)
     ids = rows if codes is None else codes[rows]
-    ptr = np.zeros(len(arr) + 1, dtype=np.int64)
+    ptr = np.zeros(n + 1, dtype=np.int64)
     np.cumsum(valid, out=ptr[1:])
     return TokenTable(ptr, ids.astype(np.int64, copy=False), prefix, buf, off, dictionary=dictionary)
 
@@ -120,13 +119,13 @@ def _categorical_tokens(arr: pa.Array, prefix: np.ndarray, where: str) -> TokenT
 def _multi_tokens(arr: pa.Array, prefix: np.ndarray, where: str) -> TokenTable:
     if not (pa.types.is_list(arr.type) or pa.types.is_large_list(arr.type)):
         raise UserError(f"{where} is {arr.type}; multi features take list columns")
-    loff = arr.offsets.to_numpy(zero_copy_only=False).astype(np.int64)
+    loff = values_of(arr.offsets).astype(np.int64)
     lengths = np.diff(loff)
-    row_valid = _valid_mask(arr)
+    row_valid = valid_mask(arr)
     lengths = np.where(row_valid, lengths, 0) if arr.null_count else lengths
     child = arr.values
     lo, hi = int(loff[0]), int(loff[-1])
-    elem_valid = _valid_mask(child)[lo:hi]
+    elem_valid = valid_mask(child)[lo:hi]
     if arr.null_count:
         in_valid_row = np.repeat(row_valid, np.diff(loff))
         elem_valid = elem_valid & in_valid_row
@@ -144,8 +143,8 @@ def _numeric_values(arr: pa.Array, where: str) -> tuple[np.ndarray, np.ndarray]:
     t = arr.type
     if not (pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t)):
         raise UserError(f"{where} is {t}; numeric features take integer or floating columns")
-    valid = _valid_mask(arr)
-    x = pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False)[valid]
+    valid = valid_mask(arr)
+    x = values_of(pc.cast(arr, pa.float64()))[valid]
     bad = ~np.isfinite(x)
     if bad.any():
         raise UserError(f"{where} has {int(bad.sum())} NaN or infinite values (e.g. {x[bad][0]}); "
@@ -170,6 +169,18 @@ def _numeric_tokens(arr: pa.Array, feat: Feature, prefix: np.ndarray, where: str
                    np.zeros(2, dtype=np.int64), values=values)
 
 
+def _cross(a: TokenTable, b: TokenTable) -> TokenTable:
+    """The cross of two token tables: a table of the distinct pairs' tokens ``token(a) 0x1E token(b)``,
+    in order of first appearance, each built and hashed once per chunk (a chunk of 32,768 rows of
+    two dictionary columns holds a few thousand distinct pairs)."""
+    b_tokens = b.off.shape[0] - 1
+    ptr, keys = cross_pairs(a.ptr, a.ids, b.ptr, b.ids, b_tokens)
+    encoded = pc.dictionary_encode(index_array(keys))
+    a_ids, b_ids = np.divmod(values_of(encoded.dictionary), max(b_tokens, 1))
+    buf, off = cross_tokens(a_ids, a.prefix, a.buf, a.off, b_ids, b.prefix, b.buf, b.off)
+    return TokenTable(ptr, values_of(encoded.indices).astype(np.int64), _EMPTY_BYTES, buf, off)
+
+
 class Featurizer:
     """Hashes the spec's features of a chunk of rows into CSR (``trainer.hashing`` contract).
 
@@ -192,7 +203,9 @@ class Featurizer:
         self._last_dictionary: dict[str, tuple[pa.Array, np.ndarray]] = {}
         self.seed = np.uint32(spec.seed)
         self.mask = np.uint32(spec.n_buckets - 1)
-        self.prefixes = {f.column: np.frombuffer(f.column.encode("utf-8") + b"\x1f", dtype=np.uint8)
+        # writable like the crosses' empty prefix: numba compiles (and loads from its cache) one
+        # specialization per array type, and a read-only array is another type
+        self.prefixes = {f.column: np.array(bytearray(f.column.encode("utf-8") + b"\x1f"), dtype=np.uint8)
                          for f in spec.features}
 
     def value_buckets(self) -> dict[str, int]:
@@ -275,18 +288,13 @@ class Featurizer:
         for cross in self.spec.crosses:
             acc = toks[cross[0]]
             for name in cross[1:]:
-                b = toks[name]
-                ptr, buf, off = cross_tokens(acc.ptr, acc.ids, acc.prefix, acc.buf, acc.off,
-                                             b.ptr, b.ids, b.prefix, b.buf, b.off)
-                acc = TokenTable(ptr, np.arange(ptr[-1], dtype=np.int64), _EMPTY_BYTES, buf, off)
+                acc = _cross(acc, toks[name])
             parts.append(acc)
-        counts = np.zeros(n, dtype=np.int64)
-        for t in parts:
-            counts += np.diff(t.ptr)
         indptr = np.zeros(n + 1, dtype=np.int64)
-        np.cumsum(counts, out=indptr[1:])
+        for t in parts:  # a row's entries before row r: those of every table
+            indptr += t.ptr
         indices = np.empty(indptr[-1], dtype=np.int32)
-        data = np.empty(indptr[-1], dtype=np.float64)
+        data = np.ones(indptr[-1], dtype=np.float64)  # one-hot entries; scatter_rows writes the other values
         cursor = indptr[:-1].copy()
         empty = np.zeros(0, dtype=np.float64)
         for name, t in zip(names, parts):
@@ -324,22 +332,20 @@ def parse_labels(arr: pa.Array, spec: Spec, where: str) -> tuple[np.ndarray, np.
     if pa.types.is_dictionary(t):
         arr = arr.cast(t.value_type)
         t = arr.type
-    valid = _valid_mask(arr)
+    valid = valid_mask(arr)
     if pa.types.is_boolean(t):
-        y = arr.fill_null(False).to_numpy(zero_copy_only=False).astype(np.float64)
-        return y, valid
+        return (values_of(arr) & valid).astype(np.float64), valid
     if pa.types.is_integer(t) or pa.types.is_floating(t):
-        x = pc.cast(arr, pa.float64()).fill_null(0.0).to_numpy(zero_copy_only=False)
+        x = values_of(pc.cast(arr, pa.float64()))
         ok = valid & ((x == 0) | (x == 1) | (x == -1))
-        return (x == 1).astype(np.float64), ok
+        return ((x == 1) & valid).astype(np.float64), ok
     if pa.types.is_string(t) or pa.types.is_large_string(t):
         if spec.positive is None:
             raise UserError(f"{where} holds strings; list the positive values in spec key 'label.positive'")
-        y = pc.is_in(arr, value_set=pa.array(spec.positive)).fill_null(False).to_numpy(zero_copy_only=False)
+        y = values_of(pc.is_in(arr, value_set=pa.array(spec.positive)))  # is_in gives no nulls
         ok = valid
         if spec.negative is not None:
-            known = pc.is_in(arr, value_set=pa.array(spec.positive + spec.negative)).fill_null(False)
-            ok = valid & known.to_numpy(zero_copy_only=False)
+            ok = valid & values_of(pc.is_in(arr, value_set=pa.array(spec.positive + spec.negative)))
         return y.astype(np.float64), ok
     raise UserError(f"{where} is {t}; labels must be 0/1, -1/1, booleans or strings")
 
@@ -385,8 +391,8 @@ def parse_weights(arr: pa.Array, where: str) -> np.ndarray:
     """
     if not (pa.types.is_integer(arr.type) or pa.types.is_floating(arr.type)):
         raise UserError(f"{where} is {arr.type}; row weights must be numbers")
-    w = pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False)
-    bad = ~(np.isfinite(w) & (w > 0)) | ~_valid_mask(arr)
+    w = values_of(pc.cast(arr, pa.float64()))
+    bad = ~(np.isfinite(w) & (w > 0)) | ~valid_mask(arr)
     if bad.any():
         raise UserError(f"{where} has {int(bad.sum())} null, non-finite or non-positive row weights "
                         f"(e.g. {arr[int(np.flatnonzero(bad)[0])]}); weights must be finite and > 0")

@@ -21,11 +21,11 @@ from typing import Iterator
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from trainer.errors import UserError
 from trainer.reader._kernels import keep_uniform, take_rows
+from trainer.reader.buffers import index_array, valid_mask, values_of
 from trainer.reader.featurize import Featurizer, accepted_labels, parse_labels, parse_weights
 from trainer.reader.files import DataFile, column_days, discover, row_group_outside
 from trainer.spec import Spec
@@ -151,7 +151,7 @@ class _Rows:
 
     def take(self, rows: np.ndarray) -> "_Rows":
         ptr, idx, val = take_rows(self.indptr, self.indices, self.data, rows)
-        cols = self.columns.take(pa.array(rows)) if self.columns is not None else None
+        cols = self.columns.take(index_array(rows)) if self.columns is not None else None
         return _Rows(ptr, idx, val, self.labels[rows], self.weights[rows], self.file[rows], self.raw[rows],
                      self.after[rows], cols)
 
@@ -254,6 +254,9 @@ class Reader:
         if not (self.start or self.end):
             need = [c for c in need if c != self.spec.time_column]
         self._need = list(dict.fromkeys(need + list(self.keep)))
+        used = {self.spec.label_column, self.spec.weight_column, *(f.column for f in self.spec.features), *self.keep}
+        # a time column that is a partition key and nothing else prunes files only: no column of the rows
+        self._prune_only = self.spec.time_column if self.spec.time_column not in used else None
         missing_ok = tuple(f.column for f in self.spec.features) if self.missing_as_null else ()
         self.files = discover(self.path, self.spec, self.start, self.end, need=self._need, missing_ok=missing_ok,
                               named_by={c: self.keep_option for c in self.keep if c not in need})
@@ -264,11 +267,14 @@ class Reader:
         """Refuse a feature column whose type its kind does not take before any row is read: the
         featurizer's own checks run on an empty table of the first file's schema (discover has made
         every file's types agree). Files whose features come partly from partition keys or absent
-        columns are checked when read."""
+        columns are checked when read. (Its columns are ``pa.nulls(0)``: ``Schema.empty_table`` would
+        import pandas, see :mod:`trainer.reader.buffers`.)"""
         f = self.files[0]
         cols = [feat.column for feat in self.spec.features]
         if all(f.schema.get_field_index(c) >= 0 for c in cols):
-            self.featurizer.transform(pa.schema([f.schema.field(c) for c in cols]).empty_table(), str(f.path))
+            fields = [f.schema.field(c) for c in cols]
+            empty = pa.Table.from_arrays([pa.nulls(0, x.type) for x in fields], schema=pa.schema(fields))
+            self.featurizer.transform(empty, str(f.path))
 
     def watch(self, observer) -> None:
         """Show an observer every chunk of rows hashed from now on (:meth:`Featurizer.watch`).
@@ -460,7 +466,7 @@ class Reader:
         n = rb.num_rows
         table = pa.Table.from_batches([rb])
         for key, value in f.partitions.items():
-            if key in self._need and table.schema.get_field_index(key) < 0:
+            if key in self._need and key != self._prune_only and table.schema.get_field_index(key) < 0:
                 table = table.append_column(key, pa.DictionaryArray.from_arrays(
                     pa.array(np.zeros(n, dtype=np.int32)), pa.array([value])))
         if self.missing_as_null:
@@ -473,12 +479,12 @@ class Reader:
         where = f"{f.path}: column"
         if spec.time_column and (self.start or self.end) and spec.time_column not in f.partitions:
             days = column_days(table.column(spec.time_column).combine_chunks(), f"{where} '{spec.time_column}'")
-            m = pc.is_valid(days)
+            keep &= valid_mask(days)
+            epoch = dt.date(1970, 1, 1)  # date32 counts days from it
             if self.start:
-                m = pc.and_(m, pc.greater_equal(days, pa.scalar(self.start, pa.date32())))
+                keep &= values_of(days) >= (self.start - epoch).days
             if self.end:
-                m = pc.and_(m, pc.less_equal(days, pa.scalar(self.end, pa.date32())))
-            keep &= m.fill_null(False).to_numpy(zero_copy_only=False)
+                keep &= values_of(days) <= (self.end - epoch).days
         if self.with_labels:
             y, ok = parse_labels(table.column(spec.label_column).combine_chunks(), spec, f"{where} '{spec.label_column}'")
             bad = keep & ~ok
@@ -506,7 +512,7 @@ class Reader:
             idx = np.flatnonzero(keep)
             if idx.size == 0:
                 return None
-            table = table.take(pa.array(idx))
+            table = table.take(index_array(idx))
             y, w, raw = y[idx], w[idx], raw[idx]
         indptr, indices, data = self.featurizer.transform(table, str(f.path))
         self.counts.rows += raw.size

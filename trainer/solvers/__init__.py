@@ -29,8 +29,8 @@ import numpy as np
 from trainer.errors import Diverged, UserError
 from trainer.kernels import batch_support, margins_into, residuals_into, scatter_compact
 from trainer.losses import LOSS_NAMES, loss_code
+from trainer.options import SOLVER_NAMES, check_choice, check_float, check_int
 
-SOLVER_NAMES = ("olbfgs", "res", "sgd", "adagrad")
 MAX_FEATURES = 1 << 30
 
 
@@ -91,99 +91,6 @@ class Solver(Protocol):
             A :meth:`state` of a solver with the same method, loss, size, l2 and options.
         """
         ...
-
-
-def check_float(option: str, value, lo: float, hi: float = math.inf, *, lo_open: bool = False) -> float:
-    """A float option checked against its range.
-
-    Parameters
-    ----------
-    option : str
-        The option's name, for the error.
-    value : object
-        The value given.
-    lo, hi : float
-        The accepted range [lo, hi]; ``hi`` = inf means any finite value above ``lo``.
-    lo_open : bool
-        Accept (lo, hi] instead.
-
-    Returns
-    -------
-    float
-        ``value`` as a float.
-
-    Raises
-    ------
-    UserError
-        Naming ``option`` and the accepted range, for a bool, a non-number, a non-finite number or one
-        out of range.
-    """
-    left = "(" if lo_open else "["
-    right = ")" if math.isinf(hi) else "]"
-    message = f"{option} must be a finite number in {left}{lo:g}, {hi:g}{right}; got {value!r}"
-    if isinstance(value, bool):
-        raise UserError(message)
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        raise UserError(message) from None
-    if not math.isfinite(v) or v < lo or v > hi or (lo_open and v == lo):
-        raise UserError(message)
-    return v
-
-
-def check_int(option: str, value, lo: int, hi: int) -> int:
-    """An integer option checked against its range.
-
-    Parameters
-    ----------
-    option : str
-        The option's name, for the error.
-    value : object
-        The value given (a bool is not an integer).
-    lo, hi : int
-        The accepted range [lo, hi].
-
-    Returns
-    -------
-    int
-        ``value`` as an int.
-
-    Raises
-    ------
-    UserError
-        Naming ``option`` and the accepted range otherwise.
-    """
-    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or not lo <= value <= hi:
-        raise UserError(f"{option} must be an integer in [{lo}, {hi}]; got {value!r}")
-    return int(value)
-
-
-def check_choice(option: str, value, choices) -> str:
-    """An option checked against its choices.
-
-    Parameters
-    ----------
-    option : str
-        The option's name, for the error.
-    value : object
-        The value given.
-    choices : sequence of str
-        The accepted values.
-
-    Returns
-    -------
-    str
-        ``value``.
-
-    Raises
-    ------
-    UserError
-        Listing the choices, for any other value.
-    """
-    if value not in choices:
-        raise UserError(f"{option} must be one of {', '.join(choices)}; got {value!r}")
-    return value
 
 
 def schedule(step0: float, t0: float, t: int) -> float:

@@ -14,7 +14,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from trainer.solvers import check_float
+from trainer.options import check_float
 from trainer.solvers._first_order import RULE_ADAGRAD, FirstOrderSolver
 
 

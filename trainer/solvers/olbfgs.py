@@ -107,7 +107,8 @@ import numpy as np
 
 from trainer.errors import UserError
 from trainer.kernels import curvatures_into, dot, margins_into, scatter_compact, scatter_compact_squares
-from trainer.solvers import LinearSolver, check_choice, check_float, check_int, schedule
+from trainer.options import check_choice, check_float, check_int
+from trainer.solvers import LinearSolver, schedule
 from trainer.solvers._olbfgs_kernels import (CHUNK, chunk_pointers, commit_step, fold_diagonal, lbfgs_direction,
                                              line_loss, line_residuals, pair_products, record_pair)
 

@@ -26,7 +26,8 @@ import scipy.linalg.blas
 from trainer.errors import UserError
 from trainer.kernels import (curvatures_into, margins_into, regularized_gradient, residuals_into, scatter_compact,
                              scatter_compact_squares)
-from trainer.solvers import LinearSolver, check_float, schedule
+from trainer.options import check_float
+from trainer.solvers import LinearSolver, schedule
 
 MAX_FEATURES = 4096
 

@@ -8,7 +8,8 @@ the l2 shrink.
 
 from __future__ import annotations
 
-from trainer.solvers import check_float, schedule
+from trainer.options import check_float
+from trainer.solvers import schedule
 from trainer.solvers._first_order import RULE_SGD, FirstOrderSolver
 
 
