@@ -10,7 +10,6 @@ import pyarrow.parquet as pq
 import pytest
 from sklearn.datasets import load_breast_cancer
 from sklearn.linear_model import LogisticRegression
-from scipy.special import poch
 from sklearn.metrics import log_loss
 
 from conftest import SMALL_SPEC, batch_csr, make_table, reference_objective, reference_optimum
@@ -97,19 +96,32 @@ def test_full_batch_after_the_first_pass_and_only_within_the_budget(log_60k, tmp
 
 
 def test_an_online_pass_gives_the_polynomial_decay_average_of_its_iterates(log_60k, tmp_path):
-    # Reference: the solver replayed outside the training loop on the same batches, its iterates
-    # averaged in numpy with the weights of the polynomial-decay average written out (proportional to
-    # the rising factorial scipy.special.poch(t, eta); "Stochastic Gradient Descent for Non-smooth
-    # Optimization: Convergence Results and Optimal Averaging Schemes", ICML 2013, from memory).
+    # Reference: the solver replayed outside the training loop on batches cut by the documented growth
+    # rule (1/32 of the rows seen, between --batch-rows and 16x it; "Sample size selection in
+    # optimization methods for machine learning", Mathematical Programming 134, 2012), its iterates
+    # averaged in numpy with the polynomial-decay weights measured in rows, R_t^(eta+1) - R_(t-1)^(eta+1)
+    # after R_t rows (for equal batches proportional to t^eta as in "Stochastic Gradient Descent for
+    # Non-smooth Optimization: Convergence Results and Optimal Averaging Schemes", ICML 2013; from memory).
     data, spec_path = log_60k
-    model = api.train(spec_path, data, tmp_path / "m", batch_rows=1000, epochs=1).model
+    result = api.train(spec_path, data, tmp_path / "m", batch_rows=1000, epochs=1)
+    model = result.model
     solver = make_solver("olbfgs", model.spec.n_buckets, "logistic", 1e-4)
-    iterates = []
-    for batch in Reader(model.spec, data, batch_rows=1000).batches(0):
+    seen, iterates, rows = [0], [], []
+
+    def grown():
+        return min(max(1000, seen[0] // 32), 16_000)
+
+    for batch in Reader(model.spec, data, batch_rows=1000).batches(0, sizes=grown):
         solver.step(batch)
+        seen[0] += batch.n_rows
         iterates.append(np.append(solver.weights, solver.intercept))
-    assert len(iterates) == 60  # more than a tiny log's 16 batches: an online pass
-    weights = poch(np.arange(1, len(iterates) + 1), AVERAGE_POWER)
+        rows.append(seen[0])
+    assert rows[31] == 32_000 and rows[32] == 33_000 and rows[33] == 34_031  # growth starts at 32k rows
+    sizes = np.diff([0] + rows)
+    record = result.per_pass[0]  # the per-pass record states the steps and batch sizes it took
+    assert record["steps"] == len(iterates) and record["batch_rows"] == [sizes.min(), sizes.max()]
+    ends = np.array([0] + rows, dtype=np.float64)
+    weights = np.diff(ends ** (AVERAGE_POWER + 1))
     expected = weights @ np.array(iterates) / weights.sum()
     np.testing.assert_allclose(np.append(model.weights, model.intercept), expected, rtol=1e-9, atol=1e-12)
     assert not np.allclose(expected, iterates[-1], rtol=1e-3)  # the average is not the last iterate

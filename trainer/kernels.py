@@ -323,9 +323,9 @@ def dot(u, v):
 def blend_into(avg, w, b, c):
     """avg <- avg + c (x - avg) in place, for x the weights ``w`` then the intercept ``b``.
 
-    One step of a running weighted average of iterates: with c = (eta + 1) / (t + eta) at the t-th
-    iterate it is the polynomial-decay average of the reference below. c = 1 (at t = 1) copies x,
-    whatever ``avg`` held.
+    One step of a running weighted average of iterates, e.g. the polynomial-decay average of the
+    reference below (c = (eta + 1) / (t + eta) at the t-th iterate; ``trainer.training`` measures t in
+    rows). c = 1 copies x, whatever ``avg`` held.
 
     Parameters
     ----------

@@ -9,13 +9,24 @@ checkpoint (killed in its first seconds) starts that run afresh on ``--resume`` 
 command again; other options are refused, naming the first that differs.
 
 Iterate averaging of the default solver (``olbfgs``; ``full_batch_memory`` 0 turns it off with the
-full-batch phase, leaving plain online passes): the model of an online pass is a weighted mean of
-the solver's iterates in that pass ("Acceleration of stochastic approximation by averaging", SIAM
-Journal on Control and Optimization 30, 1992), the t-th iterate blended in with weight
-(eta + 1) / (t + eta), eta = ``AVERAGE_POWER``: the polynomial-decay average of "Stochastic Gradient
-Descent for Non-smooth Optimization: Convergence Results and Optimal Averaging Schemes" (ICML 2013),
-whose weights grow like t^eta, so early iterates of the pass count little. The solver itself goes on
-from its last iterate.
+full-batch phase and the batch growth below, leaving plain online passes): the model of an online
+pass is a weighted mean of the solver's iterates in that pass ("Acceleration of stochastic
+approximation by averaging", SIAM Journal on Control and Optimization 30, 1992): the iterate after
+the pass's first R_t rows is blended in with weight 1 - (R_(t-1) / R_t)^(eta + 1), eta =
+``AVERAGE_POWER``, so it weighs R_t^(eta+1) - R_(t-1)^(eta+1): the polynomial-decay average of
+"Stochastic Gradient Descent for Non-smooth Optimization: Convergence Results and Optimal Averaging
+Schemes" (ICML 2013) measured in rows instead of steps (for batches of equal size it weighs the t-th
+iterate in proportion to about t^eta), so early iterates count little and a large batch counts for
+its rows. The solver itself goes on from its last iterate.
+
+Batch growth of the default solver: an online batch holds 1 / ``BATCH_GROWTH`` of the rows the run
+has seen, at least ``batch_rows`` and at most ``BATCH_GROWTH_CAP`` x ``batch_rows`` rows (the dynamic
+sample sizes of "Sample size selection in optimization methods for machine learning", Mathematical
+Programming 134, 2012): small batches while the model is far off, larger ones, with less noise and
+fewer dense passes over the stored curvature pairs, once many rows have been seen. A pass of 1M rows
+takes about 100 steps instead of 245, and a pass of 100M rows about 1,600 instead of 24,000. The
+sizes follow from the rows seen, which the checkpoint holds, so a resumed run cuts the same batches.
+Each online pass's record and table row state its steps and the smallest and largest batch.
 
 Phases of the default solver: passes are online (one step per batch) unless the hashed log fits
 ``full_batch_memory`` MB, in which case every pass after the first is a full-batch pass
@@ -77,6 +88,10 @@ HUGE_NUMERIC = 1e3
 TINY_BATCHES = 16
 #: eta of the polynomial-decay average that is the model of an online pass of the default solver.
 AVERAGE_POWER = 3.0
+#: The default solver's online batches hold 1 / BATCH_GROWTH of the rows seen so far ...
+BATCH_GROWTH = 32
+#: ... and at most BATCH_GROWTH_CAP x --batch-rows rows (memory).
+BATCH_GROWTH_CAP = 16
 
 
 @dataclass
@@ -102,6 +117,9 @@ class _State:
     rows_first_pass: int = 0
     avg_count: int = 0
     avg_pass: int = -1
+    pass_steps: int = 0
+    batch_min: int = 0
+    batch_max: int = 0
     phases: list = dataclasses.field(default_factory=list)
 
     def to_json(self) -> dict:
@@ -193,6 +211,19 @@ def _off_calibration(holdout: dict | None) -> float | None:
     if ratio is None or not math.isfinite(ratio) or CALIBRATED[0] <= ratio <= CALIBRATED[1]:
         return None
     return ratio
+
+
+def _phase_text(rec: dict) -> str:
+    """The per-pass table's phase cell: the phase, with an online pass's steps and batch sizes or a
+    full-batch pass's iterations."""
+    phase = rec.get("phase", "")
+    if "steps" in rec:
+        lo, hi = rec["batch_rows"]
+        rows = f"{lo:,}" if lo == hi else f"{lo:,}-{hi:,}"
+        return f"{phase}: {rec['steps']:,} steps of {rows} rows"
+    if "full_batch" in rec:
+        return f"{phase}: {rec['full_batch']['iterations']} iterations"
+    return phase
 
 
 def _holdout_score(summary: dict, loss: str) -> float:
@@ -518,14 +549,15 @@ class Trainer:
             return self.average.copy()
         return np.append(self.solver.weights, self.solver.intercept)
 
-    def _average(self) -> None:
-        """Blend the solver's iterate into the pass's polynomial-decay average (module docstring)."""
+    def _average(self, batch_rows: int) -> None:
+        """Blend the solver's iterate after a batch of ``batch_rows`` rows into the pass's polynomial-decay
+        average (module docstring)."""
         st = self.state
         if st.avg_pass != st.pass_index:
             st.avg_pass, st.avg_count = st.pass_index, 0
         st.avg_count += 1
-        blend_into(self.average, self.solver.weights, self.solver.intercept,
-                   (AVERAGE_POWER + 1.0) / (st.avg_count + AVERAGE_POWER))
+        before = (st.rows_in_pass - batch_rows) / st.rows_in_pass
+        blend_into(self.average, self.solver.weights, self.solver.intercept, 1.0 - before ** (AVERAGE_POWER + 1.0))
 
     def run(self) -> TrainResult:
         """Train to the requested passes (or an early stop).
@@ -749,8 +781,11 @@ class Trainer:
         self._window[0] += loss * w
         self._window[1] += w
         st.steps += 1
+        st.pass_steps += 1
+        st.batch_min = min(st.batch_min or batch.n_rows, batch.n_rows)
+        st.batch_max = max(st.batch_max, batch.n_rows)
         if self.average is not None:
-            self._average()
+            self._average(batch.n_rows)
         point = self._point_rows
         if self._window[1] and (st.rows_in_pass // point) != ((st.rows_in_pass - batch.n_rows) // point):
             st.progress.append({"rows": st.rows_total, "loss": self._window[0] / self._window[1]})
@@ -785,6 +820,25 @@ class Trainer:
         st = self.state
         return f"progressive loss {st.pv_loss / st.pv_weight:.5f}"
 
+    def next_batch_rows(self) -> int:
+        """Rows of the next online batch: ``batch_rows``, or in the default solver's phases 1 /
+        ``BATCH_GROWTH`` of the rows seen so far, within [``batch_rows``, ``BATCH_GROWTH_CAP`` x
+        ``batch_rows``] (module docstring).
+
+        Returns
+        -------
+        int
+
+        References
+        ----------
+        "Sample size selection in optimization methods for machine learning", Mathematical
+        Programming 134, 2012.
+        """
+        rows = self.opt.batch_rows
+        if not self.opt.phased:
+            return rows
+        return min(max(rows, self.state.rows_total // BATCH_GROWTH), BATCH_GROWTH_CAP * rows)
+
     def _one_pass(self, stop: _StopFlag) -> None:
         st = self.state
         bar = tqdm(total=self.reader.total_rows, initial=st.rows_in_pass, unit="rows", unit_scale=True,
@@ -792,7 +846,7 @@ class Trainer:
                    disable=self.quiet or not sys.stderr.isatty(),
                    mininterval=0.5, leave=False, dynamic_ncols=True)
         shown = -math.inf
-        for batch in self.reader.batches(st.pass_index, st.position):
+        for batch in self.reader.batches(st.pass_index, st.position, sizes=self.next_batch_rows):
             if self.take(batch):
                 self.save_checkpoint()
             bar.update(batch.n_rows)
@@ -871,7 +925,9 @@ class Trainer:
                   "progressive_loss": st.pv_loss / st.pv_weight if st.pv_weight else None,
                   "holdout": holdout, "train_seconds": train_seconds, "eval_seconds": eval_seconds,
                   "phase": "online" if fitted is None else "full-batch"}
-        if fitted is not None:
+        if fitted is None:
+            record.update(steps=st.pass_steps, batch_rows=[st.batch_min, st.batch_max])
+        else:
             record["full_batch"] = {k: fitted[k] for k in ("iterations", "evaluations", "objective", "converged")}
         self.end_pass()
         st.pv_loss, st.pv_weight = 0.0, 0.0
@@ -894,6 +950,7 @@ class Trainer:
         if st.pass_index == 1:
             st.rows_first_pass = st.rows_in_pass
         st.position, st.rows_in_pass = None, 0
+        st.pass_steps, st.batch_min, st.batch_max = 0, 0, 0
 
     def notes(self, record: dict, who: str = "") -> list[str]:
         """The lines that follow a pass's table row: a predicted/observed ratio outside ``CALIBRATED``,
@@ -1039,4 +1096,4 @@ class Trainer:
                 f"{f(loss, '13.5f')} "
                 f"{f(h.get('normalized_entropy'), '9.4f')} {f(h.get('auc', margin.get('auc')), '7.4f')} "
                 f"{f(h.get('calibration_ratio'), '8.4f')}{'!' if flagged else ' '} {f(h.get('error_rate', margin.get('error_rate')), '7.4f')} "
-                f"{rec['train_seconds']:8.1f} {rec['eval_seconds']:7.1f}  {rec.get('phase', ''):<10}")
+                f"{rec['train_seconds']:8.1f} {rec['eval_seconds']:7.1f}  {_phase_text(rec):<10}")

@@ -335,7 +335,7 @@ class Reader:
         """Rows in the selected files before row filters (an upper bound for progress bars)."""
         return sum(f.num_rows for f in self.files)
 
-    def batches(self, pass_index: int = 0, start: Position | None = None) -> Iterator[Batch]:
+    def batches(self, pass_index: int = 0, start: Position | None = None, sizes=None) -> Iterator[Batch]:
         """Yield the batches of one pass.
 
         Parameters
@@ -344,11 +344,14 @@ class Reader:
             The pass (it seeds shuffling and negative sampling).
         start : Position, optional
             Where to resume (a batch's ``position``); default the beginning.
+        sizes : callable, optional
+            Called before each batch (after the previous one was consumed) for its row count, at least
+            1; default ``batch_rows`` every time.
 
         Yields
         ------
         Batch
-            The next ``batch_rows`` rows, with the position after them.
+            The next ``batch_rows`` (or ``sizes()``) rows, with the position after them.
 
         Raises
         ------
@@ -360,15 +363,18 @@ class Reader:
         pending: list[_Rows] = []
         have = 0
         emitted = 0
+        size = sizes or (lambda: self.batch_rows)
+        need = size()
         for rows in self._stream(pass_index, start):
             pending.append(rows)
             have += rows.n
-            while have >= self.batch_rows:
+            while have >= need:
                 merged = _Rows.concat(pending)
-                out, rest = merged.slice(0, self.batch_rows), merged.slice(self.batch_rows, merged.n)
+                out, rest = merged.slice(0, need), merged.slice(need, merged.n)
                 pending, have = ([rest] if rest.n else []), rest.n
                 emitted += out.n
                 yield self._batch(out)
+                need = size()
         if have:
             emitted += have
             yield self._batch(_Rows.concat(pending))
