@@ -47,7 +47,8 @@ HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 
 import loggen  # noqa: E402
-from bench_train import PEER_PASSES, TARGET, cached_optimum, load_csr, log_loss, run_hashcurve, run_peer  # noqa: E402
+from bench_train import (OPTIMUM_METHOD, PEER_PASSES, TARGET, cached_optimum, load_csr, log_loss,  # noqa: E402
+                         run_hashcurve, run_peer)
 
 from trainer.atomic import write_atomic  # noqa: E402
 from trainer.cli import configure_process  # noqa: E402
@@ -179,7 +180,7 @@ def run_regime(r: Regime, passes: int, skip_peer: bool) -> dict:
           f"{X.nnz / X.shape[0]:.1f} entries per row, base rate {y.mean():.4f}, l2 {r.l2:g}", flush=True)
     settings = {"data": r.data_key if r.config not in ("demo", "fair") else r.config, "l2": r.l2,
                 "spec": spec.fingerprint(), "rows": int(X.shape[0]), "nnz": int(X.nnz),
-                "method": "scipy L-BFGS-B, Jacobi-scaled, ftol 1e-15, gtol 1e-12, maxcor 20"}
+                "method": OPTIMUM_METHOD}
     w, b = cached_optimum(ROOT / "optima" / f"{settings['data']}-l2-{r.l2:g}.npz", settings, X, y, r.l2)
     ll_star = log_loss(yh, Xh @ w + b)
     print(f"  LL* = {ll_star:.5f}", flush=True)

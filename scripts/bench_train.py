@@ -47,6 +47,7 @@ from pathlib import Path
 import numpy as np
 import scipy.optimize
 import scipy.sparse as sp
+from numba import njit, prange
 from scipy.special import expit
 
 HERE = Path(__file__).resolve().parent
@@ -57,12 +58,13 @@ import loggen  # noqa: E402
 from trainer import api  # noqa: E402
 from trainer.atomic import atomic_path  # noqa: E402
 from trainer.cli import configure_process  # noqa: E402
+from trainer.kernels import blend_into  # noqa: E402
 from trainer.losses import pointwise_loss  # noqa: E402
 from trainer.reader import Reader, parse_day  # noqa: E402
 from trainer.solvers import make_solver  # noqa: E402
 from trainer.spec import load_spec  # noqa: E402
 from trainer.sweep import AUTO_GRID  # noqa: E402
-from trainer.training import TrainOptions  # noqa: E402
+from trainer.training import TrainOptions, average_weight, grown_batch_rows  # noqa: E402
 
 PEER_STEPS = (0.002, 0.005, 0.01, 0.02, 0.05)
 PEER_PASSES = 30
@@ -104,6 +106,10 @@ def load_csr(spec, logs: Path, start: str, end: str):
 def log_loss(y: np.ndarray, z: np.ndarray) -> float:
     """Mean logistic loss at margins ``z`` (the package's overflow-safe pointwise loss)."""
     return float(pointwise_loss("logistic", y, z).mean())
+
+
+#: What :func:`reference_optimum` does, as the optimum caches record it.
+OPTIMUM_METHOD = "scipy L-BFGS-B, Jacobi-scaled, ftol 1e-15, gtol 1e-12, maxcor 20"
 
 
 def reference_optimum(X, y, lam: float):
@@ -211,22 +217,84 @@ def run_hashcurve(spec_path: Path, data: Path, passes: int, quiet: bool = False,
     return hist
 
 
+@njit(cache=True)
+def _csr_once(indptr, indices, data, w, out):
+    """The reference of the gradient phase: one read of a batch's CSR (each entry's value times its
+    bucket's weight, summed per row)."""
+    for i in range(out.shape[0]):
+        acc = 0.0
+        for k in range(indptr[i], indptr[i + 1]):
+            acc += data[k] * w[indices[k]]
+        out[i] = acc
+
+
+@njit(cache=True, parallel=True)
+def _triad(a, b, c, s):
+    for i in prange(a.shape[0]):
+        a[i] = b[i] + s * c[i]
+
+
+def triad_bandwidth(megabytes: int = 64, repeats: int = 20) -> float:
+    """Bytes per second a numba streaming kernel moves here: a = b + s c over arrays of ``megabytes``
+    each, on all cores, counting 24 bytes per element (two reads, one write: the STREAM convention)."""
+    n = megabytes * 2**20 // 8
+    a, b, c = np.zeros(n), np.ones(n), np.ones(n)
+    _triad(a, b, c, 0.5)
+    t = time.perf_counter()
+    for _ in range(repeats):
+        _triad(a, b, c, 0.5)
+    return repeats * 24 * n / (time.perf_counter() - t)
+
+
+def dense_bytes_per_step(n_buckets: int, history: int) -> int:
+    """Bytes the dense work of a default step moves when every stored pair is in use, each array read
+    or written once per pass (writes counted once, like the triad): the direction's two passes (x,
+    the stored float32 steps, the float64 curvature diagonal, the float32 direction written; then the
+    direction read and written, the steps and x again), the update (x read and written, the direction
+    read, the new step written) and the iterate average (the average read and written, x read)."""
+    per_coordinate = (8 + 4 * history + 8 + 4) + (4 + 4 * history + 8 + 4) + (8 + 4 + 8 + 4) + (8 + 8 + 8)
+    return per_coordinate * (n_buckets + 1)
+
+
 def time_split(spec, logs: Path, train_end: str) -> dict:
-    """Seconds per step: reading + hashing alone, then the solver step on the same in-memory batches
-    with its own split into gradient and dense direction work."""
+    """Seconds per step of a default run's first online pass (batches cut as it cuts them): reading +
+    hashing alone, then the solver and the iterate average on the same in-memory batches with the
+    solver's own split; beside them the reference loop reading each batch's CSR once and the triad
+    bandwidth (the dense work's floor)."""
     opt = TrainOptions()
     reader = Reader(spec, logs / "logs", end=parse_day(train_end, "train_end"), batch_rows=opt.batch_rows)
+    seen = 0
+
+    def sizes():
+        return grown_batch_rows(seen, opt.batch_rows)
+
+    batches = []
     t = time.perf_counter()
-    batches = list(reader.batches())
+    for b in reader.batches(sizes=sizes):
+        batches.append(b)
+        seen += b.n_rows
     t_read = time.perf_counter() - t
     solver = make_solver(opt.solver, spec.n_buckets, opt.loss, opt.l2_strength, history=opt.history, step0=opt.step0)
+    average = np.zeros(spec.n_buckets + 1)
+    t_average, rows = 0.0, 0
     t = time.perf_counter()
     for b in batches:
         solver.step(b)
-    t_step = time.perf_counter() - t
+        started = time.perf_counter()
+        blend_into(average, solver.weights, solver.intercept, average_weight(rows, rows + b.n_rows))
+        rows += b.n_rows
+        t_average += time.perf_counter() - started
+    t_step = time.perf_counter() - t - t_average
+    w = np.zeros(spec.n_buckets)
+    t = time.perf_counter()
+    for b in batches:
+        _csr_once(b.indptr, b.indices, b.data, w, np.empty(b.n_rows))
+    t_csr = time.perf_counter() - t
     n = len(batches)
-    return {"steps": n, "read_ms": 1e3 * t_read / n, "step_ms": 1e3 * t_step / n,
-            **{f"{k}_ms": 1e3 * v / n for k, v in solver.seconds.items()}}
+    return {"steps": n, "rows_per_step": seen / n, "read_ms": 1e3 * t_read / n, "step_ms": 1e3 * t_step / n,
+            **{f"{k}_ms": 1e3 * v / n for k, v in solver.seconds.items()}, "average_ms": 1e3 * t_average / n,
+            "csr_once_ms": 1e3 * t_csr / n, "bandwidth": triad_bandwidth(),
+            "dense_bytes": dense_bytes_per_step(spec.n_buckets, opt.history)}
 
 
 def peak_rss(logs: Path, spec_path: Path, train_end: str) -> float:
@@ -338,10 +406,12 @@ def main() -> None:
     print(f"train {X.shape[0]:,} rows, holdout {Xh.shape[0]:,} rows, {X.shape[1]:,} buckets, "
           f"{X.nnz / X.shape[0]:.1f} entries per row, l2 = {opt.l2_strength:g}", flush=True)
 
-    w, b, fstar, secs, nit, gmax = reference_optimum(X, y, opt.l2_strength)
+    settings = {"data": folder.name, "l2": opt.l2_strength, "spec": spec.fingerprint(), "rows": int(X.shape[0]),
+                "nnz": int(X.nnz), "method": OPTIMUM_METHOD}
+    w, b = cached_optimum(folder.parent / "optima" / f"{folder.name}-l2-{opt.l2_strength:g}.npz", settings, X, y,
+                          opt.l2_strength)
     ll_star = log_loss(yh, Xh @ w + b)
-    print(f"reference optimum: objective {fstar:.6f}, holdout LL* {ll_star:.5f} "
-          f"(L-BFGS-B {nit} iterations, {secs:.0f} s, largest |gradient| entry {gmax:.1e})", flush=True)
+    print(f"reference optimum (full-batch, cached under bench_data/optima/): holdout LL* {ll_star:.5f}", flush=True)
     target = TARGET * ll_star
 
     ours = run_hashcurve(spec_path, folder / "logs", a.epochs, end=train_end, holdout_start=hold_day,
@@ -372,10 +442,19 @@ def main() -> None:
               f"ratio {ours[0]['seconds'] / peer_pass_time:.2f}x (target <= 6x, stretch 3x)")
 
     split = time_split(spec, folder, train_end)
-    print(f"\ntime per step ({split['steps']} steps of {opt.batch_rows} rows):")
+    print(f"\ntime per step ({split['steps']} steps of {split['rows_per_step']:,.0f} rows on average, the batch "
+          f"growing from {opt.batch_rows}):")
     for k, v in split.items():
         if k.endswith("_ms"):
             print(f"  {k[:-3]:<22} {v:8.3f} ms")
+    gradient_ratio = split["gradient_ms"] / split["csr_once_ms"]
+    print(f"  gradient + margins {split['gradient_ms']:.3f} ms against one read of the batch's CSR "
+          f"{split['csr_once_ms']:.3f} ms: {gradient_ratio:.2f}x (target <= 2x)")
+    dense_ms = split["direction_ms"] + split["update_ms"] + split["average_ms"]
+    floor_ms = 1e3 * split["dense_bytes"] / split["bandwidth"]
+    print(f"  dense work (direction + update + average) {dense_ms:.3f} ms; it moves {split['dense_bytes'] / 1e6:.0f} MB "
+          f"a step, at the triad's {split['bandwidth'] / 1e9:.1f} GB/s a floor of {floor_ms:.3f} ms: "
+          f"{dense_ms / floor_ms:.2f}x (target <= 1.5x)")
 
     if a.memory:
         bound = (opt.history + 4) * spec.n_buckets * 8 / 2**20 + 400

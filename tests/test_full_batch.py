@@ -108,7 +108,7 @@ def test_an_online_pass_gives_the_polynomial_decay_average_of_its_iterates(log_6
     solver = make_solver("olbfgs", model.spec.n_buckets, "logistic", 1e-4)
     seen, iterates, rows = [0], [], []
 
-    def grown():
+    def grown():  # the rule as documented, written out
         return min(max(1000, seen[0] // 32), 16_000)
 
     for batch in Reader(model.spec, data, batch_rows=1000).batches(0, sizes=grown):

@@ -113,6 +113,40 @@ def residuals_into(code, labels, weights, z, r):
 
 
 @njit(cache=True, nogil=True)
+def residuals_curvatures_into(code, labels, weights, z, r, h):
+    """:func:`residuals_into` and :func:`curvatures_into` in one loop over the rows.
+
+    Parameters
+    ----------
+    code, labels, weights, z, r : see :func:`residuals_into`
+    h : numpy.ndarray
+        float64 output, overwritten with c_i * l''(y_i, z_i).
+
+    Returns
+    -------
+    tuple of float
+        ``(sum_i c_i l(y_i, z_i), sum_i c_i, sum_i r_i, sum_i h_i)``, each summed in row order as the two
+        functions sum them.
+    """
+    loss_sum = 0.0
+    weight_sum = 0.0
+    r_sum = 0.0
+    h_sum = 0.0
+    for i in range(z.shape[0]):
+        c = weights[i]
+        y, zi = labels[i], z[i]
+        loss_sum += c * loss(code, y, zi)
+        ri = c * dloss(code, y, zi)
+        r[i] = ri
+        r_sum += ri
+        weight_sum += c
+        hi = c * d2loss(code, y, zi)
+        h[i] = hi
+        h_sum += hi
+    return loss_sum, weight_sum, r_sum, h_sum
+
+
+@njit(cache=True, nogil=True)
 def curvatures_into(code, labels, weights, z, h):
     """Write h_i = c_i * l''(y_i, z_i) (Gauss-Newton row curvature).
 
@@ -265,6 +299,49 @@ def scatter_compact_squares(indptr, slot, data, h, scale, out):
                 out[p] += hi * v * v
     for p in range(out.shape[0]):
         out[p] *= scale
+
+
+@njit(cache=True, nogil=True)
+def scatter_gradient_curvature(indptr, slot, data, r, h, scale, g, d):
+    """:func:`scatter_compact` of ``r`` into ``g`` and :func:`scatter_compact_squares` of ``h`` into ``d``
+    in one pass over the batch's entries (the same sums in the same order).
+
+    Parameters
+    ----------
+    indptr, slot, data : see :func:`scatter_compact`
+    r, h : numpy.ndarray
+        Per-row residuals and curvatures.
+    scale : float
+        Factor applied to every sum.
+    g, d : numpy.ndarray
+        One entry per distinct bucket each, overwritten.
+    """
+    g[:] = 0.0
+    d[:] = 0.0
+    row_of = np.full(d.shape[0], -1, dtype=np.int64)
+    within = np.empty(d.shape[0])
+    n_rows = indptr.shape[0] - 1
+    for i in range(n_rows):
+        ri = r[i]
+        for k in range(indptr[i], indptr[i + 1]):
+            p = slot[k]
+            v = data[k]
+            g[p] += ri * v
+            if row_of[p] != i:
+                row_of[p] = i
+                within[p] = v
+            else:
+                within[p] += v
+        hi = h[i]
+        for k in range(indptr[i], indptr[i + 1]):
+            p = slot[k]
+            if row_of[p] == i:
+                row_of[p] = -1 - i
+                v = within[p]
+                d[p] += hi * v * v
+    for p in range(d.shape[0]):
+        g[p] *= scale
+        d[p] *= scale
 
 
 @njit(cache=True, nogil=True)

@@ -213,6 +213,49 @@ def _off_calibration(holdout: dict | None) -> float | None:
     return ratio
 
 
+def grown_batch_rows(rows_seen: int, batch_rows: int) -> int:
+    """The default solver's batch size after ``rows_seen`` rows (module docstring).
+
+    Parameters
+    ----------
+    rows_seen : int
+        Rows the run has seen.
+    batch_rows : int
+        ``--batch-rows``.
+
+    Returns
+    -------
+    int
+        rows_seen // BATCH_GROWTH within [batch_rows, BATCH_GROWTH_CAP * batch_rows].
+
+    References
+    ----------
+    "Sample size selection in optimization methods for machine learning", Mathematical Programming 134, 2012.
+    """
+    return min(max(batch_rows, rows_seen // BATCH_GROWTH), BATCH_GROWTH_CAP * batch_rows)
+
+
+def average_weight(rows_before: int, rows_after: int) -> float:
+    """The blend weight of the iterate after a batch in a pass's polynomial-decay average (module docstring).
+
+    Parameters
+    ----------
+    rows_before, rows_after : int
+        Rows of the pass before and after the batch (rows_after > 0).
+
+    Returns
+    -------
+    float
+        1 - (rows_before / rows_after)^(AVERAGE_POWER + 1); 1 for the pass's first batch.
+
+    References
+    ----------
+    "Stochastic Gradient Descent for Non-smooth Optimization: Convergence Results and Optimal Averaging
+    Schemes", ICML, 2013.
+    """
+    return 1.0 - (rows_before / rows_after) ** (AVERAGE_POWER + 1.0)
+
+
 def _phase_text(rec: dict) -> str:
     """The per-pass table's phase cell: the phase, with an online pass's steps and batch sizes or a
     full-batch pass's iterations."""
@@ -556,8 +599,8 @@ class Trainer:
         if st.avg_pass != st.pass_index:
             st.avg_pass, st.avg_count = st.pass_index, 0
         st.avg_count += 1
-        before = (st.rows_in_pass - batch_rows) / st.rows_in_pass
-        blend_into(self.average, self.solver.weights, self.solver.intercept, 1.0 - before ** (AVERAGE_POWER + 1.0))
+        blend_into(self.average, self.solver.weights, self.solver.intercept,
+                   average_weight(st.rows_in_pass - batch_rows, st.rows_in_pass))
 
     def run(self) -> TrainResult:
         """Train to the requested passes (or an early stop).
@@ -834,10 +877,9 @@ class Trainer:
         "Sample size selection in optimization methods for machine learning", Mathematical
         Programming 134, 2012.
         """
-        rows = self.opt.batch_rows
         if not self.opt.phased:
-            return rows
-        return min(max(rows, self.state.rows_total // BATCH_GROWTH), BATCH_GROWTH_CAP * rows)
+            return self.opt.batch_rows
+        return grown_batch_rows(self.state.rows_total, self.opt.batch_rows)
 
     def _one_pass(self, stop: _StopFlag) -> None:
         st = self.state

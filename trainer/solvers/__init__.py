@@ -27,7 +27,8 @@ from typing import Protocol
 import numpy as np
 
 from trainer.errors import Diverged, UserError
-from trainer.kernels import batch_support, margins_into, residuals_into, scatter_compact
+from trainer.kernels import (batch_support, margins_into, residuals_curvatures_into, residuals_into, scatter_compact,
+                             scatter_gradient_curvature)
 from trainer.losses import LOSS_NAMES, loss_code
 from trainer.options import SOLVER_NAMES, check_choice, check_float, check_int
 
@@ -145,9 +146,13 @@ class BatchGradient:
         X^T r / C on ``cols``.
     gb : float
         sum r / C, the intercept's gradient.
+    curv : numpy.ndarray or None
+        With ``curvature``: the Gauss-Newton diagonal sum_i c_i l''_i x_ij^2 / C on ``cols``.
+    hb : float
+        With ``curvature``: its intercept entry, sum_i c_i l''_i / C.
     """
 
-    __slots__ = ("batch", "cols", "slot", "z", "r", "weight_sum", "loss", "gsp", "gb")
+    __slots__ = ("batch", "cols", "slot", "z", "r", "weight_sum", "loss", "gsp", "gb", "curv", "hb")
 
     def __init__(self, batch, cols, slot):
         self.batch = batch
@@ -159,8 +164,10 @@ class BatchGradient:
         self.weight_sum = 0.0
         self.loss = 0.0
         self.gb = 0.0
+        self.curv = None
+        self.hb = 0.0
 
-    def evaluate(self, code: int, w: np.ndarray, b: float) -> bool:
+    def evaluate(self, code: int, w: np.ndarray, b: float, curvature: bool = False) -> bool:
         """Fill every attribute at weights (w, b).
 
         Parameters
@@ -171,6 +178,8 @@ class BatchGradient:
             The n bucket weights.
         b : float
             The intercept.
+        curvature : bool, default False
+            Also fill ``curv`` and ``hb`` (in the same passes over the rows and entries).
 
         Returns
         -------
@@ -179,11 +188,20 @@ class BatchGradient:
         """
         bt = self.batch
         margins_into(bt.indptr, self.slot, bt.data, w[self.cols], b, self.z)
-        loss_sum, weight_sum, r_sum = residuals_into(code, bt.labels, bt.weights, self.z, self.r)
+        if curvature:
+            h = np.empty(bt.n_rows, dtype=np.float64)
+            loss_sum, weight_sum, r_sum, h_sum = residuals_curvatures_into(code, bt.labels, bt.weights, self.z,
+                                                                            self.r, h)
+            self.curv = np.empty(self.cols.shape[0], dtype=np.float64)
+            self.hb = h_sum / weight_sum
+            scatter_gradient_curvature(bt.indptr, self.slot, bt.data, self.r, h, 1.0 / weight_sum, self.gsp,
+                                       self.curv)
+        else:
+            loss_sum, weight_sum, r_sum = residuals_into(code, bt.labels, bt.weights, self.z, self.r)
+            scatter_compact(bt.indptr, self.slot, bt.data, self.r, 1.0 / weight_sum, self.gsp)
         self.weight_sum = weight_sum
         self.loss = loss_sum / weight_sum
         self.gb = r_sum / weight_sum
-        scatter_compact(bt.indptr, self.slot, bt.data, self.r, 1.0 / weight_sum, self.gsp)
         return math.isfinite(self.loss) and math.isfinite(self.gb) and bool(np.isfinite(self.gsp).all())
 
 
@@ -279,13 +297,13 @@ class LinearSolver:
             raise ValueError(f"weights must be {self._x.shape[0]} finite values; got shape {x.shape}")
         self._x[:] = x
 
-    def _gradient(self, batch) -> BatchGradient:
+    def _gradient(self, batch, curvature: bool = False) -> BatchGradient:
         """Evaluate the batch at the current weights; raise ``Diverged`` when the result is non-finite."""
         self._check_batch(batch)
         slot = np.empty(batch.indices.shape[0], dtype=np.int32)
         cols = batch_support(batch.indices, self._bits, slot)
         g = BatchGradient(batch, cols, slot)
-        if not g.evaluate(self.code, self._x[: self.n], self._x[self.n]):
+        if not g.evaluate(self.code, self._x[: self.n], self._x[self.n], curvature):
             self._diverged("the loss or its gradient")
         return g
 

@@ -106,7 +106,7 @@ import time
 import numpy as np
 
 from trainer.errors import UserError
-from trainer.kernels import curvatures_into, dot, margins_into, scatter_compact, scatter_compact_squares
+from trainer.kernels import dot, margins_into, scatter_compact
 from trainer.options import check_choice, check_float, check_int
 from trainer.solvers import LinearSolver, schedule
 from trainer.solvers._olbfgs_kernels import (CHUNK, chunk_pointers, commit_step, fold_diagonal, lbfgs_direction,
@@ -265,15 +265,11 @@ class OnlineLBFGS(LinearSolver):
         clock = time.perf_counter
         started = clock()
         n = self.n
-        g0 = self._gradient(batch)
+        g0 = self._gradient(batch, curvature=True)
         gcols = np.append(g0.cols, np.int32(n))
         gvals = np.append(g0.gsp, g0.gb)
         gptr = chunk_pointers(gcols, n + 1)
-
-        h = np.empty(batch.n_rows, dtype=np.float64)
-        hb = curvatures_into(self.code, batch.labels, batch.weights, g0.z, h) / g0.weight_sum
-        curv = np.empty(g0.cols.shape[0], dtype=np.float64)
-        scatter_compact_squares(batch.indptr, g0.slot, batch.data, h, 1.0 / g0.weight_sum, curv)
+        curv, hb = g0.curv, g0.hb
         beta = 1.0 - 1.0 / min(self.t + 1.0, self.curvature_window)
         rows = self._rows + batch.n_rows
         entries = self._entries + batch.indices.shape[0]

@@ -24,8 +24,7 @@ import scipy.linalg
 import scipy.linalg.blas
 
 from trainer.errors import UserError
-from trainer.kernels import (curvatures_into, margins_into, regularized_gradient, residuals_into, scatter_compact,
-                             scatter_compact_squares)
+from trainer.kernels import margins_into, regularized_gradient, residuals_into, scatter_compact
 from trainer.options import check_float
 from trainer.solvers import LinearSolver, schedule
 
@@ -102,16 +101,11 @@ class RES(LinearSolver):
         return {"step0": self.step0, "t0": self.t0, "delta": self.delta, "gamma": self.gamma}
 
     def _initial_matrix(self, g0) -> np.ndarray:
-        bt = g0.batch
         n = self.n
-        h = np.empty(bt.n_rows, dtype=np.float64)
-        hb = curvatures_into(self.code, bt.labels, bt.weights, g0.z, h) / g0.weight_sum
-        curv = np.empty(g0.cols.shape[0], dtype=np.float64)
-        scatter_compact_squares(bt.indptr, g0.slot, bt.data, h, 1.0 / g0.weight_sum, curv)
-        diag = np.full(n + 1, hb + self.delta)
+        diag = np.full(n + 1, g0.hb + self.delta)
         diag[:n] += self.l2
-        diag[g0.cols] += curv
-        diag[n] += hb
+        diag[g0.cols] += g0.curv
+        diag[n] += g0.hb
         return np.asfortranarray(np.diag(diag))
 
     def step(self, batch) -> float:
@@ -136,7 +130,7 @@ class RES(LinearSolver):
             For an empty batch or a bucket id out of range.
         """
         n = self.n
-        g0 = self._gradient(batch)
+        g0 = self._gradient(batch, curvature=not self._started)
         g = np.empty(n + 1, dtype=np.float64)
         regularized_gradient(self._x[:n], self.l2, g0.cols, g0.gsp, g0.gb, g)
         B = self._B if self._started else self._initial_matrix(g0)
