@@ -13,6 +13,8 @@ storage dtype (float32 by default). Parallel kernels are called from Python only
 
 from __future__ import annotations
 
+import time
+
 import numpy as np
 from numba import njit, prange
 
@@ -338,7 +340,7 @@ def _second_loop(order, m, rho, G, alpha, lam, e, b):
 
 
 def lbfgs_direction(x, gcols, gvals, gptr, S, order, m, rho, G, z, yptr, yidx, yval, ychunk, lam, n_reg, diag,
-                    diag_scale, damp, q):
+                    diag_scale, damp, q, seconds=None):
     """Write d = H g into ``q``, H the limited-memory BFGS inverse-Hessian approximation.
 
     The gradient is g = lam * x[:n_reg] (zero at the other coordinates) plus the sparse part ``gvals`` on
@@ -382,6 +384,8 @@ def lbfgs_direction(x, gcols, gvals, gptr, S, order, m, rho, G, z, yptr, yidx, y
         The initial matrix, as in :func:`precondition_pass`.
     q : numpy.ndarray
         Output, the direction d.
+    seconds : dict, optional
+        When given, the wall time of the two dense passes is added to its "dense" entry.
 
     Returns
     -------
@@ -399,12 +403,18 @@ def lbfgs_direction(x, gcols, gvals, gptr, S, order, m, rho, G, z, yptr, yidx, y
     alpha = _first_loop(sg, order, m, rho, G, z, lam)
     e = np.empty(m)
     b = np.empty(m)
+    clock = time.perf_counter
+    started = clock()
     precondition_pass(x, S, order, m, alpha, lam, n_reg, diag, diag_scale, damp, gcols, gvals, gptr, yptr, yidx,
                       yval, ychunk, q, e, b)
+    first = clock() - started
     coef = _second_loop(order, m, rho, G, alpha, lam, e, b)
     p = np.empty(m)
     yd = np.empty(m)
+    started = clock()
     xd, dd, bound = combine_pass(q, S, order, m, coef, x, n_reg, yptr, yidx, yval, ychunk, p, yd)
+    if seconds is not None:
+        seconds["dense"] += first + clock() - started
     return xd, dd, bound, p, yd, Sg
 
 

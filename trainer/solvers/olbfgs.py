@@ -136,8 +136,9 @@ def default_prior_rows(l2: float) -> float:
 class OnlineLBFGS(LinearSolver):
     """Online L-BFGS with a damped Gauss-Newton diagonal initial matrix (see the module docstring).
 
-    ``seconds`` accumulates the wall time of each phase (gradient, direction, line_search, update); it
-    is not part of state(). Memory: (history + 1) * (n_features + 1) float32 values (the stored steps and
+    ``seconds`` accumulates the wall time of each phase (gradient, direction, line_search, update) and,
+    across the direction and the update, of the dense passes alone (dense: the direction's two passes
+    and the weight update); it is not part of state(). Memory: (history + 1) * (n_features + 1) float32 values (the stored steps and
     the direction), 2 * (n_features + 1) float64 values (weights and curvature diagonal; one more during
     the first step) and the sparse gradient differences of the stored pairs.
 
@@ -196,7 +197,7 @@ class OnlineLBFGS(LinearSolver):
         self.prior_entries = check_float("prior_entries", prior_entries, 0.0, 1e12)
         self.armijo = check_float("armijo", armijo, 0.0, 0.5, lo_open=True)
         self.pair_dtype = check_choice("pair_dtype", pair_dtype, ("float32", "float64"))
-        self.seconds = {"gradient": 0.0, "direction": 0.0, "line_search": 0.0, "update": 0.0}
+        self.seconds = {"gradient": 0.0, "direction": 0.0, "line_search": 0.0, "update": 0.0, "dense": 0.0}
         size = self.n + 1
         self._S = np.zeros((self.history, size), dtype=np.dtype(self.pair_dtype))
         self._rho = np.zeros(self.history, dtype=np.float64)
@@ -288,7 +289,7 @@ class OnlineLBFGS(LinearSolver):
         yptr, yidx, yval = self._pairs()
         xq, qq_reg, bound, p, yd, Sg = lbfgs_direction(self._x, gcols, gvals, gptr, self._S, order, m, self._rho,
                                                        self._G, self._z, yptr, yidx, yval, self._y_chunk, self.l2,
-                                                       n, diag, scale, damp, q)
+                                                       n, diag, scale, damp, q, self.seconds)
         if not math.isfinite(bound):
             self._diverged("the search direction")
         direction_done = clock()
@@ -316,7 +317,9 @@ class OnlineLBFGS(LinearSolver):
 
         k = self._head
         accept = yy > 0.0 and sy > 1e-10 * math.sqrt(ss * yy)
+        committing = clock()
         commit_step(self._x, q, -eps, self._S[k], accept)
+        self.seconds["dense"] += clock() - committing
         record_pair(order, m, k, accept, Sg, ysp, p, yd, -eps, self.l2, sy, xq, qq_reg, self._G, self._z)
         self._fold(beta, g0.cols, curv, hb)
         if accept:
