@@ -106,16 +106,16 @@ def test_an_online_pass_gives_the_polynomial_decay_average_of_its_iterates(log_6
     result = api.train(spec_path, data, tmp_path / "m", batch_rows=1000, epochs=1)
     model = result.model
     solver = make_solver("olbfgs", model.spec.n_buckets, "logistic", 1e-4)
-    seen, iterates, rows = [0], [], []
+    iterates, rows = [], [0]
 
-    def grown():  # the rule as documented, written out
-        return min(max(1000, seen[0] // 32), 16_000)
+    def grown(seen):  # the rule as documented, written out
+        return min(max(1000, seen // 32), 16_000)
 
     for batch in Reader(model.spec, data, batch_rows=1000).batches(0, sizes=grown):
         solver.step(batch)
-        seen[0] += batch.n_rows
         iterates.append(np.append(solver.weights, solver.intercept))
-        rows.append(seen[0])
+        rows.append(rows[-1] + batch.n_rows)
+    rows = rows[1:]
     assert rows[31] == 32_000 and rows[32] == 33_000 and rows[33] == 34_031  # growth starts at 32k rows
     sizes = np.diff([0] + rows)
     record = result.per_pass[0]  # the per-pass record states the steps and batch sizes it took

@@ -863,23 +863,20 @@ class Trainer:
         st = self.state
         return f"progressive loss {st.pv_loss / st.pv_weight:.5f}"
 
-    def next_batch_rows(self) -> int:
-        """Rows of the next online batch: ``batch_rows``, or in the default solver's phases 1 /
-        ``BATCH_GROWTH`` of the rows seen so far, within [``batch_rows``, ``BATCH_GROWTH_CAP`` x
-        ``batch_rows``] (module docstring).
+    def batch_sizes(self):
+        """The rows of each online batch of the pass about to run: ``batch_rows``, or in the default
+        solver's phases :func:`grown_batch_rows` of the rows seen (module docstring).
 
         Returns
         -------
-        int
-
-        References
-        ----------
-        "Sample size selection in optimization methods for machine learning", Mathematical
-        Programming 134, 2012.
+        callable
+            ``sizes(rows)`` for :meth:`trainer.reader.stream.Reader.batches`: the next batch's rows after
+            ``rows`` rows of this pass's reading (from its start or its resume position).
         """
+        start, rows = self.state.rows_total, self.opt.batch_rows
         if not self.opt.phased:
-            return self.opt.batch_rows
-        return grown_batch_rows(self.state.rows_total, self.opt.batch_rows)
+            return lambda read: rows
+        return lambda read: grown_batch_rows(start + read, rows)
 
     def _one_pass(self, stop: _StopFlag) -> None:
         st = self.state
@@ -888,7 +885,7 @@ class Trainer:
                    disable=self.quiet or not sys.stderr.isatty(),
                    mininterval=0.5, leave=False, dynamic_ncols=True)
         shown = -math.inf
-        for batch in self.reader.batches(st.pass_index, st.position, sizes=self.next_batch_rows):
+        for batch in self.reader.batches(st.pass_index, st.position, sizes=self.batch_sizes()):
             if self.take(batch):
                 self.save_checkpoint()
             bar.update(batch.n_rows)

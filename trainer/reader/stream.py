@@ -345,8 +345,8 @@ class Reader:
         start : Position, optional
             Where to resume (a batch's ``position``); default the beginning.
         sizes : callable, optional
-            Called before each batch (after the previous one was consumed) for its row count, at least
-            1; default ``batch_rows`` every time.
+            ``sizes(rows)``, the next batch's row count (at least 1) after ``rows`` rows of this call's
+            batches; default ``batch_rows`` every time.
 
         Yields
         ------
@@ -363,8 +363,8 @@ class Reader:
         pending: list[_Rows] = []
         have = 0
         emitted = 0
-        size = sizes or (lambda: self.batch_rows)
-        need = size()
+        size = sizes or (lambda rows: self.batch_rows)
+        need = size(0)
         for rows in self._stream(pass_index, start):
             pending.append(rows)
             have += rows.n
@@ -374,7 +374,7 @@ class Reader:
                 pending, have = ([rest] if rest.n else []), rest.n
                 emitted += out.n
                 yield self._batch(out)
-                need = size()
+                need = size(emitted)
         if have:
             emitted += have
             yield self._batch(_Rows.concat(pending))
