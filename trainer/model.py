@@ -273,8 +273,11 @@ class Model:
             with atomic_path(folder / ARRAYS_FILE) as tmp, open(tmp, "wb") as f:
                 np.savez(f, weights=self.weights, intercept=np.float64(self.intercept))
             digest = sha256_file(folder / ARRAYS_FILE)
+            info = jsonable({k: v for k, v in self.info.items() if k != "examples"})
+            if "examples" in self.info:  # text keys to lists of text (BucketExamples): JSON as they are, and
+                info["examples"] = self.info["examples"]  # too many (up to 100,000) to copy value by value
             meta = {"format": TRAINING_FORMAT, "version": FORMAT_VERSION, "generator": f"hashcurve {__version__}",
-                    "spec": self.spec.raw, "loss": self.loss, "info": jsonable(self.info),
+                    "spec": self.spec.raw, "loss": self.loss, "info": info,
                     "arrays_file": ARRAYS_FILE, "arrays_sha256": digest}
             meta["scoring_sha256"] = scoring_sha256(meta)
             # one line: an indent would take json's pure-Python encoder, 5x slower on 100,000 examples
