@@ -30,6 +30,7 @@ import dataclasses
 import math
 import os
 import time
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 from trainer.errors import Diverged, UserError
@@ -367,7 +368,9 @@ class SweepTrainer(Trainer):
         return "progressive loss " + ", ".join(losses)
 
     def full_batch_pass(self, stop: _StopFlag) -> dict:
-        """One full-batch pass of every value still training, on the log collected once.
+        """One full-batch pass of every value still training, on the log collected once, the values on
+        as many threads as there are cores (each value's pass is its own, and the kernels release the
+        GIL, so the weights are those of a pass run alone).
 
         Parameters
         ----------
@@ -384,11 +387,12 @@ class SweepTrainer(Trainer):
         Interrupted
             On SIGINT/SIGTERM, keeping the checkpoint of the last finished pass.
         """
-        fitted = {}
-        for lane in self.stepping:
-            fitted[lane.value] = lane.fit_full_batch(self.memory, stop)
-            if fitted[lane.value]["stopped"]:
-                raise self._stopped_in_full_batch(stop.signal)
+        lanes = self.stepping
+        with ThreadPoolExecutor(max_workers=min(len(lanes), os.cpu_count() or 1)) as pool:
+            runs = [pool.submit(lane.fit_full_batch, self.memory, stop) for lane in lanes]
+            fitted = {lane.value: run.result() for lane, run in zip(lanes, runs)}
+        if any(f["stopped"] for f in fitted.values()):
+            raise self._stopped_in_full_batch(stop.signal)
         return fitted
 
     def finish_pass(self, train_seconds: float, fitted: dict | None = None) -> None:
