@@ -64,10 +64,11 @@ converges faster.
 
 Defaults chosen on the regime matrix of ``scripts/bench_regimes.py`` (logs of many shapes, each
 against its own full-batch optimum; the table is in the README, section Performance). The solver is
-one part of the default; the training loop adds two (``trainer.training``): the model of an online
-pass is the polynomial-decay average of the pass's iterates (eta = 3), and a log whose hashed rows
-fit ``--full-batch-memory`` is finished with full-batch L-BFGS-B passes
-(``trainer.solvers.full_batch``). Measured for one online pass, holdout log-loss over LL*:
+one part of the default; the training loop adds three (``trainer.training``): the model of an online
+pass is the polynomial-decay average of the pass's iterates (eta = 3), the batches grow with the
+rows seen (1/32 of them, from ``--batch-rows`` to 16 times it), and a log whose hashed rows fit
+``--full-batch-memory`` is finished with full-batch L-BFGS-B passes (``trainer.solvers.full_batch``).
+Measured for one online pass at fixed 4,096-row batches, holdout log-loss over LL*:
 
 * the damping's worth in rows, 0.05 / l2 x max(1, k / 20) for rows of k entries on average
   (:meth:`OnlineLBFGS.damping_rows`; it was a fixed 100 rows, then 0.05 / l2). Worth 0.25 / 0.5 / 1 /
