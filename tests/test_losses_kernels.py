@@ -10,9 +10,8 @@ from sklearn.metrics import log_loss
 
 from conftest import batch_csr
 from trainer.errors import UserError
-from trainer.kernels import (batch_support, blend_into, curvatures_into, margins_into, predict_margin, regularized_gradient,
-                             residuals_curvatures_into, residuals_into, scatter_compact, scatter_compact_squares,
-                             scatter_gradient_curvature)
+from trainer.kernels import (batch_support, blend_into, margins_into, predict_margin, regularized_gradient,
+                             residuals_curvatures_into, residuals_into, scatter_compact, scatter_gradient_curvature)
 from trainer.losses import expit as project_expit, loss_code, pointwise_curvature, pointwise_derivative, pointwise_loss
 from trainer.model import LOSSES
 from trainer.reader import Batch
@@ -155,31 +154,7 @@ def test_objective_gradient_matches_finite_differences(loss):
 
 
 @pytest.mark.parametrize("loss", LOSSES)
-def test_gauss_newton_diagonal_matches_dense_product(loss):
-    rng = np.random.default_rng(5)
-    n = 17
-    batch = _batch(rng, n=n)
-    z = rng.normal(size=batch.n_rows)
-    h = np.empty(batch.n_rows)
-    curvatures_into(loss_code(loss), batch.labels, batch.weights, z, h)
-    bits = np.zeros((n + 63) // 64, dtype=np.uint64)
-    slot = np.empty(batch.indices.shape[0], dtype=np.int32)
-    cols = batch_support(batch.indices, bits, slot)
-    assert not bits.any()
-    # reference: numpy's sorted distinct values, and the slot of each entry pointing back to its bucket
-    np.testing.assert_array_equal(cols, np.unique(batch.indices))
-    np.testing.assert_array_equal(cols[slot], batch.indices)
-    out = np.empty(cols.shape[0])
-    scatter_compact_squares(batch.indptr, slot, batch.data, h, 0.5, out)
-    X = batch_csr(batch, n).toarray()
-    # reference: diagonal of X^T diag(h) X with numpy dense algebra
-    ref = 0.5 * np.einsum("ij,i,ij->j", X, h, X)
-    np.testing.assert_allclose(out, ref[cols], rtol=1e-12, atol=1e-14)
-    assert set(np.flatnonzero(ref)) <= set(cols.tolist())  # every bucket with curvature is in the support
-
-
-@pytest.mark.parametrize("loss", LOSSES)
-def test_fused_gradient_and_curvature_kernels_match_dense_products(loss):
+def test_gradient_and_gauss_newton_diagonal_match_dense_products(loss):
     rng = np.random.default_rng(45)
     n = 17
     batch = _batch(rng, n=n)
@@ -192,15 +167,22 @@ def test_fused_gradient_and_curvature_kernels_match_dense_products(loss):
     np.testing.assert_allclose(r, c * pointwise_derivative(loss, y, z), rtol=1e-12, atol=1e-15)
     np.testing.assert_allclose(h, c * pointwise_curvature(loss, y, z), rtol=1e-12, atol=1e-15)
     np.testing.assert_allclose(sums, [c @ pointwise_loss(loss, y, z), c.sum(), r.sum(), h.sum()], rtol=1e-12)
+    bits = np.zeros((n + 63) // 64, dtype=np.uint64)
     slot = np.empty(batch.indices.shape[0], dtype=np.int32)
-    cols = batch_support(batch.indices, np.zeros(1, dtype=np.uint64), slot)
+    cols = batch_support(batch.indices, bits, slot)
+    assert not bits.any()
+    # reference: numpy's sorted distinct values, and the slot of each entry pointing back to its bucket
+    np.testing.assert_array_equal(cols, np.unique(batch.indices))
+    np.testing.assert_array_equal(cols[slot], batch.indices)
     g, d = np.empty(cols.shape[0]), np.empty(cols.shape[0])
     scatter_gradient_curvature(batch.indptr, slot, batch.data, r, h, 0.25, g, d)
     X = batch_csr(batch, n).toarray()
     # reference: X^T r and the diagonal of X^T diag(h) X with numpy dense algebra (row 0 holds one
     # bucket twice, so the entries of a row are added before squaring)
     np.testing.assert_allclose(g, 0.25 * (X.T @ r)[cols], rtol=1e-12, atol=1e-14)
-    np.testing.assert_allclose(d, 0.25 * np.einsum("ij,i,ij->j", X, h, X)[cols], rtol=1e-12, atol=1e-14)
+    ref = 0.25 * np.einsum("ij,i,ij->j", X, h, X)
+    np.testing.assert_allclose(d, ref[cols], rtol=1e-12, atol=1e-14)
+    assert set(np.flatnonzero(ref)) <= set(cols.tolist())  # every bucket with curvature is in the support
 
 
 def test_batch_support_matches_numpy_unique_across_bitmap_words():

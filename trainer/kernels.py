@@ -114,19 +114,19 @@ def residuals_into(code, labels, weights, z, r):
 
 @njit(cache=True, nogil=True)
 def residuals_curvatures_into(code, labels, weights, z, r, h):
-    """:func:`residuals_into` and :func:`curvatures_into` in one loop over the rows.
+    """:func:`residuals_into` and the Gauss-Newton row curvatures h_i = c_i * l''(y_i, z_i) in one loop
+    over the rows.
 
     Parameters
     ----------
     code, labels, weights, z, r : see :func:`residuals_into`
     h : numpy.ndarray
-        float64 output, overwritten with c_i * l''(y_i, z_i).
+        float64 output, overwritten with h_i.
 
     Returns
     -------
     tuple of float
-        ``(sum_i c_i l(y_i, z_i), sum_i c_i, sum_i r_i, sum_i h_i)``, each summed in row order as the two
-        functions sum them.
+        ``(sum_i c_i l(y_i, z_i), sum_i c_i, sum_i r_i, sum_i h_i)``, summed in row order.
     """
     loss_sum = 0.0
     weight_sum = 0.0
@@ -144,29 +144,6 @@ def residuals_curvatures_into(code, labels, weights, z, r, h):
         h[i] = hi
         h_sum += hi
     return loss_sum, weight_sum, r_sum, h_sum
-
-
-@njit(cache=True, nogil=True)
-def curvatures_into(code, labels, weights, z, h):
-    """Write h_i = c_i * l''(y_i, z_i) (Gauss-Newton row curvature).
-
-    Parameters
-    ----------
-    code, labels, weights, z : see :func:`residuals_into`
-    h : numpy.ndarray
-        float64 output, overwritten.
-
-    Returns
-    -------
-    float
-        sum_i h_i.
-    """
-    total = 0.0
-    for i in range(z.shape[0]):
-        hi = weights[i] * d2loss(code, labels[i], z[i])
-        h[i] = hi
-        total += hi
-    return total
 
 
 @intrinsic
@@ -262,49 +239,12 @@ def scatter_compact(indptr, slot, data, r, scale, out):
 
 
 @njit(cache=True, nogil=True)
-def scatter_compact_squares(indptr, slot, data, h, scale, out):
-    """Gauss-Newton diagonal of a batch: out[p] = scale * sum_i h_i x_ij^2 for the p-th distinct bucket j.
+def scatter_gradient_curvature(indptr, slot, data, r, h, scale, g, d):
+    """:func:`scatter_compact` of ``r`` into ``g``, and the Gauss-Newton diagonal of a batch into ``d``:
+    d[p] = scale * sum_i h_i x_ij^2 for the p-th distinct bucket j, in one pass over the rows.
 
     Entries of one bucket inside a row are added first, so a row holding bucket j twice with value 1
     contributes h_i * 2^2, the exact diagonal of X^T diag(h) X.
-
-    Parameters
-    ----------
-    indptr, slot, data : see :func:`scatter_compact`
-    h : numpy.ndarray
-        Per-row curvatures (:func:`curvatures_into`).
-    scale : float
-        Factor applied to every sum.
-    out : numpy.ndarray
-        One entry per distinct bucket, overwritten.
-    """
-    out[:] = 0.0
-    row_of = np.full(out.shape[0], -1, dtype=np.int64)
-    within = np.zeros(out.shape[0])
-    n_rows = indptr.shape[0] - 1
-    for i in range(n_rows):
-        for k in range(indptr[i], indptr[i + 1]):
-            p = slot[k]
-            if row_of[p] != i:
-                row_of[p] = i
-                within[p] = data[k]
-            else:
-                within[p] += data[k]
-        hi = h[i]
-        for k in range(indptr[i], indptr[i + 1]):
-            p = slot[k]
-            if row_of[p] == i:
-                row_of[p] = -1 - i
-                v = within[p]
-                out[p] += hi * v * v
-    for p in range(out.shape[0]):
-        out[p] *= scale
-
-
-@njit(cache=True, nogil=True)
-def scatter_gradient_curvature(indptr, slot, data, r, h, scale, g, d):
-    """:func:`scatter_compact` of ``r`` into ``g`` and :func:`scatter_compact_squares` of ``h`` into ``d``
-    in one pass over the batch's entries (the same sums in the same order).
 
     Parameters
     ----------

@@ -22,8 +22,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from trainer.kernels import (batch_support, curvatures_into, dot, margins_into, residuals_into, scatter_compact,
-                             scatter_compact_squares)
+from trainer.kernels import (batch_support, dot, margins_into, residuals_curvatures_into, residuals_into,
+                             scatter_compact, scatter_gradient_curvature)
 
 #: L-BFGS-B iterations in one full-batch pass.
 ITERATIONS_PER_PASS = 30
@@ -127,11 +127,12 @@ def _diagonal(log: InMemoryLog, code: int, l2: float, v: np.ndarray, z: np.ndarr
     ``z`` is scratch for the margins."""
     m = log.cols.shape[0]
     margins_into(log.indptr, log.slot, log.data, v[:m], float(v[m]), z)
+    r = np.empty(log.n_rows, dtype=np.float64)
     h = np.empty(log.n_rows, dtype=np.float64)
-    weight_sum = float(log.weights.sum())
+    _, weight_sum, _, h_sum = residuals_curvatures_into(code, log.labels, log.weights, z, r, h)
     d = np.empty(m + 1, dtype=np.float64)
-    d[m] = curvatures_into(code, log.labels, log.weights, z, h) / weight_sum
-    scatter_compact_squares(log.indptr, log.slot, log.data, h, 1.0 / weight_sum, d[:m])
+    d[m] = h_sum / weight_sum
+    scatter_gradient_curvature(log.indptr, log.slot, log.data, r, h, 1.0 / weight_sum, np.empty(m), d[:m])
     d[:m] += l2
     return d
 
