@@ -68,8 +68,9 @@ def build_parser() -> argparse.ArgumentParser:
                         "auto (5 values around the default), train one model each from one read and keep the "
                         "best on the holdout (default: %(default)s)")
     p.add_argument("--history", type=int, default=d.history, help="curvature pairs kept (default: %(default)s)")
-    p.add_argument("--batch-rows", type=int, default=d.batch_rows, help="rows per step; the default solver's batches grow from this to 1/32 of the rows "
-                        "seen, at most 16x it (default: %(default)s)")
+    p.add_argument("--batch-rows", type=int, default=d.batch_rows,
+                   help="rows per step; the default solver's batches grow from this to 1/32 of the rows seen, "
+                        "at most 16x it (default: %(default)s)")
     p.add_argument("--step0", type=float, default=d.step0, help="initial step size (default: the solver's)")
     p.add_argument("--seed", type=int, default=d.seed, help="seed for shuffling and sampling (default: %(default)s)")
     p.add_argument("--shuffle-buffer", type=int, default=d.shuffle_buffer,

@@ -27,8 +27,8 @@ from typing import Protocol
 import numpy as np
 
 from trainer.errors import Diverged, UserError
-from trainer.kernels import (batch_support, margins_into, residuals_curvatures_into, residuals_into, scatter_compact,
-                             scatter_gradient_curvature)
+from trainer.kernels import (batch_support, margins_into, residuals_curvatures_into, residuals_into,
+                             scatter_compact, scatter_gradient_curvature)
 from trainer.losses import LOSS_NAMES, loss_code
 from trainer.options import SOLVER_NAMES, check_choice, check_float, check_int
 
@@ -190,8 +190,8 @@ class BatchGradient:
         margins_into(bt.indptr, self.slot, bt.data, w[self.cols], b, self.z)
         if curvature:
             h = np.empty(bt.n_rows, dtype=np.float64)
-            loss_sum, weight_sum, r_sum, h_sum = residuals_curvatures_into(code, bt.labels, bt.weights, self.z,
-                                                                            self.r, h)
+            loss_sum, weight_sum, r_sum, h_sum = residuals_curvatures_into(code, bt.labels, bt.weights,
+                                                                            self.z, self.r, h)
             self.curv = np.empty(self.cols.shape[0], dtype=np.float64)
             self.hb = h_sum / weight_sum
             scatter_gradient_curvature(bt.indptr, self.slot, bt.data, self.r, h, 1.0 / weight_sum, self.gsp,

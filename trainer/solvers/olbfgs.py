@@ -139,9 +139,10 @@ class OnlineLBFGS(LinearSolver):
 
     ``seconds`` accumulates the wall time of each phase (gradient, direction, line_search, update) and,
     across the direction and the update, of the dense passes alone (dense: the direction's two passes
-    and the weight update); it is not part of state(). Memory: (history + 1) * (n_features + 1) float32 values (the stored steps and
-    the direction), 2 * (n_features + 1) float64 values (weights and curvature diagonal; one more during
-    the first step) and the sparse gradient differences of the stored pairs.
+    and the weight update); it is not part of state(). Memory: (history + 1) * (n_features + 1) float32
+    values (the stored steps and the direction), 2 * (n_features + 1) float64 values (weights and
+    curvature diagonal; one more during the first step) and the sparse gradient differences of the
+    stored pairs.
 
     Parameters
     ----------
@@ -351,7 +352,8 @@ class OnlineLBFGS(LinearSolver):
 
         References
         ----------
-        "Über die Abgrenzung der Eigenwerte einer Matrix", Bulletin de l'Académie des Sciences de l'URSS, 1931.
+        "Über die Abgrenzung der Eigenwerte einer Matrix", Bulletin de l'Académie des Sciences de
+        l'URSS, 1931.
         """
         if self.prior_entries <= 0.0:
             return self.prior_rows
@@ -434,7 +436,8 @@ class OnlineLBFGS(LinearSolver):
         yval = np.concatenate([self._y_val[k, :self._y_len[k]] for k in range(self.history)])
         return {"S": self._S, "rho": self._rho, "y_indptr": yptr, "y_index": yidx,
                 "y_value": yval, "gram": self._G, "s_dot_w": self._z, "count": self._count,
-                "head": self._head, "rows": self._rows, "entries": self._entries, "diag": self._diag, "diag_scale": self._diag_scale}
+                "head": self._head, "rows": self._rows, "entries": self._entries, "diag": self._diag,
+                "diag_scale": self._diag_scale}
 
     def _load_extra(self, state: dict) -> None:
         S = np.asarray(state["S"])
