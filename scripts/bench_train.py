@@ -207,13 +207,9 @@ def run_peer(X, y, Xh, yh, lam: float, target_ll: float) -> list[dict]:
 def run_hashcurve(spec_path: Path, data: Path, passes: int, quiet: bool = False, **options) -> list[dict]:
     """Training from Parquet with default options except ``options`` (api.train keywords; patience =
     passes); per-pass holdout LL, cumulative training seconds and the pass's phase."""
-    with tempfile.TemporaryDirectory(prefix="bench-model-") as out:
-        t = time.perf_counter()
-        rows = api.train(spec_path, data, Path(out) / "m", epochs=passes, patience=passes, quiet=quiet,
-                         **options).per_pass
-        wall = time.perf_counter() - t
+    wall, result = timed_train(spec_path, data, passes, quiet=quiet, **options)
     spent, hist = 0.0, []
-    for r in rows:
+    for r in result.per_pass:
         spent += r["train_seconds"]
         hist.append({"pass": r["pass"], "ll": r["holdout"]["log_loss"], "seconds": spent, "phase": r.get("phase")})
     if not quiet:
@@ -308,12 +304,11 @@ def peak_rss(logs: Path, spec_path: Path, train_end: str) -> float:
         return int(done.stderr.split("VmHWM:")[-1].split()[0]) / 1024
 
 
-def timed_train(spec_path: Path, data: Path, l2, passes: int, **options):
-    """(wall seconds, TrainResult) of one `api.train` into a temporary folder (quiet, patience = passes)."""
+def timed_train(spec_path: Path, data: Path, passes: int, quiet: bool = True, **options):
+    """(wall seconds, TrainResult) of one `api.train` into a temporary folder (patience = passes)."""
     with tempfile.TemporaryDirectory(prefix="bench-model-") as out:
         t = time.perf_counter()
-        result = api.train(spec_path, data, Path(out) / "m", l2_strength=l2, epochs=passes, patience=passes,
-                           quiet=True, **options)
+        result = api.train(spec_path, data, Path(out) / "m", epochs=passes, patience=passes, quiet=quiet, **options)
         return time.perf_counter() - t, result
 
 
@@ -328,7 +323,7 @@ def bench_sweep(spec, spec_path: Path, logs: Path, train_end: str, hold_day: str
     runs = {}
     for k in range(repeats):
         for name, l2 in (("one", one), ("list", values), ("auto", "auto")):
-            wall, runs[name] = timed_train(spec_path, logs, l2, passes, **common)
+            wall, runs[name] = timed_train(spec_path, logs, passes, l2_strength=l2, **common)
             walls[name].append(wall)
             print(f"  round {k + 1}: {name:<4} {wall:6.1f} s", flush=True)
     single, sweep, auto = runs["one"], runs["list"], runs["auto"]
@@ -336,7 +331,7 @@ def bench_sweep(spec, spec_path: Path, logs: Path, train_end: str, hold_day: str
     singles = {one: single}
     for v in values:
         if v not in singles:
-            singles[v] = timed_train(spec_path, logs, v, passes, **common)[1]
+            singles[v] = timed_train(spec_path, logs, passes, l2_strength=v, **common)[1]
     reader = Reader(spec, logs, end=parse_day(train_end, "train_end"), batch_rows=TrainOptions().batch_rows)
     t = time.perf_counter()
     for _ in reader.batches():

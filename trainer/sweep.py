@@ -37,7 +37,8 @@ from trainer.errors import Diverged, UserError
 from trainer.evaluation import evaluate_many
 from trainer.model import Model, load_model
 from trainer.run_folder import l2_label
-from trainer.solvers import check_float, solver_bytes
+from trainer.options import check_float
+from trainer.solvers import solver_bytes
 from trainer.spec import Spec
 from trainer.training import TrainOptions, Trainer, TrainResult, _State, _StopFlag
 
@@ -262,7 +263,7 @@ class _Lane(Trainer):
 
     It owns no folder, readers or checkpoint, so ``Trainer.__init__`` (which opens them) is not called;
     the sweep calls only its value methods (``take``, ``fit_full_batch``, ``record_pass``, ``notes``,
-    ``current_model``, ``finished``, ``checkpoint_parts``, ``restore``) and writes its files.
+    ``current_model``, ``kept``, ``finished``, ``checkpoint_parts``, ``restore``) and writes its files.
     """
 
     def __init__(self, sweep: SweepTrainer, value: float):
@@ -411,14 +412,15 @@ class SweepTrainer(Trainer):
         self.check_classes()
         lanes = self.stepping
         started = time.monotonic()
-        summaries = evaluate_many([lane.current_model() for lane in lanes], self.holdout)
+        models = [lane.current_model() for lane in lanes]
+        summaries = evaluate_many(models, self.holdout)
         eval_seconds = time.monotonic() - started
         records = []
-        for lane, holdout in zip(lanes, summaries):
+        for lane, model, holdout in zip(lanes, models, summaries):
             full = (fitted or {}).get(lane.value)
             record, improved = lane.record_pass(train_seconds, eval_seconds, full, holdout)
             if improved:
-                lane.current_model(holdout).save(self.folder.value_folder(lane.value))
+                lane.kept(model, holdout).save(self.folder.value_folder(lane.value))
             records.append({"l2_strength": lane.value, **record})
         self.folder.append_metrics(*records)
         for lane, record in zip(lanes, records):

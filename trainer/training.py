@@ -40,8 +40,8 @@ Progressive validation ("online" or "test-then-train" evaluation, common practic
 loss is measured before the solver learns from it.
 
 A :class:`Trainer`'s methods are of two kinds: those of its value (``take``/``step``,
-``fit_full_batch``, ``record_pass``, ``notes``, ``current_model``, ``finished``, ``checkpoint_parts``,
-``restore``) touch only its solver, iterate average and state; the others run the model folder,
+``fit_full_batch``, ``record_pass``, ``notes``, ``current_model``, ``kept``, ``finished``,
+``checkpoint_parts``, ``restore``) touch only its solver, iterate average and state; the others run the model folder,
 readers, phases, checkpoint file and per-pass table. :class:`trainer.sweep.SweepTrainer` is one run
 over several values, each stepped through the value methods of its own Trainer.
 """
@@ -114,9 +114,7 @@ class _State:
     negatives: int = 0
     phase: str = "online"
     entries: int = 0
-    rows_first_pass: int = 0
-    avg_count: int = 0
-    avg_pass: int = -1
+    averaged: bool = False
     pass_steps: int = 0
     batch_min: int = 0
     batch_max: int = 0
@@ -545,7 +543,7 @@ class Trainer:
 
     # -- the model --------------------------------------------------------------------------------
 
-    def current_model(self, holdout: dict | None = None, calibration: dict | None = None) -> Model:
+    def current_model(self, holdout: dict | None = None) -> Model:
         """A Model of the solver's current weights (copied).
 
         The intercept carries the downsampling correction ``ln(negative_keep_rate)``, and the summary an
@@ -556,8 +554,6 @@ class Trainer:
         ----------
         holdout : dict, optional
             The holdout metrics to record in the model's info.
-        calibration : dict, optional
-            The Platt calibration (squared-hinge models) to record.
 
         Returns
         -------
@@ -580,7 +576,7 @@ class Trainer:
                             "steps": self.state.steps, "step0": self.solver.step0, "data": self.data,
                             "holdout_data": self.holdout_path,
                             "stopped_early": self.state.stopped_early, "best_pass": self.state.best_pass},
-                "holdout": holdout, "calibration": calibration, "examples": self.examples.values}
+                "holdout": holdout, "calibration": None, "examples": self.examples.values}
         return Model(self.spec, weights, intercept, self.opt.loss, info)
 
     # -- the loop ---------------------------------------------------------------------------------
@@ -588,7 +584,7 @@ class Trainer:
     def _model_x(self) -> np.ndarray:
         """The model's weights then intercept (a new array): the averaged iterate of the last online
         pass when there is one, else the solver's weights."""
-        if self.average is not None and self.state.avg_count > 0:
+        if self.state.averaged:
             return self.average.copy()
         return np.append(self.solver.weights, self.solver.intercept)
 
@@ -596,9 +592,7 @@ class Trainer:
         """Blend the solver's iterate after a batch of ``batch_rows`` rows into the pass's polynomial-decay
         average (module docstring)."""
         st = self.state
-        if st.avg_pass != st.pass_index:
-            st.avg_pass, st.avg_count = st.pass_index, 0
-        st.avg_count += 1
+        st.averaged = True
         blend_into(self.average, self.solver.weights, self.solver.intercept,
                    average_weight(st.rows_in_pass - batch_rows, st.rows_in_pass))
 
@@ -727,7 +721,7 @@ class Trainer:
                                      stop=lambda: stop.signal is not None)
         if not fitted["stopped"]:
             self.solver.assign(x)
-            st.avg_count = 0
+            st.averaged = False
             st.rows_in_pass = memory.n_rows
             st.rows_total += memory.n_rows
         return fitted
@@ -915,9 +909,7 @@ class Trainer:
             holdout = evaluate(model, self.holdout)
         record, improved = self.record_pass(train_seconds, time.monotonic() - started, fitted, holdout)
         if improved:
-            model.info["holdout"] = jsonable(holdout)  # as model.json holds it
-            model.info["summary"].update(passes=self.state.pass_index, best_pass=self.state.best_pass)
-            self.folder.save_model(model)
+            self.folder.save_model(self.kept(model, holdout))
             self._written = model
         self.folder.append_metrics(record)
         self.log(self.table_row(record))
@@ -925,6 +917,26 @@ class Trainer:
             self.log(line)
         self.next_phase()
         self.save_checkpoint()
+
+    def kept(self, model: Model, holdout: dict) -> Model:
+        """The pass's model (built before :meth:`record_pass`) as the best so far: its holdout metrics and
+        the pass counts recorded in its info, as model.json holds them.
+
+        Parameters
+        ----------
+        model : Model
+            The model :meth:`current_model` gave for the pass.
+        holdout : dict
+            Its holdout metrics.
+
+        Returns
+        -------
+        Model
+            ``model``, updated.
+        """
+        model.info["holdout"] = jsonable(holdout)
+        model.info["summary"].update(passes=self.state.pass_index, best_pass=self.state.best_pass)
+        return model
 
     def check_classes(self) -> None:
         """After the first pass: refuse a log of one class unless ``allow_one_class`` (a no-op later).
@@ -983,11 +995,9 @@ class Trainer:
         return record, False
 
     def end_pass(self) -> None:
-        """Count a finished pass: the pass index, the first pass's rows, the position back to the start."""
+        """Count a finished pass: the pass index, the position back to the start, the pass's step counts."""
         st = self.state
         st.pass_index += 1
-        if st.pass_index == 1:
-            st.rows_first_pass = st.rows_in_pass
         st.position, st.rows_in_pass = None, 0
         st.pass_steps, st.batch_min, st.batch_max = 0, 0, 0
 
