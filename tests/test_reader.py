@@ -14,7 +14,7 @@ import scipy.sparse as sp
 
 from trainer.errors import UserError
 from trainer.reader import Reader
-from trainer.reader.examples import BucketExamples, _token_texts
+from trainer.reader.examples import BucketExamples, _token_texts, fingerprints
 from trainer.reader.featurize import TokenTable
 from trainer.spec import load_spec
 
@@ -113,6 +113,37 @@ def test_bucket_examples_are_tokens_of_their_bucket(small_log, dictionary):
             assert mmh3.hash(token, seed, signed=False) & mask == int(bucket), text
     assert "shop=é-ß-☃" in sum(examples.values.values(), [])
     np.testing.assert_array_equal(np.flatnonzero(examples.count), sorted(int(b) for b in examples.values))
+
+
+def test_fingerprints_match_fnv1a_vectors():
+    # Reference: FNV-1a 64-bit test vectors (IETF draft-eastlake-fnv; from memory): "" -> cbf29ce484222325,
+    # "a" -> af63dc4c8601ec8c, "foobar" -> 85944171f73967e8; the prefix is hashed before each token.
+    buf = np.frombuffer(b"afoobar", dtype=np.uint8)
+    off = np.array([0, 0, 1, 7])
+    got = fingerprints(np.zeros(0, np.uint8), buf, off, np.array([0, 1, 2]))
+    assert [int(h) for h in got] == [0xcbf29ce484222325, 0xaf63dc4c8601ec8c, 0x85944171f73967e8]
+    prefixed = fingerprints(np.frombuffer(b"foo", np.uint8), np.frombuffer(b"bar", np.uint8), np.array([0, 3]),
+                            np.array([0]))
+    assert int(prefixed[0]) == 0x85944171f73967e8
+
+
+def test_examples_seen_again_add_nothing(small_log):
+    # Reference: the values of one read (a token met again adds nothing), also for values restored from a
+    # checkpoint, whose tokens are only known by their text.
+    root, spec_path = small_log
+    spec = load_spec(spec_path)
+    once = BucketExamples(spec.n_buckets)
+    reader = Reader(spec, root, batch_rows=500)
+    reader.watch(once)
+    list(reader.batches())
+    first = {k: list(v) for k, v in once.values.items()}
+    list(reader.batches())
+    assert once.values == first
+    restored = BucketExamples(spec.n_buckets, values={k: list(v) for k, v in first.items()})
+    again = Reader(spec, root, batch_rows=500)
+    again.watch(restored)
+    list(again.batches())
+    assert restored.values == first and restored.total == once.total
 
 
 def test_example_texts_replace_bytes_that_are_not_utf8():

@@ -3,11 +3,53 @@
 
 from __future__ import annotations
 
+from itertools import compress
+
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
+from numba import njit
 
 from trainer.reader.featurize import TokenTable
+
+_FNV_OFFSET = np.uint64(14695981039346656037)
+_FNV_PRIME = np.uint64(1099511628211)
+
+
+@njit(cache=True, nogil=True)
+def fingerprints(prefix, buf, off, ids):
+    """64-bit FNV-1a hash of each token ``prefix + buf[off[k]:off[k + 1]]``, k in ``ids``
+    ("FNV-1a", IETF draft-eastlake-fnv, from memory: offset basis 14695981039346656037, prime
+    1099511628211), for telling a token seen before from a new one without decoding its text."""
+    out = np.empty(ids.shape[0], dtype=np.uint64)
+    start = _FNV_OFFSET
+    for c in prefix:
+        start = (start ^ np.uint64(c)) * _FNV_PRIME
+    for i in range(ids.shape[0]):
+        h = start
+        for p in range(off[ids[i]], off[ids[i] + 1]):
+            h = (h ^ np.uint64(buf[p])) * _FNV_PRIME
+        out[i] = h
+    return out
+
+
+@njit(cache=True, nogil=True)
+def _probe(table, keys, insert):
+    """Look ``keys`` up in an open-addressing hash set ``table`` (linear probing, size a power of two,
+    0 = empty; a key of 0 is taken as 1); with ``insert``, add the keys not found. Returns
+    whether each key was there before."""
+    mask = np.uint64(table.shape[0] - 1)
+    found = np.zeros(keys.shape[0], dtype=np.bool_)
+    for i in range(keys.shape[0]):
+        key = max(keys[i], np.uint64(1))
+        at = (key * np.uint64(0x9E3779B97F4A7C15)) >> np.uint64(40) & mask
+        while table[at] != 0 and table[at] != key:
+            at = (at + np.uint64(1)) & mask
+        if table[at] == key:
+            found[i] = True
+        elif insert:
+            table[at] = key
+    return found
 
 
 class BucketExamples:
@@ -34,6 +76,14 @@ class BucketExamples:
     ----------
     values : dict of str to list of str
         The recorded values, keyed by bucket number as a string.
+
+    Notes
+    -----
+    A token met again in a later chunk (or pass) is the common case; it is recognized by the
+    :func:`fingerprints` of the tokens recorded in this process (a hash set of at least 2 x
+    ``max_values`` slots) without decoding its text. A token whose fingerprint is new is decoded and compared with its bucket's texts,
+    so the values are those of comparing every text (two tokens with the same 64-bit fingerprint in one
+    bucket would keep one of them: about 2^-64 a pair).
     """
 
     def __init__(self, n_buckets: int, per_bucket: int = 2, max_rows: int = 131_072,
@@ -42,6 +92,7 @@ class BucketExamples:
         self.total = 0
         self.values: dict[str, list[str]] = values or {}
         self.count = np.zeros(n_buckets, dtype=np.uint8)
+        self.seen = np.zeros(1 << max(int(2 * max_values - 1).bit_length(), 4), dtype=np.uint64)
         for b, v in self.values.items():
             self.count[int(b)] = len(v)
             self.total += len(v)
@@ -81,20 +132,23 @@ class BucketExamples:
         _, first = np.unique(b, return_index=True)
         first = first[: max(self.max_values - self.total, 0)]
         ids, b = ids[first], b[first]
-        added = []
-        values = self.values
-        for text, bucket in zip(_token_texts(tok, ids), b.tolist()):
-            key = str(bucket)
-            seen = values.get(key)
-            if seen is None:
-                values[key] = [text]
-            elif text not in seen:
-                seen.append(text)
-            else:
-                continue
-            added.append(bucket)
-        self.count[np.asarray(added, dtype=np.int64)] += 1
-        self.total += len(added)
+        prints = fingerprints(tok.prefix, tok.buf, tok.off, ids)
+        fresh = ~_probe(self.seen, prints, False)
+        ids, b, prints = ids[fresh], b[fresh], prints[fresh]
+        if ids.shape[0] == 0:
+            return
+        texts = _token_texts(tok, ids)
+        keys = list(map(str, b.tolist()))
+        kept = self.count[b] == 0
+        self.values.update(zip(compress(keys, kept), ([t] for t in compress(texts, kept))))
+        for i in np.flatnonzero(~kept).tolist():
+            seen = self.values[keys[i]]
+            if texts[i] not in seen:
+                seen.append(texts[i])
+                kept[i] = True
+        self.count[b[kept]] += 1
+        self.total += int(kept.sum())
+        _probe(self.seen, prints[kept], True)
 
 
 def _readable(text: str) -> str:
