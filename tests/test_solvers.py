@@ -287,10 +287,11 @@ def test_default_olbfgs_on_time_ordered_batches_with_a_batch_constant_field():
 
 
 def test_damping_grows_with_the_entries_a_row():
-    # Reference: the rule as documented in trainer.solvers.olbfgs (0.05 / l2 rows up to 20 entries a row,
-    # in proportion beyond), checked on the solver a default run builds (common practice: defaults pinned).
+    # Reference: the rule as documented in trainer.solvers.olbfgs (5.5 / sqrt(l2) rows up to 20 entries a
+    # row, in proportion beyond), checked on the solver a default run builds (common practice: defaults pinned).
     solver = make_solver("olbfgs", 64, "logistic", 1e-4)
-    assert solver.damping_rows(5.0) == pytest.approx(500.0) and solver.damping_rows(20.0) == pytest.approx(500.0)
-    assert solver.damping_rows(155.0) == pytest.approx(500.0 * 155.0 / 20.0)
+    assert solver.damping_rows(5.0) == pytest.approx(550.0) and solver.damping_rows(20.0) == pytest.approx(550.0)
+    assert solver.damping_rows(155.0) == pytest.approx(550.0 * 155.0 / 20.0)
+    assert make_solver("olbfgs", 64, "logistic", 1e-6).damping_rows(5.0) == pytest.approx(5500.0)
     fixed = make_solver("olbfgs", 64, "logistic", 1e-4, prior_rows=100.0, prior_entries=0.0)
     assert fixed.damping_rows(155.0) == 100.0

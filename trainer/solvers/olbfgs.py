@@ -68,35 +68,52 @@ one part of the default; the training loop adds three (``trainer.training``): th
 pass is the polynomial-decay average of the pass's iterates (eta = 3), the batches grow with the
 rows seen (1/32 of them, from ``--batch-rows`` to 16 times it), and a log whose hashed rows fit
 ``--full-batch-memory`` is finished with full-batch L-BFGS-B passes (``trainer.solvers.full_batch``).
-Measured for one online pass at fixed 4,096-row batches, holdout log-loss over LL*:
+Measured for one online pass, holdout log-loss over LL*:
 
-* the damping's worth in rows, 0.05 / l2 x max(1, k / 20) for rows of k entries on average
-  (:meth:`OnlineLBFGS.damping_rows`; it was a fixed 100 rows, then 0.05 / l2). Worth 0.25 / 0.5 / 1 /
-  2 / 5 x 0.05 / l2 rows (the pass averaged over its last 3/4), it gave: on rows of 155 entries
-  (tags200, l2 1e-4) 1.1958 / 1.1683 / 1.0682 / 1.0213 / 1.0011 at 0.5 .. 10 x, i.e. 250 .. 5000 rows;
-  on 80 dense ordinal columns (ordinal80) 1.0029 / 1.0030 / 1.0026 / 1.0017 / 1.0055 over the same
-  rows; on the 20-field benchmark at l2 1e-4 (21 entries) 1.0035 / 1.0041 / 1.0069 / 1.0110 / 1.0152;
-  on the time-ordered drift12 log at l2 1e-5 (13 entries) 2500 .. 50000 rows gave 1.0096 / 1.0050 /
-  1.0058 / 1.0159 / 1.0532, shuffled 1.0011 / 1.0031 / 1.0051 / 1.0070 / 1.0090; on rare positives
-  (l2 1e-5) 1.0097 / 1.0097 / 1.0113 / 1.0122 / 1.0171. The weaker the l2, the longer rare buckets
-  need damping, and the more entries a row has, the more of them move together (the Gauss-Newton
-  diagonal misses their shared curvature by up to k-fold). Damping in proportion to k alone (0.0025 k
-  / l2 rows) took the time-ordered drift log to 1.0101, hence the floor of 0.05 / l2;
-* the average, with that damping: last iterate / uniform average over the pass's last 3/4 /
-  polynomial-decay average (eta = 3) gave 1.0148 / 1.0042 / 1.0040 (benchmark, l2 1e-4), 0.9882 /
-  0.9924 / 0.9889 (l2 1e-5, where the optimum itself over-fits, so one damped pass can beat it),
-  0.9997 / 1.0050 / 1.0025 (drift, time order), 1.0011 / 1.0031 / 1.0014 (drift, shuffled), 1.0437 /
-  1.0016 / 1.0030 (ordinal80), 1.0503 / 1.0241 / 1.0298 (the shipped demo, time order), 0.9932 /
-  1.0097 / 0.9968 (rare positives), 1.0541 / 0.9980 / 1.0009 (tags200): the polynomial average has
-  the smallest worst case (1.0040 against 1.0097 for the uniform one). eta = 8 was better on rare
-  positives and shuffled logs and worse on ordinal80 and the demo (1.0054, 1.0427). Going on from
-  the last iterate rather than the average (measured with the uniform average, old damping) gave
-  1.0014 / 1.0011 after passes 2 / 3 of online steps, restarting from the average 1.0023 / 1.0021;
+* the damping's worth in rows, 5.5 / sqrt(l2) x max(1, k / 20) for rows of k entries on average
+  (:meth:`OnlineLBFGS.damping_rows`; 550 rows at l2 1e-4, 1,739 at 1e-5, 5,500 at 1e-6; it was a
+  fixed 100 rows, then 0.05 / l2). Measured with the growing batches and the polynomial-decay average
+  (one pass, holdout log-loss over LL*), c / sqrt(l2) rows for c = 3.5 / 4.5 / 5 / 5.5 / 6 / 6.5,
+  against 0.05 / l2: drift12 shuffled (l2 1e-5) 0.9990 / 0.9995 / 0.9997 / 0.9999 / 1.0001 / 1.0003
+  against 1.0024 (the tool's AdaGrad: 1.0001); the same rows in time order 1.0031 / 1.0011 / 1.0033 /
+  1.0005 / 1.0011 / 1.0005 against 1.0023; rare positives (1e-5) 0.9985 / 0.9993 / 0.9998 / 1.0002 /
+  1.0006 / 1.0008 against 0.9987; tags200 (1e-4, 155 entries) - / 1.0074 / 1.0005 / 0.9992 / 1.0019
+  / 0.9995 against 1.0005; the demo (1e-4, time order) - / 1.0335 / 1.0284 / 1.0256 / 1.0235 /
+  1.0219 against 1.0284; at c = 5.5 the 20-field benchmark 1.0042 (1e-4, unchanged), 0.9855 (1e-5,
+  against 0.9901), 0.8191 (1e-6, against 0.8269), ordinal80 1.0037 against 1.0039. Weaker l2 wants
+  less damping than 1 / l2 rows gives (the drift logs, the benchmark at 1e-5 and 1e-6), rows of many
+  entries want more (tags200: c >= 5); c = 5.5 is the middle of the range where both hold and the
+  shuffled drift log beats AdaGrad. The earlier grid, at fixed 4,096-row batches (the pass averaged
+  over its last 3/4), for 0.25 / 0.5 / 1 / 2 / 5 x 0.05 / l2 rows: on rows of 155 entries (tags200,
+  l2 1e-4) 1.1958 / 1.1683 / 1.0682 / 1.0213 / 1.0011 at 0.5 .. 10 x, i.e. 250 .. 5000 rows; on 80
+  dense ordinal columns (ordinal80) 1.0029 / 1.0030 / 1.0026 / 1.0017 / 1.0055 over the same rows; on
+  the 20-field benchmark at l2 1e-4 (21 entries) 1.0035 / 1.0041 / 1.0069 / 1.0110 / 1.0152; on the
+  time-ordered drift12 log at l2 1e-5 (13 entries) 2500 .. 50000 rows gave 1.0096 / 1.0050 / 1.0058 /
+  1.0159 / 1.0532, shuffled 1.0011 / 1.0031 / 1.0051 / 1.0070 / 1.0090; on rare positives (l2 1e-5)
+  1.0097 / 1.0097 / 1.0113 / 1.0122 / 1.0171. The more entries a row has, the more of them move
+  together (the Gauss-Newton diagonal misses their shared curvature by up to k-fold). Damping in
+  proportion to k alone (0.0025 k / l2 rows) took the time-ordered drift log to 1.0101 there, hence
+  the floor at k = 20;
+* the average, at fixed 4,096-row batches with the damping of then (0.05 / l2 x max(1, k / 20)): last
+  iterate / uniform average over the pass's last 3/4 / polynomial-decay average (eta = 3) gave 1.0148 /
+  1.0042 / 1.0040 (benchmark, l2 1e-4), 0.9882 / 0.9924 / 0.9889 (l2 1e-5, where the optimum itself
+  over-fits, so one damped pass can beat it), 0.9997 / 1.0050 / 1.0025 (drift, time order), 1.0011 /
+  1.0031 / 1.0014 (drift, shuffled), 1.0437 / 1.0016 / 1.0030 (ordinal80), 1.0503 / 1.0241 / 1.0298
+  (the shipped demo, time order), 0.9932 / 1.0097 / 0.9968 (rare positives), 1.0541 / 0.9980 / 1.0009
+  (tags200): the polynomial average has the smallest worst case (1.0040 against 1.0097 for the uniform
+  one). eta = 8 was better on rare positives and shuffled logs and worse on ordinal80 and the demo
+  (1.0054, 1.0427). Going on from the last iterate rather than the average (measured with the uniform
+  average, old damping) gave 1.0014 / 1.0011 after passes 2 / 3 of online steps, restarting from the
+  average 1.0023 / 1.0021;
 * not taken: t0 50 (with the rule and the polynomial average: tags200 1.0174, the demo 1.0665);
   choosing between the last iterate and the average by their progressive loss over the pass's last
   quarter (right on 7 of 8 logs, but on the time-ordered demo it picked the last iterate, 1.0503);
   step0 0.6 (last iterate 1.0884, average 1.0041), t0 100 (1.1572, 1.0036), step0 0.1 on the drift
-  log (0.2137 raw against 0.1546): all with the earlier damping.
+  log (0.2137 raw against 0.1546): all with the earlier damping. With the growing batches and the
+  damping of then (0.05 / l2), on drift12 shuffled / time-ordered (eta 3: 1.0024 / 1.0023): eta 1 / 2
+  / 5 / 8 gave 1.0038 / 1.0031, 1.0028 / 1.0025, 1.0020 / 1.0023, 1.0017 / 1.0023; step0 0.2 1.0045 /
+  1.0164, 0.5 1.0018 / 1.0083; t0 10 1.0037 / 1.0049, 40 1.0018 / 1.0010: each smaller than the
+  damping's change above.
 """
 
 from __future__ import annotations
@@ -115,9 +132,9 @@ from trainer.solvers._olbfgs_kernels import (CHUNK, chunk_pointers, commit_step,
 
 
 def default_prior_rows(l2: float) -> float:
-    """The damping's default worth in rows for rows of up to ``prior_entries`` entries, 0.05 / l2.
+    """The damping's default worth in rows for rows of up to ``prior_entries`` entries, 5.5 / sqrt(l2).
 
-    500 rows at l2 = 1e-4, 5000 at 1e-5, 50000 at 1e-6; at most 1e6; chosen on the regime matrix of
+    550 rows at l2 = 1e-4, 1,739 at 1e-5, 5,500 at 1e-6; at most 1e6; chosen on the regime matrix of
     ``scripts/bench_regimes.py`` (module docstring). :meth:`OnlineLBFGS.damping_rows` scales it with
     the entries a row.
 
@@ -129,9 +146,9 @@ def default_prior_rows(l2: float) -> float:
     Returns
     -------
     float
-        min(0.05 / l2, 1e6), or 1e6 without L2.
+        min(5.5 / sqrt(l2), 1e6), or 1e6 without L2.
     """
-    return min(0.05 / l2, 1e6) if l2 > 0 else 1e6
+    return min(5.5 / math.sqrt(l2), 1e6) if l2 > 0 else 1e6
 
 
 class OnlineLBFGS(LinearSolver):
