@@ -126,3 +126,19 @@ def test_start_up_loads_only_what_the_command_needs(small_log, tmp_path):
     run = (f"train|--spec|{spec}|--data|{root}|--out|{tmp_path / 'm'}|--epochs|1|--quiet|--full-batch-memory|0"
            "|--end|2026-03-02|--holdout-start|2026-03-03|--holdout-end|2026-03-03")
     assert _loaded_after(run) == ["numba", "numpy", "pyarrow"]
+
+
+def test_output_closed_early_ends_quietly(tmp_path):
+    # Reference: the Python documentation's note on SIGPIPE (from memory: catch BrokenPipeError, point
+    # stdout at os.devnull, exit 1) - what `hashcurve inspect M | head` needs so no traceback is printed.
+    from pathlib import Path
+
+    from trainer.spec import parse_spec
+
+    make_model(parse_spec(SMALL_SPEC)).save(tmp_path / "m")
+    env_path = str(Path(__file__).parents[1])
+    proc = subprocess.Popen([sys.executable, "-m", "trainer", "inspect", "--model", str(tmp_path / "m"), "--json"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, cwd=env_path)
+    proc.stdout.close()  # no reader left: the first write fails with EPIPE
+    err = proc.stderr.read().decode()
+    assert proc.wait(60) == 1 and err == "", err

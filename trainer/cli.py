@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
 
 from trainer import __version__
@@ -335,7 +336,9 @@ def configure_process() -> None:
 def main(argv: list[str] | None = None) -> int:
     """Run the command line.
 
-    A UserError is printed on one line to stderr (exit code 2); an interruption exits 130.
+    A UserError is printed on one line to stderr (exit code 2); an interruption exits 130; output whose
+    reader went away (``hashcurve inspect M | head``) ends quietly with exit code 1, as the Python
+    documentation's note on SIGPIPE recommends (the rest of stdout goes to the null device).
 
     Parameters
     ----------
@@ -345,12 +348,16 @@ def main(argv: list[str] | None = None) -> int:
     Returns
     -------
     int
-        The exit code: 0, 2 for a user mistake, 130 after SIGINT/SIGTERM.
+        The exit code: 0, 1 when stdout was closed early, 2 for a user mistake, 130 after SIGINT/SIGTERM.
     """
     try:
         args = build_parser().parse_args(argv)
         configure_process()
         COMMANDS[args.command](args)
+        sys.stdout.flush()
+    except BrokenPipeError:
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 1
     except UserError as exc:
         print(f"hashcurve: error: {' '.join(str(exc).split())}", file=sys.stderr)
         return 2
