@@ -185,7 +185,7 @@ def run_regime(r: Regime, passes: int, skip_peer: bool) -> dict:
     ll_star = log_loss(yh, Xh @ w + b)
     print(f"  LL* = {ll_star:.5f}", flush=True)
     kw = train_keywords(d, r)
-    out = {"name": r.name, "ll_star": ll_star, "rows": int(X.shape[0])}
+    out = {"name": r.name, "ll_star": ll_star, "rows": int(X.shape[0]), "l2": r.l2}
     out["hashcurve"] = run_hashcurve(d["spec"], d["data"], passes, quiet=True, **kw)
     for h in out["hashcurve"]:
         print(f"  hashcurve pass {h['pass']} ({h['phase']}): {h['ll'] / ll_star:.4f} LL*, {h['seconds']:.1f} s",
@@ -211,11 +211,16 @@ def _seconds(value: float) -> str:
     return f"{value:.1f}" if math.isfinite(value) else "not reached"
 
 
+def _rows(n: int) -> str:
+    return f"{round(n / 1000)}k" if n >= 10_000 else f"{n / 1000:.1f}k"
+
+
 def print_table(results: list[dict], passes: int) -> None:
-    """The matrix as one Markdown table: regime x pass, LL / LL* per solver, times to 1.01 LL*."""
-    print("\n| regime | pass | hashcurve | phase | SGD peer best | AdaGrad | tool SGD | RES | "
-          "hashcurve s to 1.01 LL* | peer grid s (i) | peer best s (ii) |")
-    print("|---|---|---|---|---|---|---|---|---|---|---|")
+    """The matrix as one Markdown table (the README's): regime x pass, LL / LL* per solver, times to 1.01
+    LL* and hashcurve's time over the peer grid's (i)."""
+    print("\n| regime | rows | l2 | pass | hashcurve | phase | SGD peer best | AdaGrad | tool SGD | RES | "
+          "hashcurve s to 1.01 LL* | peer grid s (i) | peer best s (ii) | hashcurve / (i) |")
+    print("|---|---|---|---|---|---|---|---|---|---|---|---|---|---|")
     for res in results:
         ll_star = res["ll_star"]
         ours = res["hashcurve"]
@@ -226,10 +231,13 @@ def print_table(results: list[dict], passes: int) -> None:
         for p in range(1, passes + 1):
             peer_best = (f"{min(q['history'][min(p, len(q['history'])) - 1]['ll'] for q in peer) / ll_star:.4f}"
                          if peer else "-")
-            times = (f"{_seconds(hit)} | {_seconds(grid) if peer else '-'} | {_seconds(best) if peer else '-'}"
-                     if p == 1 else " | | ")
+            times = (f"{_seconds(hit)} | {_seconds(grid) if peer else '-'} | {_seconds(best) if peer else '-'} | "
+                     + (f"{hit / grid:.2f}x" if peer and math.isfinite(hit) and grid > 0 else "-")
+                     if p == 1 else " | | | ")
             phase = ours[p - 1]["phase"] if p <= len(ours) else "-"
-            print(f"| {res['name'] if p == 1 else ''} | {p} | {_ratio(ours, p, ll_star)} | {phase} | {peer_best} | "
+            l2 = f"{res['l2']:.0e}".replace("e-0", "e-")
+            head = f"{res['name']} | {_rows(res['rows'])} | {l2}" if p == 1 else " |  | "
+            print(f"| {head} | {p} | {_ratio(ours, p, ll_star)} | {phase} | {peer_best} | "
                   f"{_ratio(res.get('adagrad'), p, ll_star)} | {_ratio(res.get('sgd'), p, ll_star)} | "
                   f"{_ratio(res.get('res'), p, ll_star)} | {times} |")
     print("\nLL* per regime: " + ", ".join(f"{r['name']} {r['ll_star']:.5f}" for r in results))
