@@ -6,15 +6,16 @@ seed: its solver, iterate average, phases (the in-memory log of the full-batch p
 once and shared), early stop and best pass are a :class:`trainer.training.Trainer`'s, so its weights
 are bit for bit those of that run. The values' full-batch passes run in lockstep
 (:func:`trainer.solvers.full_batch.minimize`): one pass over the in-memory log evaluates every value
-waiting for an evaluation. On the 1M-row benchmark (``scripts/bench_train.py --sweep``, 3 passes) the
-5 values of the auto grid as a list took 3.40x one value's wall time (52.1 s against 15.3 s; full-batch
-passes 17.0 and 16.2 s against 6.4 and 4.4 s) and ``auto`` 2.44x, where the values' passes on two
-threads, one value each, took 3.25x and 2.68x in the same minutes (4.40x and 3.07x on the day they
-were measured first). A value that stops early stops stepping; training ends when every
-value has stopped or ``--epochs`` is reached. The holdout, required, is read once per pass for all
-values. The value of the lowest best-pass holdout loss (log-loss; squared-hinge loss for that loss) is
-kept as the folder's model; every value's model is in ``MODEL_DIR/l2/<value>/``
-(:meth:`trainer.run_folder.RunFolder.value_folder`). One checkpoint holds every value's state.
+waiting for an evaluation. On the 1M-row benchmark (``scripts/bench_train.py --sweep``, 3 passes;
+three runs, each beside a run of the previous version in the same minutes) the 5 values of the auto
+grid as a list took 2.83x-3.57x one value's wall time (median 3.40x) and ``auto`` 2.44x-3.14x (2.98x),
+their passes 2 and 3 33.2-41.3 s on one core; with the values' passes on two threads, one value each:
+3.25x-4.22x (3.40x), 2.68x-3.28x (2.78x) and 35.6-46.1 s on two cores. A value that stops early stops
+stepping; training ends when every value has stopped or ``--epochs`` is reached. The holdout, required,
+is read once per pass for all values. The value of the lowest best-pass holdout loss (log-loss;
+squared-hinge loss for that loss) is kept as the folder's model; every value's model is in
+``MODEL_DIR/l2/<value>/`` (:meth:`trainer.run_folder.RunFolder.value_folder`). One checkpoint holds
+every value's state.
 
 ``auto`` is the grid ``AUTO_GRID``, five values a factor of about 3 apart centred on the default
 1e-4 (1e-5, 3e-5, 1e-4, 3e-4, 1e-3). After pass 1 it narrows (:func:`narrowed`): a value whose

@@ -272,7 +272,6 @@ def _holdout_score(summary: dict, loss: str) -> float:
     return summary["log_loss"] if loss == "logistic" else summary["squared_hinge_loss"]
 
 
-
 def fit_full_batch(values: list[Trainer], memory: full_batch.InMemoryLog, stop: _StopFlag) -> list[dict]:
     """Run the full-batch pass of one or several values of a run (Trainers whose options differ only in
     the L2 strength) on an in-memory log, each from its model's weights, in lockstep

@@ -17,10 +17,11 @@ them (:func:`trainer.kernels.objectives_into`, the K weights of a bucket side by
 sums in the order of a value alone, so its weights are those of its pass alone, bit for bit. On the
 1M-row benchmark log (``scripts/bench_train.py --sweep``: 218k distinct buckets, 21 entries a row,
 36 evaluations a pass), an evaluation of 5 values takes 0.38-0.48 s on one core against 0.12 s for one
-value, and a full-batch pass of the 5 values 16-17 s against 4.4-6.4 s for one (when the values' passes
-ran on two threads, one value each: 16-20 s in the same minutes). Running the values' evaluations on
-two threads, two or three values each, gave 8-16% on an idle machine and lost 30-50% while another
-process kept a core busy, so the pass keeps to one core.
+value (each value still takes its own exponential and logarithm a row and its own arithmetic an
+entry), and a full-batch pass of the 5 values 16.1-20.8 s against 4.4-7.7 s for one, where the values'
+passes on two threads, one value each, took 15.5-26.9 s in the same minutes (three runs each). Running
+the values' evaluations on two threads, two or three values each, gave 8-16% on an idle machine and
+lost 30-50% while another process kept a core busy, so the pass keeps to one core.
 
 Memory: the in-memory log takes ``log_bytes(rows, entries)`` (int32 bucket and float64 value per
 entry, row pointer, label, row weight, margin and residual per row); while a pass runs, each value adds
