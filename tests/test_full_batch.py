@@ -1,6 +1,7 @@
 """The default solver's automatic phases: a tiny log trained full-batch reaches the scipy optimum, a
 scikit-learn data set gives scikit-learn's model, and a log that fits in memory switches to
-full-batch passes after the first, recorded in metrics.jsonl and run.json."""
+full-batch passes after the first, recorded in metrics.jsonl and run.json; the full-batch pass of
+several values in lockstep is scipy's L-BFGS-B run on each alone."""
 
 import json
 
@@ -8,14 +9,19 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
+import scipy.optimize
 from sklearn.datasets import load_breast_cancer
 from sklearn.linear_model import LogisticRegression
 from sklearn.metrics import log_loss
 
 from conftest import SMALL_SPEC, batch_csr, make_table, reference_objective, reference_optimum
 from trainer import api
+from trainer.kernels import batch_support, dot, margins_into, residuals_into, scatter_compact
+from trainer.losses import loss_code
+from trainer.model import LOSSES
 from trainer.reader import Reader
-from trainer.solvers import make_solver
+from trainer.solvers import full_batch, make_solver
+from trainer.solvers.full_batch import InMemoryLog
 from trainer.training import AVERAGE_POWER
 
 
@@ -125,3 +131,79 @@ def test_an_online_pass_gives_the_polynomial_decay_average_of_its_iterates(log_6
     expected = weights @ np.array(iterates) / weights.sum()
     np.testing.assert_allclose(np.append(model.weights, model.intercept), expected, rtol=1e-9, atol=1e-12)
     assert not np.allclose(expected, iterates[-1], rtol=1e-3)  # the average is not the last iterate
+
+
+def _in_memory_log(rng, rows=2000, n=300, nnz=6):
+    """A random weighted log as the full-batch pass holds it; row 0 holds one bucket twice."""
+    indices = rng.integers(0, n, rows * nnz).astype(np.int32)
+    indices[1] = indices[0]
+    slot = np.empty(indices.shape[0], dtype=np.int32)
+    cols = batch_support(indices, np.zeros((n + 63) // 64, dtype=np.uint64), slot)
+    return InMemoryLog(np.arange(rows + 1, dtype=np.int64) * nnz, cols, slot, rng.normal(size=rows * nnz),
+                       (rng.random(rows) < 0.3).astype(np.float64), rng.uniform(0.5, 2.0, rows))
+
+
+def _scipy_pass(log, code, l2, x, iterations):
+    """One full-batch pass as scipy.optimize.minimize runs it: its L-BFGS-B loop on the objective written
+    with the one-model kernels (margins_into, residuals_into, scatter_compact, each checked against dense
+    numpy in test_losses_kernels.py), the same Jacobi scaling and options."""
+    m, n = log.cols.shape[0], x.shape[0] - 1
+    z, r = np.empty(log.n_rows), np.empty(log.n_rows)
+    v0 = np.append(x[log.cols], x[n])
+    scale = 1.0 / np.sqrt(np.maximum(full_batch._diagonal(log, code, l2, v0, z), 1e-12))
+
+    def fg(u):
+        v = u * scale
+        w = v[:m]
+        margins_into(log.indptr, log.slot, log.data, w, float(v[m]), z)
+        loss_sum, weight_sum, r_sum = residuals_into(code, log.labels, log.weights, z, r)
+        g = np.empty(m + 1)
+        scatter_compact(log.indptr, log.slot, log.data, r, 1.0 / weight_sum, g[:m])
+        g[:m] += l2 * w
+        g[m] = r_sum / weight_sum
+        return loss_sum / weight_sum + 0.5 * l2 * dot(w, w), g * scale
+
+    res = scipy.optimize.minimize(fg, v0 / scale, jac=True, method="L-BFGS-B",
+                                  options={"maxiter": iterations, "maxcor": 10, "ftol": full_batch.FTOL,
+                                           "gtol": full_batch.GTOL, "maxfun": 2 * iterations + 20})
+    out = np.zeros_like(x)
+    out[log.cols] = res.x[:m] * scale[:m]
+    out[n] = res.x[m] * scale[m]
+    return out, res
+
+
+@pytest.mark.parametrize("loss", LOSSES)
+@pytest.mark.parametrize("iterations", [8, 30])
+def test_values_in_lockstep_are_each_scipys_l_bfgs_b_bit_for_bit(loss, iterations):
+    # Reference: scipy.optimize.minimize(method="L-BFGS-B") on each value alone ("Algorithm 778:
+    # L-BFGS-B", ACM TOMS 23, 1997), with the pass's scaling and options: the same weights bit for bit,
+    # iterations, evaluations (minimize's nfev), objective and convergence. The strong values converge in
+    # a few iterations and leave the lockstep while the others go on.
+    rng = np.random.default_rng(17)
+    log = _in_memory_log(rng)
+    code = loss_code(loss)
+    x0 = np.zeros(301)
+    x0[rng.integers(0, 300, 40)] = rng.normal(scale=0.3, size=40)
+    l2s = [1e-4, 1e-3, 3e-2, 1.0, 1e3]
+    xs = [x0.copy() for _ in l2s]
+    fitted = full_batch.minimize(log, code, l2s, xs, iterations=iterations)
+    assert len({f["iterations"] for f in fitted}) > 1
+    for l2, x, f in zip(l2s, xs, fitted):
+        ref, res = _scipy_pass(log, code, l2, x0, iterations)
+        assert np.array_equal(x, ref)  # bit for bit
+        assert (f["iterations"], f["evaluations"], f["objective"]) == (res.nit, res.nfev, res.fun)
+        assert f["converged"] == (res.success and res.nit < iterations) and not f["stopped"]
+        alone = x0.copy()
+        one, = full_batch.minimize(log, code, [l2], [alone], iterations=iterations)
+        assert one["iterations"] == res.nit
+        assert np.array_equal(alone, x)
+
+
+def test_a_stop_after_an_iteration_leaves_every_value_unchanged():
+    # Reference: the documented contract of minimize's ``stop`` (polled after every iteration).
+    log = _in_memory_log(np.random.default_rng(5))
+    polls = []
+    xs = [np.full(301, 0.1), np.full(301, 0.2)]
+    fitted = full_batch.minimize(log, 0, [1e-3, 1e-2], xs, stop=lambda: polls.append(1) or len(polls) == 3)
+    assert len(polls) == 3 and all(f["stopped"] for f in fitted)
+    assert np.all(xs[0] == 0.1) and np.all(xs[1] == 0.2)

@@ -10,8 +10,10 @@ from sklearn.metrics import log_loss
 
 from conftest import batch_csr
 from trainer.errors import UserError
-from trainer.kernels import (batch_support, blend_into, margins_into, predict_margin, regularized_gradient,
-                             residuals_curvatures_into, residuals_into, scatter_compact, scatter_gradient_curvature)
+from trainer.kernels import (batch_support, blend_into, margins_into, objectives_into, predict_margin,
+                             regularized_gradient, residuals_curvatures_into, residuals_into, scatter_compact,
+                             scatter_gradient_curvature)
+from trainer.losses import dloss, loss as loss_fn, loss_dloss
 from trainer.losses import expit as project_expit, loss_code, pointwise_curvature, pointwise_derivative, pointwise_loss
 from trainer.model import LOSSES
 from trainer.reader import Batch
@@ -183,6 +185,54 @@ def test_gradient_and_gauss_newton_diagonal_match_dense_products(loss):
     ref = 0.25 * np.einsum("ij,i,ij->j", X, h, X)
     np.testing.assert_allclose(d, ref[cols], rtol=1e-12, atol=1e-14)
     assert set(np.flatnonzero(ref)) <= set(cols.tolist())  # every bucket with curvature is in the support
+
+
+@pytest.mark.parametrize("loss", LOSSES)
+def test_loss_and_derivative_from_one_exponential_equal_the_separate_functions(loss):
+    # Reference: the package's loss and dloss (checked against scikit-learn, scipy and central differences
+    # above), bit for bit, over margins of every size, both signs of zero and both labels.
+    code = loss_code(loss)
+    z = np.concatenate([np.random.default_rng(9).normal(scale=8.0, size=2000),
+                        [0.0, -0.0, 1.0, -1.0, 800.0, -800.0]])
+    for y in (0.0, 1.0):
+        for zi in z:
+            assert loss_dloss(code, y, zi) == (loss_fn(code, y, zi), dloss(code, y, zi))
+
+
+@pytest.mark.parametrize("loss", LOSSES)
+@pytest.mark.parametrize("k", [1, 3, 8])
+def test_objectives_of_k_models_match_dense_algebra_and_the_one_model_kernels(loss, k):
+    rng = np.random.default_rng(46 + k)
+    n = 17
+    batch = _batch(rng, n=n)
+    code = loss_code(loss)
+    slot = np.empty(batch.indices.shape[0], dtype=np.int32)
+    cols = batch_support(batch.indices, np.zeros(1, dtype=np.uint64), slot)
+    W = np.ascontiguousarray(rng.normal(size=(cols.shape[0], k)))
+    b = rng.normal(size=k)
+    G, loss_sums, r_sums = np.empty_like(W), np.empty(k), np.empty(k)
+    weight_sum = objectives_into(code, batch.indptr, slot, batch.data, batch.labels, batch.weights, W,
+                                 tuple(b), G, loss_sums, r_sums)
+    X = batch_csr(batch, n).toarray()[:, cols]
+    Z = X @ W + b
+    c, y = batch.weights, batch.labels
+    R = c[:, None] * np.stack([pointwise_derivative(loss, y, Z[:, j]) for j in range(k)], axis=1)
+    # reference: numpy dense algebra on the package's pointwise functions (checked against scipy above):
+    # sum_i c_i l(y_i, z_ik), sum_i r_ik, X^T R and sum_i c_i
+    losses = [c @ pointwise_loss(loss, y, Z[:, j]) for j in range(k)]
+    np.testing.assert_allclose(loss_sums, losses, rtol=1e-12)
+    np.testing.assert_allclose(r_sums, R.sum(axis=0), rtol=1e-12, atol=1e-14)
+    np.testing.assert_allclose(G, X.T @ R, rtol=1e-12, atol=1e-14)
+    np.testing.assert_allclose(weight_sum, c.sum(), rtol=1e-14)
+    # reference: the one-model kernels margins_into, residuals_into and scatter_compact on each column,
+    # bit for bit (the same sums in the same order)
+    for j in range(k):
+        z, r, g = np.empty(batch.n_rows), np.empty(batch.n_rows), np.empty(cols.shape[0])
+        margins_into(batch.indptr, slot, batch.data, W[:, j].copy(), b[j], z)
+        one = residuals_into(code, batch.labels, batch.weights, z, r)
+        scatter_compact(batch.indptr, slot, batch.data, r, 1.0, g)
+        assert (loss_sums[j], weight_sum, r_sums[j]) == one
+        assert np.array_equal(G[:, j], g)
 
 
 def test_batch_support_matches_numpy_unique_across_bitmap_words():

@@ -51,6 +51,7 @@ from trainer.reader import Part, Reader
 from trainer.reader.examples import BucketExamples
 from trainer.scoring import write_scores
 from trainer.solvers import make_solver
+from trainer.solvers.full_batch import LBFGSB
 from trainer.sweep import is_sweep
 from trainer.training import Trainer, TrainResult, _StopFlag
 
@@ -463,9 +464,10 @@ class Refinement:
 
     Its complete state is in plain arrays so a checkpoint after any iteration resumes bit for bit. It
     drives scipy's L-BFGS-B through the reverse-communication routine behind
-    ``scipy.optimize.minimize(method="L-BFGS-B")`` (scipy >= 1.15) with no bounds, ``history``
-    correction pairs and that function's default tolerances; its workspace (2 * history + 5 vectors of
-    n + 1 float64) is the state. It works on scaled variables u = x / scale with a fixed diagonal
+    ``scipy.optimize.minimize(method="L-BFGS-B")`` (:class:`trainer.solvers.full_batch.LBFGSB`, the
+    driver of the single-machine full-batch passes too) with no bounds, ``history`` correction pairs
+    and that function's default tolerances; its workspace (2 * history + 5 vectors of n + 1 float64)
+    and ``scale`` are the state. It works on scaled variables u = x / scale with a fixed diagonal
     ``scale`` = D^(-1/2), D the Gauss-Newton diagonal of the objective at the start point (plus l2 on
     the weights), the diagonal preconditioner of "Efficient BackProp": bucket curvatures follow bucket
     frequencies, which span orders of magnitude in hashed logs (on the demo, 20 iterations from zero
@@ -495,19 +497,15 @@ class Refinement:
     method = "cluster-lbfgsb"
     FTOL = 2.220446049250313e-09
     GTOL = 1e-5
-    MAX_LINE_STEPS = 20
-    NEW_POINT, EVALUATE, CONVERGED = 1, 3, 4
+    NEW_POINT, EVALUATE, CONVERGED = LBFGSB.NEW_POINT, LBFGSB.EVALUATE, LBFGSB.CONVERGED
 
     def __init__(self, n: int, loss_name: str, l2: float, history: int, step0: float):
         self.n, self.loss_name, self.l2, self.history = n, loss_name, l2, history
         self.step0 = step0
-        size, m = n + 1, history
-        self.arrays = {"u": np.zeros(size), "scale": np.ones(size), "f": np.zeros(()), "g": np.zeros(size),
-                       "wa": np.zeros(2 * m * size + 5 * size + 11 * m * m + 8 * m),
-                       "iwa": np.zeros(3 * size, np.int32), "task": np.zeros(2, np.int32),
-                       "ln_task": np.zeros(2, np.int32), "lsave": np.zeros(4, np.int32),
-                       "isave": np.zeros(44, np.int32), "dsave": np.zeros(29)}
-        self._bounds = (np.zeros(size), np.zeros(size), np.zeros(size, np.int32))
+        self.lbfgsb = LBFGSB(n + 1, history, self.FTOL, self.GTOL)
+        workspace = self.lbfgsb.arrays
+        self.arrays = {"u": workspace["u"], "scale": np.ones(n + 1),
+                       **{k: v for k, v in workspace.items() if k != "u"}}
 
     @property
     def x(self) -> np.ndarray:
@@ -529,7 +527,7 @@ class Refinement:
     @property
     def task(self) -> int:
         """L-BFGS-B's task code after the last call (``NEW_POINT``, ``EVALUATE``, ``CONVERGED``, ...)."""
-        return int(self.arrays["task"][0])
+        return self.lbfgsb.task
 
     def start(self, x0: np.ndarray, curvature: np.ndarray) -> None:
         """Begin at a start point, scaled by the objective's diagonal there.
@@ -561,22 +559,14 @@ class Refinement:
         int
             The number of calls of ``fg``.
         """
-        from scipy.optimize import _lbfgsb
-
         a = self.arrays
-        lo, hi, nbd = self._bounds
         calls = 0
-        while True:
-            _lbfgsb.setulb(self.history, a["u"], lo, hi, nbd, a["f"], a["g"], self.FTOL / np.finfo(float).eps,
-                           self.GTOL, a["wa"], a["iwa"], a["task"], a["lsave"], a["isave"], a["dsave"],
-                           self.MAX_LINE_STEPS, a["ln_task"])
-            if self.task == self.EVALUATE:
-                f, g = fg(self.x)
-                a["f"][...] = f
-                a["g"][:] = g * a["scale"]
-                calls += 1
-            else:
-                return calls
+        while self.lbfgsb.call() == self.EVALUATE:
+            f, g = fg(self.x)
+            a["f"][...] = f
+            a["g"][:] = g * a["scale"]
+            calls += 1
+        return calls
 
     def state(self, copy: bool = True) -> dict:
         """The complete state: settings and the L-BFGS-B workspace arrays.

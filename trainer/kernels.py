@@ -14,7 +14,7 @@ import numpy as np
 from numba import njit, types
 from numba.extending import intrinsic
 
-from trainer.losses import d2loss, dloss, loss
+from trainer.losses import d2loss, dloss, loss, loss_dloss
 
 
 @njit(cache=True, nogil=True)
@@ -144,6 +144,83 @@ def residuals_curvatures_into(code, labels, weights, z, r, h):
         h[i] = hi
         h_sum += hi
     return loss_sum, weight_sum, r_sum, h_sum
+
+
+#: Rows of :func:`objectives_into`'s blocks: margins, then residuals, then the scatter of a block, so the
+#: exponentials of a block's rows overlap (one row's chain from its margins to its scatter is long).
+OBJECTIVE_BLOCK = 256
+
+
+@njit(cache=True, nogil=True)
+def objectives_into(code, indptr, slot, data, labels, weights, W, b, G, loss_sums, r_sums):
+    """Loss sums and compact gradient sums of K models in one pass over the rows, block by block.
+
+    Model k has the compact weights ``W[:, k]`` (one row per distinct bucket, :func:`batch_support`) and
+    the intercept ``b[k]``; the K weights of a bucket are adjacent in memory, so each entry's K margins
+    and K gradient terms touch one cache line. Row by row, each model's margin z_ik, residual
+    r_ik = c_i l'(y_i, z_ik) and sums are those of :func:`margins_into`, :func:`residuals_into` and
+    :func:`scatter_compact` (scale 1), added in the same order: model k's results equal theirs bit for bit.
+
+    Parameters
+    ----------
+    code : int
+        A loss code of :mod:`trainer.losses`.
+    indptr, slot, data : numpy.ndarray
+        The rows: int64 offsets, per entry its slot among the distinct buckets, float64 values.
+    labels, weights : numpy.ndarray
+        0/1 labels y_i and row weights c_i.
+    W : numpy.ndarray
+        float64 (m, K) weights, C order.
+    b : tuple of float
+        The K intercepts. A tuple's length is part of its type, so each K is compiled with loops of a
+        known length over the models (twice as fast for K = 1 as a length read from an array).
+    G : numpy.ndarray
+        float64 (m, K), overwritten: G[p, k] = sum over entries of slot p of r_ik * data.
+    loss_sums, r_sums : numpy.ndarray
+        float64 (K,), overwritten: sum_i c_i l(y_i, z_ik) and sum_i r_ik.
+
+    Returns
+    -------
+    float
+        sum_i c_i.
+    """
+    n_models = len(b)
+    n_rows = indptr.shape[0] - 1
+    z = np.empty((OBJECTIVE_BLOCK, n_models))
+    G[:, :] = 0.0
+    loss_sums[:] = 0.0
+    r_sums[:] = 0.0
+    weight_sum = 0.0
+    for start in range(0, n_rows, OBJECTIVE_BLOCK):
+        stop = min(start + OBJECTIVE_BLOCK, n_rows)
+        for i in range(start, stop):
+            zi = z[i - start]
+            for k in range(n_models):
+                zi[k] = b[k]
+            for e in range(indptr[i], indptr[i + 1]):
+                p = slot[e]
+                v = data[e]
+                for k in range(n_models):
+                    zi[k] += v * W[p, k]
+        for i in range(start, stop):
+            zi = z[i - start]
+            c = weights[i]
+            y = labels[i]
+            for k in range(n_models):
+                value, slope = loss_dloss(code, y, zi[k])
+                loss_sums[k] += c * value
+                rk = c * slope
+                zi[k] = rk
+                r_sums[k] += rk
+            weight_sum += c
+        for i in range(start, stop):
+            ri = z[i - start]
+            for e in range(indptr[i], indptr[i + 1]):
+                p = slot[e]
+                v = data[e]
+                for k in range(n_models):
+                    G[p, k] += ri[k] * v
+    return weight_sum
 
 
 @intrinsic

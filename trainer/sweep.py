@@ -4,11 +4,18 @@ Each batch is read and hashed once and stepped by one solver per value, one afte
 (:class:`SweepTrainer`). A value's training is exactly a single-value run's with the same options and
 seed: its solver, iterate average, phases (the in-memory log of the full-batch passes is collected
 once and shared), early stop and best pass are a :class:`trainer.training.Trainer`'s, so its weights
-are bit for bit those of that run. A value that stops early stops stepping; training ends when every
-value has stopped or ``--epochs`` is reached. The holdout, required, is read once per pass for all
-values. The value of the lowest best-pass holdout loss (log-loss; squared-hinge loss for that loss) is
-kept as the folder's model; every value's model is in ``MODEL_DIR/l2/<value>/``
-(:meth:`trainer.run_folder.RunFolder.value_folder`). One checkpoint holds every value's state.
+are bit for bit those of that run. The values' full-batch passes run in lockstep
+(:func:`trainer.solvers.full_batch.minimize`): one pass over the in-memory log evaluates every value
+waiting for an evaluation. On the 1M-row benchmark (``scripts/bench_train.py --sweep``, 3 passes;
+three runs, each beside a run of the previous version in the same minutes) the 5 values of the auto
+grid as a list took 2.83x-3.57x one value's wall time (median 3.40x) and ``auto`` 2.44x-3.14x (2.98x),
+their passes 2 and 3 33.2-41.3 s on one core; with the values' passes on two threads, one value each:
+3.25x-4.22x (3.40x), 2.68x-3.28x (2.78x) and 35.6-46.1 s on two cores. A value that stops early stops
+stepping; training ends when every value has stopped or ``--epochs`` is reached. The holdout, required,
+is read once per pass for all values. The value of the lowest best-pass holdout loss (log-loss;
+squared-hinge loss for that loss) is kept as the folder's model; every value's model is in
+``MODEL_DIR/l2/<value>/`` (:meth:`trainer.run_folder.RunFolder.value_folder`). One checkpoint holds
+every value's state.
 
 ``auto`` is the grid ``AUTO_GRID``, five values a factor of about 3 apart centred on the default
 1e-4 (1e-5, 3e-5, 1e-4, 3e-4, 1e-3). After pass 1 it narrows (:func:`narrowed`): a value whose
@@ -30,7 +37,6 @@ import dataclasses
 import math
 import os
 import time
-from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 from trainer.errors import Diverged, UserError
@@ -40,7 +46,7 @@ from trainer.run_folder import l2_label
 from trainer.options import check_float
 from trainer.solvers import solver_bytes
 from trainer.spec import Spec
-from trainer.training import TrainOptions, Trainer, TrainResult, _State, _StopFlag
+from trainer.training import TrainOptions, Trainer, TrainResult, _State, _StopFlag, fit_full_batch
 
 AUTO = "auto"
 #: Most values of one sweep.
@@ -262,8 +268,9 @@ class _Lane(Trainer):
     readers and bucket examples.
 
     It owns no folder, readers or checkpoint, so ``Trainer.__init__`` (which opens them) is not called;
-    the sweep calls only its value methods (``take``, ``fit_full_batch``, ``record_pass``, ``notes``,
-    ``current_model``, ``kept``, ``finished``, ``checkpoint_parts``, ``restore``) and writes its files.
+    the sweep calls only its value methods (``take``, ``record_pass``, ``notes``, ``current_model``,
+    ``kept``, ``finished``, ``checkpoint_parts``, ``restore``), runs its full-batch passes with the
+    others' (:func:`trainer.training.fit_full_batch`) and writes its files.
     """
 
     def __init__(self, sweep: SweepTrainer, value: float):
@@ -369,9 +376,9 @@ class SweepTrainer(Trainer):
         return "progressive loss " + ", ".join(losses)
 
     def full_batch_pass(self, stop: _StopFlag) -> dict:
-        """One full-batch pass of every value still training, on the log collected once, the values on
-        as many threads as there are cores (each value's pass is its own, and the kernels release the
-        GIL, so the weights are those of a pass run alone).
+        """One full-batch pass of every value still training, on the log collected once, the values in
+        lockstep (:func:`trainer.training.fit_full_batch`: one read of the log evaluates every value
+        waiting for an evaluation, and each value's weights are those of a pass run alone).
 
         Parameters
         ----------
@@ -389,9 +396,7 @@ class SweepTrainer(Trainer):
             On SIGINT/SIGTERM, keeping the checkpoint of the last finished pass.
         """
         lanes = self.stepping
-        with ThreadPoolExecutor(max_workers=min(len(lanes), os.cpu_count() or 1)) as pool:
-            runs = [pool.submit(lane.fit_full_batch, self.memory, stop) for lane in lanes]
-            fitted = {lane.value: run.result() for lane, run in zip(lanes, runs)}
+        fitted = dict(zip((lane.value for lane in lanes), fit_full_batch(lanes, self.memory, stop)))
         if any(f["stopped"] for f in fitted.values()):
             raise self._stopped_in_full_batch(stop.signal)
         return fitted

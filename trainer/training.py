@@ -39,11 +39,12 @@ makes it the same way.
 Progressive validation ("online" or "test-then-train" evaluation, common practice): each batch's
 loss is measured before the solver learns from it.
 
-A :class:`Trainer`'s methods are of two kinds: those of its value (``take``/``step``,
-``fit_full_batch``, ``record_pass``, ``notes``, ``current_model``, ``kept``, ``finished``,
-``checkpoint_parts``, ``restore``) touch only its solver, iterate average and state; the others run the model folder,
-readers, phases, checkpoint file and per-pass table. :class:`trainer.sweep.SweepTrainer` is one run
-over several values, each stepped through the value methods of its own Trainer.
+A :class:`Trainer`'s methods are of two kinds: those of its value (``take``/``step``, ``record_pass``,
+``notes``, ``current_model``, ``kept``, ``finished``, ``checkpoint_parts``, ``restore``) touch only its
+solver, iterate average and state; the others run the model folder, readers, phases, checkpoint file and
+per-pass table. :class:`trainer.sweep.SweepTrainer` is one run over several values, each stepped through
+the value methods of its own Trainer; :func:`fit_full_batch` runs the full-batch pass of one value or of
+several in lockstep.
 """
 
 from __future__ import annotations
@@ -271,6 +272,40 @@ def _phase_text(rec: dict) -> str:
 
 def _holdout_score(summary: dict, loss: str) -> float:
     return summary["log_loss"] if loss == "logistic" else summary["squared_hinge_loss"]
+
+
+def fit_full_batch(values: list[Trainer], memory: full_batch.InMemoryLog, stop: _StopFlag) -> list[dict]:
+    """Run the full-batch pass of one or several values of a run (Trainers whose options differ only in
+    the L2 strength) on an in-memory log, each from its model's weights, in lockstep
+    (:func:`trainer.solvers.full_batch.minimize`): each value's weights are those of its pass alone.
+
+    Parameters
+    ----------
+    values : list of Trainer
+        The values.
+    memory : trainer.solvers.full_batch.InMemoryLog
+        The hashed log.
+    stop : _StopFlag
+        Polled after every iteration.
+
+    Returns
+    -------
+    list of dict
+        Each value's summary (:func:`trainer.solvers.full_batch.minimize`); with ``stopped`` set by a
+        signal, every value's weights and state are left as they were.
+    """
+    xs = [value._model_x() for value in values]
+    first = values[0]
+    fitted = full_batch.minimize(memory, first.solver.code, [value.opt.l2_strength for value in values], xs,
+                                 history=first.opt.history, stop=lambda: stop.signal is not None)
+    if not fitted[0]["stopped"]:
+        for value, x in zip(values, xs):
+            st = value.state
+            value.solver.assign(x)
+            st.averaged = False
+            st.rows_in_pass = memory.n_rows
+            st.rows_total += memory.n_rows
+    return fitted
 
 
 class Trainer:
@@ -689,43 +724,16 @@ class Trainer:
         Returns
         -------
         dict
-            The pass's summary (:meth:`fit_full_batch`).
+            The pass's summary (:func:`fit_full_batch`).
 
         Raises
         ------
         Interrupted
             On SIGINT/SIGTERM, keeping the checkpoint of the last finished pass.
         """
-        fitted = self.fit_full_batch(self.memory, stop)
+        fitted, = fit_full_batch([self], self.memory, stop)
         if fitted["stopped"]:
             raise self._stopped_in_full_batch(stop.signal)
-        return fitted
-
-    def fit_full_batch(self, memory: full_batch.InMemoryLog, stop: _StopFlag) -> dict:
-        """Run this value's full-batch pass on an in-memory log, from the model's weights.
-
-        Parameters
-        ----------
-        memory : trainer.solvers.full_batch.InMemoryLog
-            The hashed log.
-        stop : _StopFlag
-            Polled after every iteration.
-
-        Returns
-        -------
-        dict
-            The summary of :func:`trainer.solvers.full_batch.minimize`; with ``stopped`` set by a signal,
-            the weights and state are left as they were.
-        """
-        st, opt = self.state, self.opt
-        x = self._model_x()
-        fitted = full_batch.minimize(memory, self.solver.code, opt.l2_strength, x, history=opt.history,
-                                     stop=lambda: stop.signal is not None)
-        if not fitted["stopped"]:
-            self.solver.assign(x)
-            st.averaged = False
-            st.rows_in_pass = memory.n_rows
-            st.rows_total += memory.n_rows
         return fitted
 
     def _stopped_in_full_batch(self, signum: int) -> Interrupted:

@@ -5,14 +5,28 @@ objective of :mod:`trainer.solvers` over all rows at once instead of one batch a
 pass runs scipy's L-BFGS-B ("A Limited Memory Algorithm for Bound Constrained Optimization", SIAM
 Journal on Scientific Computing 16, 1995; "Algorithm 778: L-BFGS-B", ACM Transactions on
 Mathematical Software 23, 1997), without bounds, from the current weights, with the objective and
-its gradient computed by the project's serial numba kernels (margins, residuals, gradient scatter),
-so the same rows and starting weights give the same weights bit for bit. Each pass starts a fresh
+its gradient computed by the project's serial numba kernels (margins, residuals, gradient scatter in
+one pass over the rows), so the same rows and starting weights give the same weights bit for bit. Each pass starts a fresh
 L-BFGS-B memory, so a pass depends only on the weights it starts from: a run resumed at a pass
 boundary repeats exactly what the uninterrupted run did.
 
+Several values of a sweep (:mod:`trainer.sweep`) run their passes together (:func:`minimize`): each
+value's L-BFGS-B is driven call by call through scipy's reverse-communication routine (:class:`LBFGSB`),
+and each round one pass over the rows computes the objective and gradient of every value waiting for
+them (:func:`trainer.kernels.objectives_into`, the K weights of a bucket side by side), each value's
+sums in the order of a value alone, so its weights are those of its pass alone, bit for bit. On the
+1M-row benchmark log (``scripts/bench_train.py --sweep``: 218k distinct buckets, 21 entries a row,
+36 evaluations a pass), an evaluation of 5 values takes 0.38-0.48 s on one core against 0.12 s for one
+value (each value still takes its own exponential and logarithm a row and its own arithmetic an
+entry), and a full-batch pass of the 5 values 16.1-20.8 s against 4.4-7.7 s for one, where the values'
+passes on two threads, one value each, took 15.5-26.9 s in the same minutes (three runs each). Running
+the values' evaluations on two threads, two or three values each, gave 8-16% on an idle machine and
+lost 30-50% while another process kept a core busy, so the pass keeps to one core.
+
 Memory: the in-memory log takes ``log_bytes(rows, entries)`` (int32 bucket and float64 value per
-entry, row pointer, label, row weight, margin and residual per row); L-BFGS-B adds 2 x ``history`` x
-(buckets + 1) float64 values while a pass runs.
+entry, row pointer, label, row weight, margin and residual per row); while a pass runs, each value adds
+about 2 x ``history`` + 13 vectors of (distinct buckets + 1) float64 values (L-BFGS-B's workspace, the
+scaling, the last point and gradient, its column of the evaluation's weights and gradient sums).
 """
 
 from __future__ import annotations
@@ -22,11 +36,14 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from trainer.kernels import (batch_support, dot, margins_into, residuals_curvatures_into, residuals_into,
-                             scatter_compact, scatter_gradient_curvature)
+from trainer.kernels import (batch_support, dot, margins_into, objectives_into, residuals_curvatures_into,
+                             scatter_gradient_curvature)
 
 #: L-BFGS-B iterations in one full-batch pass.
 ITERATIONS_PER_PASS = 30
+#: L-BFGS-B's tolerances in a full-batch pass (``scipy.optimize.minimize``'s options of those names): tight
+#: enough that a pass ends by its iterations, not by a test of the objective's decrease.
+FTOL, GTOL = 1e-15, 1e-12
 
 
 def log_bytes(rows: int, entries: int) -> int:
@@ -51,15 +68,17 @@ def log_bytes(rows: int, entries: int) -> int:
 class InMemoryLog:
     """The hashed rows of one pass as one CSR matrix with labels and row weights.
 
-    The entries address the log's distinct buckets ``cols`` (ascending) by ``slot``
-    (:func:`trainer.kernels.batch_support`), so the kernels work on gathered, compact vectors.
+    The entries address the log's distinct buckets ``cols`` by ``slot``, so the kernels work on gathered,
+    compact vectors. ``cols`` lists the most frequent buckets first (ties in bucket order): the weights most
+    entries read share few cache lines, which took a 5-value evaluation (:func:`minimize`) of the
+    1M-row benchmark log from 0.48 to 0.38 s (one value: 0.12 s either way).
 
     Attributes
     ----------
     indptr : numpy.ndarray
         int64 row offsets (n_rows + 1).
     cols : numpy.ndarray
-        int32 distinct buckets of the log, ascending.
+        int32 distinct buckets of the log, by descending count of entries.
     slot : numpy.ndarray
         int32 position in ``cols`` of each entry's bucket.
     data : numpy.ndarray
@@ -119,7 +138,11 @@ class InMemoryLog:
         indices = cat(1, np.int32)
         slot = np.empty(indices.shape[0], dtype=np.int32)
         cols = batch_support(indices, np.zeros((n_features + 63) // 64, dtype=np.uint64), slot)
-        return cls(indptr, cols, slot, cat(2, np.float64), cat(3, np.float64), cat(4, np.float64))
+        order = np.argsort(-np.bincount(slot, minlength=cols.shape[0]), kind="stable")
+        rank = np.empty(cols.shape[0], dtype=np.int32)
+        rank[order] = np.arange(cols.shape[0], dtype=np.int32)
+        np.take(rank, slot, out=slot, mode="clip")  # in place: "clip" writes each entry after reading it
+        return cls(indptr, cols[order], slot, cat(2, np.float64), cat(3, np.float64), cat(4, np.float64))
 
 
 def _diagonal(log: InMemoryLog, code: int, l2: float, v: np.ndarray, z: np.ndarray) -> np.ndarray:
@@ -137,13 +160,139 @@ def _diagonal(log: InMemoryLog, code: int, l2: float, v: np.ndarray, z: np.ndarr
     return d
 
 
-def minimize(log: InMemoryLog, code: int, l2: float, x: np.ndarray, *, history: int = 10,
-             iterations: int = ITERATIONS_PER_PASS, stop=None) -> dict:
-    """Run L-BFGS-B iterations on the whole log.
+class LBFGSB:
+    """scipy's L-BFGS-B without bounds, one call of its reverse-communication routine at a time.
 
-    Minimizes F(w, b) = sum_i c_i l(y_i, x_i.w + b) / sum_i c_i + (l2 / 2) ||w||^2 from ``x``. The
-    iterations move the log's buckets and the intercept; every other bucket is set to 0, its exact
-    minimizer (the objective is (l2 / 2) w_j^2 there). They work on scaled variables u = x / s with
+    ``scipy.optimize.minimize(method="L-BFGS-B")`` loops over ``scipy.optimize._lbfgsb.setulb``
+    (signature of scipy >= 1.15), computing the objective and gradient whenever the routine asks for
+    them (task ``EVALUATE``); here the caller does, so several problems can advance in lockstep and a
+    checkpoint can hold the whole state (``arrays``).
+
+    Parameters
+    ----------
+    size : int
+        Variables.
+    history : int
+        Correction pairs (minimize's ``maxcor``).
+    ftol, gtol : float
+        minimize's options of those names.
+
+    Attributes
+    ----------
+    arrays : dict of str to numpy.ndarray
+        The iterate ``u``; the objective ``f`` and gradient ``g`` at the point the routine asked for last,
+        which the caller writes; the routine's workspace (``wa``, ``iwa``, ``task``, ``ln_task``, ``lsave``,
+        ``isave``, ``dsave``).
+
+    References
+    ----------
+    "Algorithm 778: L-BFGS-B", ACM Transactions on Mathematical Software 23, 1997.
+    """
+
+    NEW_POINT, EVALUATE, CONVERGED, STOP = 1, 3, 4, 5
+    #: minimize's task codes for a stop after ``maxiter`` iterations and after ``maxfun`` evaluations.
+    MAX_ITERATIONS, MAX_EVALUATIONS = 504, 502
+    MAX_LINE_STEPS = 20
+
+    def __init__(self, size: int, history: int, ftol: float, gtol: float):
+        self.history, self.factr, self.gtol = history, ftol / np.finfo(float).eps, gtol
+        m = history
+        self.arrays = {"u": np.zeros(size), "f": np.zeros(()), "g": np.zeros(size),
+                       "wa": np.zeros(2 * m * size + 5 * size + 11 * m * m + 8 * m),
+                       "iwa": np.zeros(3 * size, np.int32), "task": np.zeros(2, np.int32),
+                       "ln_task": np.zeros(2, np.int32), "lsave": np.zeros(4, np.int32),
+                       "isave": np.zeros(44, np.int32), "dsave": np.zeros(29)}
+        self._bounds = (np.zeros(size), np.zeros(size), np.zeros(size, np.int32))
+
+    @property
+    def task(self) -> int:
+        """The task code after the last call (``NEW_POINT``, ``EVALUATE``, ``CONVERGED``, ...; 0 before)."""
+        return int(self.arrays["task"][0])
+
+    def call(self) -> int:
+        """Call the routine once: it moves ``u`` and returns when it needs f and g at ``u``, has accepted a
+        new point, or has stopped.
+
+        Returns
+        -------
+        int
+            The task code.
+        """
+        from scipy.optimize import _lbfgsb  # here: a run without a full-batch pass never loads scipy.optimize
+
+        a = self.arrays
+        lo, hi, nbd = self._bounds
+        _lbfgsb.setulb(self.history, a["u"], lo, hi, nbd, a["f"], a["g"], self.factr, self.gtol, a["wa"],
+                       a["iwa"], a["task"], a["lsave"], a["isave"], a["dsave"], self.MAX_LINE_STEPS,
+                       a["ln_task"])
+        return self.task
+
+    def halt(self, reason: int) -> None:
+        """Make the next :meth:`call` end the run, as minimize does at its limits.
+
+        Parameters
+        ----------
+        reason : int
+            ``MAX_ITERATIONS`` or ``MAX_EVALUATIONS``.
+        """
+        self.arrays["task"][:] = (self.STOP, reason)
+
+
+@dataclass
+class _Problem:
+    """One value's run in :func:`minimize`: its L2 strength, weights (the result goes there), fixed scaling
+    and L-BFGS-B, its counts, and its last evaluation (point, objective, gradient)."""
+
+    l2: float
+    x: np.ndarray
+    scale: np.ndarray
+    solver: LBFGSB
+    iterations: int = 0
+    evaluations: int = 0
+    seconds: float = 0.0
+    last: tuple | None = None
+
+    def asks_again(self) -> bool:
+        """Whether L-BFGS-B asks for the point of the last evaluation (in line searches of tiny steps); then
+        its objective and gradient are put back, as minimize's cache of the last point does."""
+        a = self.solver.arrays
+        if self.last is None or not np.array_equal(a["u"], self.last[0]):
+            return False
+        a["f"][...] = self.last[1]
+        a["g"][:] = self.last[2]
+        return True
+
+
+def _evaluate(log: InMemoryLog, code: int, problems: list[_Problem], W: np.ndarray, G: np.ndarray) -> None:
+    """Write each problem's objective and scaled gradient at its point, all from one pass over the rows
+    (:func:`trainer.kernels.objectives_into`); ``W`` and ``G`` are scratch of at least m x len(problems)."""
+    m, k = log.cols.shape[0], len(problems)
+    W, G = W[: m * k].reshape(m, k), G[: m * k].reshape(m, k)
+    vs = [p.solver.arrays["u"] * p.scale for p in problems]
+    for j, v in enumerate(vs):
+        W[:, j] = v[:m]
+    loss_sums, r_sums = np.empty(k), np.empty(k)
+    weight_sum = objectives_into(code, log.indptr, log.slot, log.data, log.labels, log.weights, W,
+                                 tuple(float(v[m]) for v in vs), G, loss_sums, r_sums)
+    for j, (p, v) in enumerate(zip(problems, vs)):
+        w, a = v[:m], p.solver.arrays
+        g = a["g"]
+        g[:m] = G[:, j] * (1.0 / weight_sum)
+        g[:m] += p.l2 * w
+        g[m] = r_sums[j] / weight_sum
+        g *= p.scale
+        a["f"][...] = loss_sums[j] / weight_sum + 0.5 * p.l2 * dot(w, w)
+        p.evaluations += 1
+        p.last = (a["u"].copy(), a["f"].copy(), g.copy())
+
+
+def minimize(log: InMemoryLog, code: int, l2s, xs, *, history: int = 10,
+             iterations: int = ITERATIONS_PER_PASS, stop=None) -> list[dict]:
+    """Run L-BFGS-B iterations on the whole log for several L2 strengths at once.
+
+    For each value, minimizes F(w, b) = sum_i c_i l(y_i, x_i.w + b) / sum_i c_i + (l2 / 2) ||w||^2 from its
+    ``x``. The iterations move the log's buckets and the intercept; every other bucket is set to 0, its
+    exact minimizer (the objective is (l2 / 2) w_j^2 there). They work on scaled variables u = x / s with
     s = D^(-1/2), D the Gauss-Newton diagonal of F at the start (the diagonal preconditioner of
     "Efficient BackProp", Neural Networks: Tricks of the Trade, Springer, 1998): bucket curvatures
     follow bucket frequencies over orders of magnitude, which an unscaled L-BFGS-B start (a multiple
@@ -151,69 +300,87 @@ def minimize(log: InMemoryLog, code: int, l2: float, x: np.ndarray, *, history: 
     pass from 1.0339 to 1.0022 x LL* on rows of 155 entries (tags200) and to 1.0000 on every other
     log of 200k rows or more (``scripts/bench_regimes.py``).
 
+    Each value's L-BFGS-B is ``scipy.optimize.minimize(method="L-BFGS-B")``'s with the options ``maxiter``
+    = ``iterations``, ``maxcor`` = ``history``, ``ftol`` = ``FTOL``, ``gtol`` = ``GTOL``, ``maxfun`` =
+    2 ``iterations`` + 20, driven through :class:`LBFGSB`; the values advance in lockstep, and each
+    round computes the objectives and gradients of all values waiting for one in a single pass over the
+    rows (:func:`trainer.kernels.objectives_into`, each value's sums in the order of one value alone), so
+    a value's result does not depend on the others. A value leaves the lockstep when it converges or
+    reaches its limits.
+
     Parameters
     ----------
     log : InMemoryLog
         The rows.
     code : int
         A loss code of :mod:`trainer.losses`.
-    l2 : float
-        The L2 strength.
-    x : numpy.ndarray
-        Bucket weights then the intercept, float64; overwritten with the result.
+    l2s : sequence of float
+        The L2 strengths.
+    xs : sequence of numpy.ndarray
+        For each value, bucket weights then the intercept, float64; overwritten with its result.
     history : int, default 10
         L-BFGS-B's memory (``maxcor``).
     iterations : int, default ITERATIONS_PER_PASS
         Most iterations.
     stop : callable, optional
-        Polled after every iteration; returning True ends the pass early (then ``x`` is left unchanged).
+        Polled after every iteration of every value; returning True ends the pass early for all of them
+        (then every ``x`` is left unchanged).
 
     Returns
     -------
-    dict
-        ``iterations``, ``evaluations``, ``objective``, ``converged``, ``stopped``, ``seconds``.
+    list of dict
+        For each value: ``iterations``, ``evaluations``, ``objective``, ``converged``, ``stopped``,
+        ``seconds`` (until it left the lockstep).
 
     References
     ----------
     "A Limited Memory Algorithm for Bound Constrained Optimization", SIAM Journal on Scientific
     Computing 16, 1995. "Algorithm 778: L-BFGS-B", ACM Transactions on Mathematical Software 23, 1997.
     """
-    import scipy.optimize  # here, not at the top: a run without a full-batch pass never loads it (0.2-0.3 s)
-
-    n = x.shape[0] - 1
+    started = time.perf_counter()
     m = log.cols.shape[0]
     z = np.empty(log.n_rows, dtype=np.float64)
-    r = np.empty(log.n_rows, dtype=np.float64)
-    v0 = np.append(x[log.cols], x[n])
-    scale = 1.0 / np.sqrt(np.maximum(_diagonal(log, code, l2, v0, z), 1e-12))
+    problems = []
+    for l2, x in zip(l2s, xs):
+        v0 = np.append(x[log.cols], x[-1])
+        scale = 1.0 / np.sqrt(np.maximum(_diagonal(log, code, l2, v0, z), 1e-12))
+        solver = LBFGSB(m + 1, history, FTOL, GTOL)
+        solver.arrays["u"][:] = v0 / scale
+        problems.append(_Problem(l2, x, scale, solver))
+    W, G = np.empty(m * len(problems)), np.empty(m * len(problems))
+    active, max_evaluations = problems, 2 * iterations + 20
+    while active:
+        asking = []
+        for p in active:
+            task = p.solver.call()
+            while task == LBFGSB.NEW_POINT or (task == LBFGSB.EVALUATE and p.asks_again()):
+                if task == LBFGSB.NEW_POINT:
+                    p.iterations += 1
+                    if stop is not None and stop():
+                        return [_summary(q, iterations, time.perf_counter() - started, stopped=True)
+                                for q in problems]
+                    if p.iterations >= iterations:
+                        p.solver.halt(LBFGSB.MAX_ITERATIONS)
+                    elif p.evaluations > max_evaluations:
+                        p.solver.halt(LBFGSB.MAX_EVALUATIONS)
+                task = p.solver.call()
+            if task == LBFGSB.EVALUATE:
+                asking.append(p)
+            else:
+                p.seconds = time.perf_counter() - started
+        if asking:
+            _evaluate(log, code, asking, W, G)
+        active = asking
+    for p in problems:
+        u = p.solver.arrays["u"]
+        p.x[:] = 0.0
+        p.x[log.cols] = u[:m] * p.scale[:m]
+        p.x[-1] = u[m] * p.scale[m]
+    return [_summary(p, iterations, p.seconds, stopped=False) for p in problems]
 
-    def fg(u):
-        v = u * scale
-        w = v[:m]
-        margins_into(log.indptr, log.slot, log.data, w, float(v[m]), z)
-        loss_sum, weight_sum, r_sum = residuals_into(code, log.labels, log.weights, z, r)
-        g = np.empty(m + 1, dtype=np.float64)
-        scatter_compact(log.indptr, log.slot, log.data, r, 1.0 / weight_sum, g[:m])
-        g[:m] += l2 * w
-        g[m] = r_sum / weight_sum
-        return loss_sum / weight_sum + 0.5 * l2 * dot(w, w), g * scale
 
-    stopped = False
-
-    def poll(_result):
-        nonlocal stopped
-        if stop is not None and stop():
-            stopped = True
-            raise StopIteration
-
-    started = time.perf_counter()
-    res = scipy.optimize.minimize(fg, v0 / scale, jac=True, method="L-BFGS-B", callback=poll,
-                                  options={"maxiter": iterations, "maxcor": history, "ftol": 1e-15,
-                                           "gtol": 1e-12, "maxfun": 2 * iterations + 20})
-    if not stopped:
-        x[:] = 0.0
-        x[log.cols] = res.x[:m] * scale[:m]
-        x[n] = res.x[m] * scale[m]
-    return {"iterations": int(res.nit), "evaluations": int(res.nfev), "objective": float(res.fun),
-            "converged": bool(res.success) and res.nit < iterations, "stopped": stopped,
-            "seconds": time.perf_counter() - started}
+def _summary(p: _Problem, iterations: int, seconds: float, stopped: bool) -> dict:
+    """The summary :func:`minimize` returns for one value (``iterations``: the limit)."""
+    converged = p.solver.task == LBFGSB.CONVERGED and p.iterations < iterations
+    return {"iterations": p.iterations, "evaluations": p.evaluations, "objective": float(p.solver.arrays["f"]),
+            "converged": converged, "stopped": stopped, "seconds": seconds}
