@@ -39,9 +39,13 @@ import sys
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import numpy as np
-import pyarrow as pa
-import pyarrow.parquet as pq
+from trainer.cli import configure_process  # stdlib only: settings that must precede numpy's BLAS
+
+configure_process()
+
+import numpy as np  # noqa: E402
+import pyarrow as pa  # noqa: E402
+import pyarrow.parquet as pq  # noqa: E402
 
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
@@ -51,7 +55,6 @@ from bench_train import (OPTIMUM_METHOD, PEER_PASSES, TARGET, cached_optimum, lo
                          run_hashcurve, run_peer)
 
 from trainer.atomic import write_atomic  # noqa: E402
-from trainer.cli import configure_process  # noqa: E402
 from trainer.solvers.res import MAX_FEATURES as RES_MAX_FEATURES  # noqa: E402
 from trainer.spec import load_spec  # noqa: E402
 
@@ -257,7 +260,6 @@ def main() -> None:
     for name in chosen:
         if name not in by_name:
             ap.error(f"--regimes: unknown regime {name!r}; known: {', '.join(by_name)}")
-    configure_process()
     results = [run_regime(by_name[name], a.passes, a.skip_peer) for name in chosen]
     print_table(results, a.passes)
 

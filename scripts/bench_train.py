@@ -48,11 +48,15 @@ import tempfile
 import time
 from pathlib import Path
 
-import numpy as np
-import scipy.optimize
-import scipy.sparse as sp
-from numba import njit, prange
-from scipy.special import expit
+from trainer.cli import configure_process  # stdlib only: settings that must precede numpy's BLAS
+
+configure_process()
+
+import numpy as np  # noqa: E402
+import scipy.optimize  # noqa: E402
+import scipy.sparse as sp  # noqa: E402
+from numba import njit, prange  # noqa: E402
+from scipy.special import expit  # noqa: E402
 
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
@@ -61,7 +65,6 @@ import loggen  # noqa: E402
 
 from trainer import api  # noqa: E402
 from trainer.atomic import atomic_path  # noqa: E402
-from trainer.cli import configure_process  # noqa: E402
 from trainer.kernels import blend_into  # noqa: E402
 from trainer.losses import pointwise_loss  # noqa: E402
 from trainer.reader import Reader, parse_day  # noqa: E402
@@ -376,7 +379,6 @@ def main() -> None:
                     help="measure a sweep of 5 L2 strengths against one value instead (see the docstring)")
     ap.add_argument("--repeats", type=int, default=3, help="with --sweep: interleaved rounds (default: 3)")
     a = ap.parse_args()
-    configure_process()
     opt = TrainOptions()
     folder = make_log(a.rows_per_day, a.train_days + 1)
     spec_path = folder / "spec.json"

@@ -2,6 +2,7 @@
 (common practice for command-line tools: errors go to stderr with a non-zero status)."""
 
 import json
+import os
 import subprocess
 import sys
 
@@ -142,3 +143,14 @@ def test_output_closed_early_ends_quietly(tmp_path):
     proc.stdout.close()  # no reader left: the first write fails with EPIPE
     err = proc.stderr.read().decode()
     assert proc.wait(60) == 1 and err == "", err
+
+
+def test_command_line_runs_blas_on_one_thread():
+    # Reference: threadpoolctl's report of the loaded BLAS libraries (a general-purpose library, the test
+    # extra's scikit-learn depends on it); the command line's process settings run before numpy loads.
+    code = ("import trainer.cli as c; c.configure_process(); import numpy, scipy.linalg; "
+            "from threadpoolctl import threadpool_info; "
+            "print(sorted({i['num_threads'] for i in threadpool_info() if i['internal_api'] == 'openblas'}))")
+    env = {k: v for k, v in os.environ.items() if k != "OPENBLAS_NUM_THREADS"}
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env, check=True).stdout
+    assert out.strip() == "[1]"
