@@ -11,11 +11,16 @@ every stored s once. Weights are float64; the stored steps and the direction are
 storage dtype (float32 by default). Parallel kernels are called from Python only.
 
 Their threads are numba's OpenMP layer; unless the environment says otherwise, this module sets
-``OMP_WAIT_POLICY=PASSIVE`` before the first parallel call loads the OpenMP runtime, so a worker
-sleeps between the passes instead of spinning for the CPU: a spinning worker takes the core that the
-read-ahead thread, or another process on a busy machine, needs. On this 2-core host with two other
-processes running, a 1M-row pass (``scripts/bench_train.py``'s log) took 8.2-16.0 s spinning and
-5.4-5.6 s passive (one thread only: 3.8-4.6 s).
+``GOMP_SPINCOUNT=30000`` before the first parallel call loads the OpenMP runtime (GNU libgomp, which
+numba's wheels use on Linux): a worker spins about 30,000 times waiting for the next pass, then sleeps,
+instead of libgomp's default 300,000, so a waiting worker gives its core back sooner to the read-ahead
+thread (``trainer.reader.ahead``) or to another process. 1M-row passes of ``scripts/bench_train.py``'s
+log on this 2-core host, in-process, read inline / ahead: libgomp's default 2.05-2.59 / 2.01-2.64 s,
+30,000 spins 1.95-2.61 / 1.89-2.35 s (five runs each, interleaved); with a busy loop on one core, the
+default 4.27 / 3.66 s, 30,000 spins 3.92 / 3.62 s, 10,000 spins 2.99 / 2.69 s, no spinning
+(``OMP_WAIT_POLICY=PASSIVE``) 2.62 / 2.87 s, but passive workers cost 2.36-2.84 s idle, the wake-up
+of a sleeping worker at every pass: on a machine that other work keeps busy, ``OMP_WAIT_POLICY=PASSIVE``
+is the better setting (README, Performance).
 """
 
 from __future__ import annotations
@@ -29,7 +34,7 @@ from numba import njit, prange
 from trainer.kernels import VECTOR_MATH, dot
 from trainer.losses import dloss, loss
 
-os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
+os.environ.setdefault("GOMP_SPINCOUNT", "30000")
 
 #: Dense passes work on fixed chunks of this many coordinates (a chunk of every stored step fits in
 #: the per-core cache, so a pass reads each step from memory once) and add the chunks' partial sums
