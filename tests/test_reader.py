@@ -252,35 +252,3 @@ def test_readme_worked_example(tmp_path):
     assert mmh3.hash(b"campaign\x1fspring-sale", 0, signed=False) == 0xF121FF00
     assert batch.indices[0] == 0xF121FF00 & 0x3FFFF == 130816
     assert batch.indices[2] == 0xA8078C35 & 0x3FFFF == 232501
-
-
-def test_read_ahead_yields_the_same_batches_and_raises_where_reading_failed(small_log):
-    # Reference: the reader's own batches read inline (the same arrays, in the same order); an error of the
-    # reader surfaces at the batch where it happened, and closing early stops the reading thread.
-    import threading
-
-    from trainer.reader.ahead import read_ahead
-
-    root, spec_path = small_log
-    spec = load_spec(spec_path)
-    inline = list(Reader(spec, root, batch_rows=200).batches())
-    calls = []
-    ahead = list(read_ahead(Reader(spec, root, batch_rows=200).batches(), lambda: calls.append(1) or len(calls) >= 2))
-    assert len(calls) == 2 and len(ahead) == len(inline) > 4
-    for a, b in zip(ahead, inline):
-        for k in ("indptr", "indices", "data", "labels", "weights"):
-            np.testing.assert_array_equal(getattr(a, k), getattr(b, k))
-
-    def failing():
-        yield from inline[:3]
-        raise ValueError("bad chunk")
-
-    seen = []
-    with pytest.raises(ValueError, match="bad chunk"):
-        for batch in read_ahead(failing(), lambda: True):
-            seen.append(batch)
-    assert len(seen) == 3
-    gen = read_ahead(iter(inline), lambda: True, depth=1)
-    next(gen)
-    gen.close()
-    assert not any(t.name == "read-ahead" for t in threading.enumerate())

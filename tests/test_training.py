@@ -159,28 +159,3 @@ def test_train_result_and_evaluation_result_match_the_files_written(small_log, t
     assert np.array_equal(r.model.weights, load_model(tmp_path / "m").weights)
     s = api.evaluate(r.model_dir, root, json_out=tmp_path / "s.json")
     assert s.log_loss == s["log_loss"] == json.loads((tmp_path / "s.json").read_text())["log_loss"]
-
-
-def test_reading_ahead_trains_the_same_weights_as_reading_inline(log_4files, tmp_path, monkeypatch):
-    # Reference: the same run with every batch read inline (bit-identical weights, bucket examples and
-    # checkpoints' rows), the tool's own determinism contract. Recording examples stops after 2,000 rows
-    # here, so most of the 60k-row pass is read on the read-ahead thread (checkpoints every 7,000 rows).
-    import functools
-
-    from trainer import training
-    from trainer.reader.examples import BucketExamples
-
-    data, spec = log_4files
-    monkeypatch.setattr(training, "BucketExamples", functools.partial(BucketExamples, max_rows=2000))
-    options = dict(epochs=1, batch_rows=500, checkpoint_every=7000, quiet=True)
-    ahead = api.train(spec, data, tmp_path / "ahead", **options)
-
-    def inline(batches, after, depth=2):
-        yield from batches
-
-    monkeypatch.setattr(training, "read_ahead", inline)
-    ref = api.train(spec, data, tmp_path / "inline", **options)
-    assert ahead.per_pass[0]["steps"] == ref.per_pass[0]["steps"] > 60
-    m_ahead, m_ref = load_model(tmp_path / "ahead"), load_model(tmp_path / "inline")
-    assert np.array_equal(m_ahead.weights, m_ref.weights) and m_ahead.intercept == m_ref.intercept
-    assert m_ahead.info["examples"] == m_ref.info["examples"] and len(m_ref.info["examples"]) > 10

@@ -49,7 +49,6 @@ several in lockstep.
 
 from __future__ import annotations
 
-import contextlib
 import dataclasses
 import datetime as dt
 import math
@@ -69,7 +68,6 @@ from trainer.kernels import blend_into
 from trainer.metrics import fit_platt
 from trainer.model import Model
 from trainer.options import TrainOptions
-from trainer.reader.ahead import read_ahead
 from trainer.reader.examples import BucketExamples
 from trainer.reader.stream import Position, Reader
 from trainer.run_folder import RunFolder, l2_label
@@ -889,19 +887,16 @@ class Trainer:
                    disable=self.quiet or not sys.stderr.isatty(),
                    mininterval=0.5, leave=False, dynamic_ncols=True)
         shown = -math.inf
-        batches = read_ahead(self.reader.batches(st.pass_index, st.position, sizes=self.batch_sizes()),
-                             lambda: self.examples.rows_left <= 0)
-        with contextlib.closing(batches):
-            for batch in batches:
-                if self.take(batch):
-                    self.save_checkpoint()
-                bar.update(batch.n_rows)
-                if time.monotonic() - shown > 0.5:
-                    bar.set_postfix_str(self.progress_text())
-                    shown = time.monotonic()
-                if stop.signal is not None:
-                    bar.close()
-                    raise self.interrupted(stop.signal)
+        for batch in self.reader.batches(st.pass_index, st.position, sizes=self.batch_sizes()):
+            if self.take(batch):
+                self.save_checkpoint()
+            bar.update(batch.n_rows)
+            if time.monotonic() - shown > 0.5:
+                bar.set_postfix_str(self.progress_text())
+                shown = time.monotonic()
+            if stop.signal is not None:
+                bar.close()
+                raise self.interrupted(stop.signal)
         bar.close()
 
     def finish_pass(self, train_seconds: float, fitted: dict | None = None) -> None:

@@ -9,23 +9,10 @@ dense step s. Its inner products come from a small matrix of s_i.y_k kept up to 
 (:func:`record_pair`), so the dense work is two passes over memory shared by all cores, each reading
 every stored s once. Weights are float64; the stored steps and the direction are in the pairs'
 storage dtype (float32 by default). Parallel kernels are called from Python only.
-
-Their threads are numba's OpenMP layer; unless the environment says otherwise, this module sets
-``GOMP_SPINCOUNT=30000`` before the first parallel call loads the OpenMP runtime (GNU libgomp, which
-numba's wheels use on Linux): a worker spins about 30,000 times waiting for the next pass, then sleeps,
-instead of libgomp's default 300,000, so a waiting worker gives its core back sooner to the read-ahead
-thread (``trainer.reader.ahead``) or to another process. 1M-row passes of ``scripts/bench_train.py``'s
-log on this 2-core host, in-process, read inline / ahead: libgomp's default 2.05-2.59 / 2.01-2.64 s,
-30,000 spins 1.95-2.61 / 1.89-2.35 s (five runs each, interleaved); with a busy loop on one core, the
-default 4.27 / 3.66 s, 30,000 spins 3.92 / 3.62 s, 10,000 spins 2.99 / 2.69 s, no spinning
-(``OMP_WAIT_POLICY=PASSIVE``) 2.62 / 2.87 s, but passive workers cost 2.36-2.84 s idle, the wake-up
-of a sleeping worker at every pass: on a machine that other work keeps busy, ``OMP_WAIT_POLICY=PASSIVE``
-is the better setting (README, Performance).
 """
 
 from __future__ import annotations
 
-import os
 import time
 
 import numpy as np
@@ -34,7 +21,6 @@ from numba import njit, prange
 from trainer.kernels import VECTOR_MATH, dot
 from trainer.losses import dloss, loss
 
-os.environ.setdefault("GOMP_SPINCOUNT", "30000")
 
 #: Dense passes work on fixed chunks of this many coordinates (a chunk of every stored step fits in
 #: the per-core cache, so a pass reads each step from memory once) and add the chunks' partial sums
