@@ -197,11 +197,17 @@ def test_auto_run_trains_the_grid_and_records_what_it_narrowed(small_log, tmp_pa
 
 def test_memory_estimate_is_the_arrays_the_solver_and_average_allocate():
     # Reference: numpy's nbytes of the arrays a fresh OnlineLBFGS allocates (the stored steps, the
-    # direction, weights, curvature diagonal and batch bitmap) plus the trainer's float64 average.
+    # direction, weights, curvature diagonal and batch bitmap) plus the trainer's float64 average, and of
+    # the arrays of one value's full-batch pass over every bucket: the L-BFGS-B driver's and its bounds,
+    # and six float64 vectors of minimize's own.
+    from trainer.solvers.full_batch import LBFGSB
+
     n, history = 4096, 7
     s = OnlineLBFGS(n, "logistic", 1e-4, history=history)
     allocated = sum(a.nbytes for a in (s._S, s._q, s._x, s._diag, s._bits))
-    assert value_bytes(n, TrainOptions(history=history)) == allocated + 8 * (n + 1)
+    driver = LBFGSB(n + 1, history, 1e-15, 1e-12)
+    full = sum(a.nbytes for a in driver.arrays.values()) + sum(a.nbytes for a in driver._bounds) + 6 * 8 * (n + 1)
+    assert value_bytes(n, TrainOptions(history=history)) == allocated + 8 * (n + 1) + full
     assert value_bytes(n, TrainOptions(history=history, full_batch_memory=0)) == allocated
 
 

@@ -45,6 +45,7 @@ from trainer.model import Model, load_model
 from trainer.run_folder import l2_label
 from trainer.options import check_float
 from trainer.solvers import solver_bytes
+from trainer.solvers.full_batch import workspace_bytes
 from trainer.spec import Spec
 from trainer.training import TrainOptions, Trainer, TrainResult, _State, _StopFlag, fit_full_batch
 
@@ -139,7 +140,8 @@ def is_sweep(l2_strength) -> bool:
 def value_bytes(n_buckets: int, options: TrainOptions) -> int:
     """Bytes one value of a sweep keeps while it trains: its solver's state
     (:func:`trainer.solvers.solver_bytes`) and, in the default solver's phases, the iterate average
-    (n_buckets + 1 float64 values).
+    (n_buckets + 1 float64 values) and what its full-batch passes add
+    (:func:`trainer.solvers.full_batch.workspace_bytes`; the values' passes run in lockstep, all at once).
 
     Parameters
     ----------
@@ -152,8 +154,8 @@ def value_bytes(n_buckets: int, options: TrainOptions) -> int:
     -------
     int
     """
-    average = 8 * (n_buckets + 1) if options.phased else 0
-    return solver_bytes(options.solver, n_buckets, options.history) + average
+    phases = 8 * (n_buckets + 1) + workspace_bytes(n_buckets, options.history) if options.phased else 0
+    return solver_bytes(options.solver, n_buckets, options.history) + phases
 
 
 def memory_budget() -> int:
@@ -188,9 +190,9 @@ def check_budget(spec: Spec, options: TrainOptions, count: int) -> None:
     if count * each > budget:
         mb = 2**20
         raise UserError(f"--l2-strength: {count} values need about {count * each / mb:,.0f} MB for their "
-                        f"solvers ({each / mb:,.0f} MB each at {spec.n_buckets:,} buckets, --solver "
-                        f"{options.solver}, --history {options.history}), over the budget of "
-                        f"{budget / mb:,.0f} MB (half of this machine's physical memory); give fewer values, "
+                        f"solvers and full-batch passes ({each / mb:,.0f} MB each at {spec.n_buckets:,} "
+                        f"buckets, --solver {options.solver}, --history {options.history}), over the budget "
+                        f"of {budget / mb:,.0f} MB (half of this machine's physical memory); give fewer values, "
                         "fewer hashing bits or a smaller --history")
 
 

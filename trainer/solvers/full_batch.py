@@ -25,8 +25,8 @@ lost 30-50% while another process kept a core busy, so the pass keeps to one cor
 
 Memory: the in-memory log takes ``log_bytes(rows, entries)`` (int32 bucket and float64 value per
 entry, row pointer, label, row weight, margin and residual per row); while a pass runs, each value adds
-about 2 x ``history`` + 13 vectors of (distinct buckets + 1) float64 values (L-BFGS-B's workspace, the
-scaling, the last point and gradient, its column of the evaluation's weights and gradient sums).
+at most ``workspace_bytes(buckets, history)`` (L-BFGS-B's workspace and bounds, the scaling, the last
+point and gradient, its columns of the evaluation's weights and gradient sums, its start point).
 """
 
 from __future__ import annotations
@@ -62,6 +62,32 @@ def log_bytes(rows: int, entries: int) -> int:
         12 per entry, 48 per row, plus 8.
     """
     return 12 * entries + 48 * rows + 8
+
+
+def workspace_bytes(n_features: int, history: int) -> int:
+    """Bytes one value's full-batch pass allocates at most (a log that reaches every bucket).
+
+    Over size = n_features + 1 variables: :class:`LBFGSB`'s arrays (``u``, ``g``, ``wa`` of 2 x history + 5
+    vectors plus 11 history^2 + 8 history values, ``iwa`` of 3 int32 a variable) and bounds (two float64
+    vectors and one int32), then six float64 vectors of :func:`minimize`'s own (the scaling, the last
+    point and gradient, the value's columns of the evaluation's weights and gradient sums, the start
+    point), and the routine's small fixed arrays.
+
+    Parameters
+    ----------
+    n_features : int
+        Buckets.
+    history : int
+        L-BFGS-B's memory.
+
+    Returns
+    -------
+    int
+    """
+    size, m = n_features + 1, history
+    float64s = (2 * m + 5 + 2 + 2 + 6) * size + 11 * m * m + 8 * m + 29 + 1
+    int32s = 4 * size + 2 + 2 + 4 + 44
+    return 8 * float64s + 4 * int32s
 
 
 @dataclass
