@@ -122,8 +122,8 @@ def test_fingerprints_match_fnv1a_vectors():
     off = np.array([0, 0, 1, 7])
     got = fingerprints(np.zeros(0, np.uint8), buf, off, np.array([0, 1, 2]))
     assert [int(h) for h in got] == [0xcbf29ce484222325, 0xaf63dc4c8601ec8c, 0x85944171f73967e8]
-    prefixed = fingerprints(np.frombuffer(b"foo", np.uint8), np.frombuffer(b"bar", np.uint8), np.array([0, 3]),
-                            np.array([0]))
+    prefix, rest = np.frombuffer(b"foo", np.uint8), np.frombuffer(b"bar", np.uint8)
+    prefixed = fingerprints(prefix, rest, np.array([0, 3]), np.array([0]))
     assert int(prefixed[0]) == 0x85944171f73967e8
 
 

@@ -192,8 +192,8 @@ def check_budget(spec: Spec, options: TrainOptions, count: int) -> None:
         raise UserError(f"--l2-strength: {count} values need about {count * each / mb:,.0f} MB for their "
                         f"solvers and full-batch passes ({each / mb:,.0f} MB each at {spec.n_buckets:,} "
                         f"buckets, --solver {options.solver}, --history {options.history}), over the budget "
-                        f"of {budget / mb:,.0f} MB (half of this machine's physical memory); give fewer values, "
-                        "fewer hashing bits or a smaller --history")
+                        f"of {budget / mb:,.0f} MB (half of this machine's physical memory); "
+                        "give fewer values, fewer hashing bits or a smaller --history")
 
 
 def l2_values(l2_strength) -> tuple[float, ...]:

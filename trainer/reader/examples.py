@@ -81,9 +81,10 @@ class BucketExamples:
     -----
     A token met again in a later chunk (or pass) is the common case; it is recognized by the
     :func:`fingerprints` of the tokens recorded in this process (a hash set of at least 2 x
-    ``max_values`` slots) without decoding its text. A token whose fingerprint is new is decoded and compared with its bucket's texts,
-    so the values are those of comparing every text (two tokens with the same 64-bit fingerprint in one
-    bucket would keep one of them: about 2^-64 a pair).
+    ``max_values`` slots) without decoding its text. A token whose fingerprint is new is decoded and
+    compared with its bucket's texts, so the values are those of comparing every text, unless a new
+    token shares its 64-bit fingerprint with a recorded one (then it is skipped): with 100,000 values
+    and a million lookups, about 5e-9 a run.
     """
 
     def __init__(self, n_buckets: int, per_bucket: int = 2, max_rows: int = 131_072,
@@ -92,7 +93,7 @@ class BucketExamples:
         self.total = 0
         self.values: dict[str, list[str]] = values or {}
         self.count = np.zeros(n_buckets, dtype=np.uint8)
-        self.seen = np.zeros(1 << max(int(2 * max_values - 1).bit_length(), 4), dtype=np.uint64)
+        self._seen = np.zeros(1 << max(int(2 * max_values - 1).bit_length(), 4), dtype=np.uint64)
         for b, v in self.values.items():
             self.count[int(b)] = len(v)
             self.total += len(v)
@@ -133,7 +134,7 @@ class BucketExamples:
         first = first[: max(self.max_values - self.total, 0)]
         ids, b = ids[first], b[first]
         prints = fingerprints(tok.prefix, tok.buf, tok.off, ids)
-        fresh = ~_probe(self.seen, prints, False)
+        fresh = ~_probe(self._seen, prints, False)
         ids, b, prints = ids[fresh], b[fresh], prints[fresh]
         if ids.shape[0] == 0:
             return
@@ -148,7 +149,7 @@ class BucketExamples:
                 kept[i] = True
         self.count[b[kept]] += 1
         self.total += int(kept.sum())
-        _probe(self.seen, prints[kept], True)
+        _probe(self._seen, prints[kept], True)
 
 
 def _readable(text: str) -> str:

@@ -6,9 +6,9 @@ pass runs scipy's L-BFGS-B ("A Limited Memory Algorithm for Bound Constrained Op
 Journal on Scientific Computing 16, 1995; "Algorithm 778: L-BFGS-B", ACM Transactions on
 Mathematical Software 23, 1997), without bounds, from the current weights, with the objective and
 its gradient computed by the project's serial numba kernels (margins, residuals, gradient scatter in
-one pass over the rows), so the same rows and starting weights give the same weights bit for bit. Each pass starts a fresh
-L-BFGS-B memory, so a pass depends only on the weights it starts from: a run resumed at a pass
-boundary repeats exactly what the uninterrupted run did.
+one pass over the rows), so the same rows and starting weights give the same weights bit for bit.
+Each pass starts a fresh L-BFGS-B memory, so a pass depends only on the weights it starts from: a run
+resumed at a pass boundary repeats exactly what the uninterrupted run did.
 
 Several values of a sweep (:mod:`trainer.sweep`) run their passes together (:func:`minimize`): each
 value's L-BFGS-B is driven call by call through scipy's reverse-communication routine (:class:`LBFGSB`),
