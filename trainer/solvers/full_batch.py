@@ -64,32 +64,6 @@ def log_bytes(rows: int, entries: int) -> int:
     return 12 * entries + 48 * rows + 8
 
 
-def workspace_bytes(n_features: int, history: int) -> int:
-    """Bytes one value's full-batch pass allocates at most (a log that reaches every bucket).
-
-    Over size = n_features + 1 variables: :class:`LBFGSB`'s arrays (``u``, ``g``, ``wa`` of 2 x history + 5
-    vectors plus 11 history^2 + 8 history values, ``iwa`` of 3 int32 a variable) and bounds (two float64
-    vectors and one int32), then six float64 vectors of :func:`minimize`'s own (the scaling, the last
-    point and gradient, the value's columns of the evaluation's weights and gradient sums, the start
-    point), and the routine's small fixed arrays.
-
-    Parameters
-    ----------
-    n_features : int
-        Buckets.
-    history : int
-        L-BFGS-B's memory.
-
-    Returns
-    -------
-    int
-    """
-    size, m = n_features + 1, history
-    float64s = (2 * m + 5 + 2 + 2 + 6) * size + 11 * m * m + 8 * m + 29 + 1
-    int32s = 4 * size + 2 + 2 + 4 + 44
-    return 8 * float64s + 4 * int32s
-
-
 @dataclass
 class InMemoryLog:
     """The hashed rows of one pass as one CSR matrix with labels and row weights.
@@ -151,8 +125,8 @@ class InMemoryLog:
             entries += b.indices.shape[0]
             if log_bytes(rows, entries) > budget_bytes:
                 return None
-            parts.append((b.indptr[1:] - b.indptr[0], b.indices.astype(np.int32, copy=False), b.data, b.labels,
-                          b.weights))
+            parts.append((b.indptr[1:] - b.indptr[0], b.indices.astype(np.int32, copy=False), b.data,
+                          b.labels, b.weights))
         indptr = np.zeros(rows + 1, dtype=np.int64)
         at, offset = 1, 0
         for ptr, idx, _, _, _ in parts:
@@ -222,13 +196,34 @@ class LBFGSB:
 
     def __init__(self, size: int, history: int, ftol: float, gtol: float):
         self.history, self.factr, self.gtol = history, ftol / np.finfo(float).eps, gtol
+        shapes = self.shapes(size, history)
+        self.arrays = {k: np.zeros(() if k == "f" else length, dtype)
+                       for k, (length, dtype) in shapes.items() if not k.startswith("bound")}
+        self._bounds = tuple(np.zeros(*shapes[k]) for k in ("bound_lo", "bound_hi", "bound_kind"))
+
+    @staticmethod
+    def shapes(size: int, history: int) -> dict:
+        """Length and dtype of each array the routine takes, for ``size`` variables: the state (``arrays``,
+        ``f`` a 0-d array) and the bounds (``bound_*``, all zero: no bounds).
+
+        Parameters
+        ----------
+        size : int
+            Variables.
+        history : int
+            Correction pairs.
+
+        Returns
+        -------
+        dict of str to (int, type)
+        """
         m = history
-        self.arrays = {"u": np.zeros(size), "f": np.zeros(()), "g": np.zeros(size),
-                       "wa": np.zeros(2 * m * size + 5 * size + 11 * m * m + 8 * m),
-                       "iwa": np.zeros(3 * size, np.int32), "task": np.zeros(2, np.int32),
-                       "ln_task": np.zeros(2, np.int32), "lsave": np.zeros(4, np.int32),
-                       "isave": np.zeros(44, np.int32), "dsave": np.zeros(29)}
-        self._bounds = (np.zeros(size), np.zeros(size), np.zeros(size, np.int32))
+        return {"u": (size, np.float64), "f": (1, np.float64), "g": (size, np.float64),
+                "wa": (2 * m * size + 5 * size + 11 * m * m + 8 * m, np.float64), "iwa": (3 * size, np.int32),
+                "task": (2, np.int32), "ln_task": (2, np.int32), "lsave": (4, np.int32),
+                "isave": (44, np.int32),
+                "dsave": (29, np.float64), "bound_lo": (size, np.float64), "bound_hi": (size, np.float64),
+                "bound_kind": (size, np.int32)}
 
     @property
     def task(self) -> int:
@@ -262,6 +257,29 @@ class LBFGSB:
             ``MAX_ITERATIONS`` or ``MAX_EVALUATIONS``.
         """
         self.arrays["task"][:] = (self.STOP, reason)
+
+
+def workspace_bytes(n_features: int, history: int) -> int:
+    """Bytes one value's full-batch pass allocates at most (a log that reaches every bucket).
+
+    Over n_features + 1 variables: :class:`LBFGSB`'s arrays and bounds (:meth:`LBFGSB.shapes`), then six
+    float64 vectors of :func:`minimize`'s own (the scaling, the last point and gradient, the value's
+    columns of the evaluation's weights and gradient sums, the start point).
+
+    Parameters
+    ----------
+    n_features : int
+        Buckets.
+    history : int
+        L-BFGS-B's memory.
+
+    Returns
+    -------
+    int
+    """
+    size = n_features + 1
+    driver = sum(length * np.dtype(dtype).itemsize for length, dtype in LBFGSB.shapes(size, history).values())
+    return driver + 6 * 8 * size
 
 
 @dataclass
@@ -408,5 +426,6 @@ def minimize(log: InMemoryLog, code: int, l2s, xs, *, history: int = 10,
 def _summary(p: _Problem, iterations: int, seconds: float, stopped: bool) -> dict:
     """The summary :func:`minimize` returns for one value (``iterations``: the limit)."""
     converged = p.solver.task == LBFGSB.CONVERGED and p.iterations < iterations
-    return {"iterations": p.iterations, "evaluations": p.evaluations, "objective": float(p.solver.arrays["f"]),
+    return {"iterations": p.iterations, "evaluations": p.evaluations,
+            "objective": float(p.solver.arrays["f"]),
             "converged": converged, "stopped": stopped, "seconds": seconds}
