@@ -13,7 +13,7 @@ import pytest
 from trainer.errors import UserError
 from trainer.api import export
 from trainer.cli import format_inspect
-from trainer.model import Model, inspect_model, load_model, shared_bucket_share
+from trainer.model import ExampleTexts, Model, inspect_model, load_model, shared_bucket_share
 from trainer.reader import Reader
 from trainer.spec import load_spec, parse_spec
 
@@ -47,6 +47,22 @@ def test_save_load_round_trip_is_exact(tmp_path):
     assert back.info["examples"] == {"7": ["shop\x1fshop-1"]} and back.info["negative_keep_rate"] == 0.25
     assert back.info["holdout"] == {"log_loss": 0.31, "auc": None}  # NaN is stored as null (strict JSON)
     assert not list(tmp_path.glob("m/.*"))  # no temporary files left behind
+
+
+def test_model_json_holds_the_examples_as_the_json_module_encodes_them(tmp_path):
+    # reference: Python's json module encoding the whole document with the examples in place, which
+    # Model.save splices in from ExampleTexts' cached text; a spec text holding the slot's own string
+    # must stay as it is
+    examples = {"7": ["shop=caf\u00e9 & \"x\"", "tags=\x00examples\x00"], "12": []}
+    spec = {**SPEC.raw, "label": {"column": "\x00examples\x00"}}
+    m = make_model(parse_spec(spec), info={"examples": examples})
+    assert isinstance(m.info["examples"], ExampleTexts)
+    m.save(tmp_path / "m")
+    meta = json.loads((tmp_path / "m" / "model.json").read_text())
+    assert meta["info"]["examples"] == examples and meta["spec"] == spec
+    assert load_model(tmp_path / "m").info["examples"] == examples
+    shared = ExampleTexts(examples)
+    assert make_model(SPEC, info={"examples": shared}).info["examples"] is shared
 
 
 def test_export_round_trip_and_weights_layout(tmp_path):

@@ -17,6 +17,7 @@ import pytest
 from scipy.special import expit
 
 from trainer import api
+from trainer.checkpoint import load_checkpoint
 from trainer.cli import main
 from trainer.model import load_model
 from trainer.reader import Reader, parse_day
@@ -121,6 +122,8 @@ def test_sweep_killed_and_resumed_is_bit_identical(log_with_holdout, tmp_path, e
     proc = kill_after_first_checkpoint(sweep_args(root, spec, cut, "--checkpoint-every", every), cut)
     assert proc.returncode == -signal.SIGKILL, "the run finished before it could be stopped"
     assert main(sweep_args(root, spec, cut, "--checkpoint-every", every, "--resume")) == 0
+    arrays, _ = load_checkpoint(cut / "checkpoint.bin")  # after a full-batch pass: each value's weights alone
+    assert sorted(arrays) == [f"l2/{l2_label(v)}/weights" for v in (1e-2, 1e-4)]
     for value in (1e-4, 1e-2):
         a = load_model(ref / "l2" / l2_label(value))
         b = load_model(cut / "l2" / l2_label(value))
@@ -131,6 +134,23 @@ def test_sweep_killed_and_resumed_is_bit_identical(log_with_holdout, tmp_path, e
     ref_lines = [json.loads(x) for x in (ref / "metrics.jsonl").read_text().splitlines()]
     assert [x["holdout"] for x in lines] == [x["holdout"] for x in ref_lines]
     assert json.loads((cut / "progress.json").read_text()) == json.loads((ref / "progress.json").read_text())
+
+
+def test_sweep_resumed_from_its_weights_after_a_full_batch_pass_is_bit_identical(log_with_holdout, tmp_path):
+    # Reference: an uninterrupted 3-pass sweep of the same command (the resume contract); the 2-pass run's
+    # checkpoint holds each value's weights alone, from which pass 3 (full-batch) starts. Patience 3: no
+    # value stops early in either run.
+    root, spec = log_with_holdout
+    ref, cut = tmp_path / "ref", tmp_path / "cut"
+    assert main(sweep_args(root, spec, ref, "--epochs", "3", "--patience", "3")) == 0
+    assert main(sweep_args(root, spec, cut, "--patience", "3")) == 0
+    assert main(sweep_args(root, spec, cut, "--epochs", "3", "--patience", "3", "--resume")) == 0
+    for value in (1e-4, 1e-2):
+        a = load_model(ref / "l2" / l2_label(value))
+        b = load_model(cut / "l2" / l2_label(value))
+        assert np.array_equal(a.weights, b.weights) and a.intercept == b.intercept  # bit for bit
+    holdout = [json.loads(x)["holdout"] for x in (cut / "metrics.jsonl").read_text().splitlines()]
+    assert holdout == [json.loads(x)["holdout"] for x in (ref / "metrics.jsonl").read_text().splitlines()]
 
 
 def test_a_resume_with_other_values_is_refused(log_with_holdout, tmp_path, capsys):
@@ -197,9 +217,9 @@ def test_auto_run_trains_the_grid_and_records_what_it_narrowed(small_log, tmp_pa
 
 def test_memory_estimate_is_the_arrays_the_solver_and_average_allocate():
     # Reference: numpy's nbytes of the arrays a fresh OnlineLBFGS allocates (the stored steps, the
-    # direction, weights, curvature diagonal and batch bitmap) plus the trainer's float64 average, and of
-    # the arrays of one value's full-batch pass over every bucket: the L-BFGS-B driver's and its bounds,
-    # and six float64 vectors of minimize's own.
+    # direction, weights, curvature diagonal and batch bitmap) plus the float64 weights of the best pass's
+    # model and the trainer's float64 average, and of the arrays of one value's full-batch pass over every
+    # bucket: the L-BFGS-B driver's and its bounds, and six float64 vectors of minimize's own.
     from trainer.solvers.full_batch import LBFGSB
 
     n, history = 4096, 7
@@ -208,8 +228,9 @@ def test_memory_estimate_is_the_arrays_the_solver_and_average_allocate():
     driver = LBFGSB(n + 1, history, 1e-15, 1e-12)
     full = sum(a.nbytes for a in driver.arrays.values()) + sum(a.nbytes for a in driver._bounds)
     full += 6 * 8 * (n + 1)
-    assert value_bytes(n, TrainOptions(history=history)) == allocated + 8 * (n + 1) + full
-    assert value_bytes(n, TrainOptions(history=history, full_batch_memory=0)) == allocated
+    kept = np.zeros(n + 1).nbytes  # the best pass's model: a view of the weights-then-intercept copy
+    assert value_bytes(n, TrainOptions(history=history)) == allocated + kept + 8 * (n + 1) + full
+    assert value_bytes(n, TrainOptions(history=history, full_batch_memory=0)) == allocated + kept
 
 
 def test_report_of_a_sweep_draws_every_value_and_pass(small_log, tmp_path):

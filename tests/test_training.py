@@ -15,6 +15,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from trainer import api
+from trainer.checkpoint import load_checkpoint
 from trainer.cli import main
 from trainer.model import load_model
 
@@ -77,6 +78,24 @@ def test_resume_after_kill_is_bit_identical(log_4files, tmp_path, sig, every):
     assert [x["pass"] for x in lines] == [1, 2]
     assert [x["phase"] for x in lines] == ["online", "full-batch"]
     assert json.loads((cut / "run.json").read_text())["phases"] == json.loads((ref / "run.json").read_text())["phases"]
+
+
+def test_after_a_full_batch_pass_the_checkpoint_holds_the_weights_and_resumes_exactly(log_4files, tmp_path):
+    # Reference: an uninterrupted 4-pass run of the same command (the resume contract). After pass 2, the
+    # first full-batch pass, the checkpoint keeps the weights alone: the passes to come start from them.
+    data, spec = log_4files
+    ref, cut = tmp_path / "ref", tmp_path / "cut"
+    assert main(cli_args(spec, data, ref, "--epochs", "4")) == 0
+    assert main(cli_args(spec, data, cut, "--epochs", "2")) == 0
+    arrays, meta = load_checkpoint(cut / "checkpoint.bin")
+    assert list(arrays) == ["weights"] and arrays["weights"].shape == (2**SMALL_SPEC["hashing"]["bits"] + 1,)
+    assert meta["state"]["phase"] == "full-batch" and meta["state"]["pass_index"] == 2
+    assert main(cli_args(spec, data, cut, "--epochs", "4", "--resume")) == 0
+    w_ref, b_ref = weights_of(ref)
+    w_cut, b_cut = weights_of(cut)
+    assert np.array_equal(w_ref, w_cut) and b_ref == b_cut  # bit for bit
+    phases = [json.loads(x)["phase"] for x in (cut / "metrics.jsonl").read_text().splitlines()]
+    assert phases == ["online", "full-batch", "full-batch", "full-batch"]
 
 
 def test_resume_refusals_leave_checkpoint_untouched(log_4files, tmp_path, capsys):

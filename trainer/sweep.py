@@ -24,8 +24,8 @@ it is the best's neighbour on the grid (the best of later passes can still move 
 kept value lies at an edge of the values tried, the closing lines say so and suggest the grid
 centred on it (:func:`edge_note`).
 
-Memory: each value keeps its solver's state and iterate average (:func:`value_bytes`; 68 bytes a
-bucket for the default solver with history 10). A sweep whose values would take more than
+Memory: each value keeps its solver's state, iterate average, best pass's model and full-batch
+workspace (:func:`value_bytes`; 372 bytes a bucket at the default options). A sweep whose values would take more than
 ``BUDGET_SHARE`` of the machine's physical memory is refused before anything is read
 (:func:`check_budget`). While the holdout is scored, each value's metric accumulators add about
 28 MB.
@@ -41,7 +41,7 @@ from pathlib import Path
 
 from trainer.errors import Diverged, UserError
 from trainer.evaluation import evaluate_many
-from trainer.model import Model, load_model
+from trainer.model import Model
 from trainer.run_folder import l2_label
 from trainer.options import check_float
 from trainer.solvers import solver_bytes
@@ -139,9 +139,10 @@ def is_sweep(l2_strength) -> bool:
 
 def value_bytes(n_buckets: int, options: TrainOptions) -> int:
     """Bytes one value of a sweep keeps while it trains: its solver's state
-    (:func:`trainer.solvers.solver_bytes`) and, in the default solver's phases, the iterate average
-    (n_buckets + 1 float64 values) and what its full-batch passes add
-    (:func:`trainer.solvers.full_batch.workspace_bytes`; the values' passes run in lockstep, all at once).
+    (:func:`trainer.solvers.solver_bytes`), its best pass's model while the next pass runs (n_buckets + 1
+    float64 values) and, in the default solver's phases, the iterate average (as many) and what its
+    full-batch passes add (:func:`trainer.solvers.full_batch.workspace_bytes`; the values' passes run in
+    lockstep, all at once).
 
     Parameters
     ----------
@@ -155,7 +156,7 @@ def value_bytes(n_buckets: int, options: TrainOptions) -> int:
     int
     """
     phases = 8 * (n_buckets + 1) + workspace_bytes(n_buckets, options.history) if options.phased else 0
-    return solver_bytes(options.solver, n_buckets, options.history) + phases
+    return solver_bytes(options.solver, n_buckets, options.history) + 8 * (n_buckets + 1) + phases
 
 
 def memory_budget() -> int:
@@ -271,7 +272,7 @@ class _Lane(Trainer):
 
     It owns no folder, readers or checkpoint, so ``Trainer.__init__`` (which opens them) is not called;
     the sweep calls only its value methods (``take``, ``record_pass``, ``notes``, ``current_model``,
-    ``kept``, ``finished``, ``checkpoint_parts``, ``restore``), runs its full-batch passes with the
+    ``kept``, ``finish_in``, ``checkpoint_parts``, ``restore``), runs its full-batch passes with the
     others' (:func:`trainer.training.fit_full_batch`) and writes its files.
     """
 
@@ -281,6 +282,7 @@ class _Lane(Trainer):
         self.opt = dataclasses.replace(sweep.opt, l2_strength=value)
         self.reader, self.holdout = sweep.reader, sweep.holdout
         self._since_checkpoint = 0
+        self._written = None
         self._make_state()
 
     @property
@@ -292,6 +294,14 @@ class _Lane(Trainer):
     def examples(self):
         """The sweep's bucket examples."""
         return self.sweep.examples
+
+    def example_texts(self):
+        """The sweep's bucket examples as models hold them (one for all values)."""
+        return self.sweep.example_texts()
+
+    def from_weights(self) -> bool:
+        """Whether the sweep has run a full-batch pass (its state holds the phases)."""
+        return self.sweep.from_weights()
 
     @property
     def _point_rows(self) -> int:
@@ -426,6 +436,7 @@ class SweepTrainer(Trainer):
         for lane, model, holdout in zip(lanes, models, summaries):
             full = (fitted or {}).get(lane.value)
             record, improved = lane.record_pass(train_seconds, eval_seconds, full, holdout)
+            lane._written = model if improved else None  # as a run of the value alone, until its next pass
             if improved:
                 lane.kept(model, holdout).save(self.folder.value_folder(lane.value))
             records.append({"l2_strength": lane.value, **record})
@@ -471,10 +482,10 @@ class SweepTrainer(Trainer):
 
     def _load_checkpoint(self) -> None:
         arrays, meta = self._read_checkpoint()
+        self.state = _State.from_json(meta["state"])
         for lane, state in zip(self.lanes, meta["lanes"]):
             prefix = f"l2/{l2_label(lane.value)}/"
             lane.restore({k[len(prefix):]: v for k, v in arrays.items() if k.startswith(prefix)}, state)
-        self.state = _State.from_json(meta["state"])
         self.narrowed = list(meta["narrowed"])
         self._resumed(meta)
 
@@ -482,11 +493,7 @@ class SweepTrainer(Trainer):
 
     def _final_model(self) -> Model:
         """Finish every value's model in its folder, keep the best as the folder's model, say which."""
-        models = {}
-        for lane in self.lanes:
-            folder = self.folder.value_folder(lane.value)
-            models[lane.value] = lane.finished(load_model(folder))
-            models[lane.value].save(folder)
+        models = {lane.value: lane.finish_in(self.folder.value_folder(lane.value)) for lane in self.lanes}
         self.kept = min(self.lanes, key=lambda lane: _rank(lane.state.best_score))
         model = models[self.kept.value]
         self.folder.save_model(model)

@@ -66,7 +66,7 @@ from trainer.evaluation import evaluate
 from trainer.json_values import jsonable
 from trainer.kernels import blend_into
 from trainer.metrics import fit_platt
-from trainer.model import Model
+from trainer.model import ExampleTexts, Model, load_model
 from trainer.options import TrainOptions
 from trainer.reader.examples import BucketExamples
 from trainer.reader.stream import Position, Reader
@@ -351,6 +351,7 @@ class Trainer:
         self.folder = RunFolder(out)
         self.resume = resume
         self.examples = BucketExamples(spec.n_buckets)
+        self._texts = None
         self._saved: tuple[int, int] | None = None
         self._written: Model | None = None  # the model finish_pass just wrote, until another pass starts
         self.memory = None
@@ -516,11 +517,14 @@ class Trainer:
         UserError
             When the solver's state was written with other settings.
         """
+        self.state = _State.from_json(state)
+        if self.from_weights():
+            self.solver.assign(arrays["weights"])
+            return
         self.solver.load_state({k[7:]: (v.item() if v.ndim == 0 else v)
                                 for k, v in arrays.items() if k.startswith("solver.")})
         if self.average is not None:
             self.average[:] = arrays["average"]
-        self.state = _State.from_json(state)
 
     def _refused(self, exc: UserError) -> UserError:
         """After a UserError stopped the run: remove what a run without a checkpoint wrote (and the
@@ -564,17 +568,32 @@ class Trainer:
         self._since_checkpoint = 0
 
     def checkpoint_parts(self) -> tuple[dict, dict]:
-        """The solver, iterate average and training state as a checkpoint holds them.
+        """The solver, iterate average and training state as a checkpoint holds them; once a full-batch
+        pass has run, the weights alone (:meth:`from_weights`).
 
         Returns
         -------
         tuple of (dict of str to numpy.ndarray, dict)
             The arrays (views of the live state, valid until the next step) and the state as JSON.
         """
+        if self.from_weights():
+            return {"weights": self.solver.state(copy=False)["x"]}, self.state.to_json()
         arrays = {f"solver.{k}": np.asarray(v) for k, v in self.solver.state(copy=False).items()}
         if self.average is not None:
             arrays["average"] = self.average
         return arrays, self.state.to_json()
+
+    def from_weights(self) -> bool:
+        """Whether a full-batch pass has run: every pass to come is one, and starts from the weights
+        alone, so the solver's own memory and the iterate average are not used again (at 2^20 buckets
+        and history 10, a checkpoint of 8 MB instead of 71 MB).
+
+        Returns
+        -------
+        bool
+        """
+        st = self.state
+        return st.phase == "full-batch" and st.phases[-1]["from_pass"] <= st.pass_index
 
     # -- the model --------------------------------------------------------------------------------
 
@@ -611,8 +630,20 @@ class Trainer:
                             "steps": self.state.steps, "step0": self.solver.step0, "data": self.data,
                             "holdout_data": self.holdout_path,
                             "stopped_early": self.state.stopped_early, "best_pass": self.state.best_pass},
-                "holdout": holdout, "calibration": None, "examples": self.examples.values}
+                "holdout": holdout, "calibration": None, "examples": self.example_texts()}
         return Model(self.spec, weights, intercept, self.opt.loss, info)
+
+    def example_texts(self) -> ExampleTexts:
+        """The bucket examples as models hold them, made again only once new values were recorded.
+
+        Returns
+        -------
+        trainer.model.ExampleTexts
+        """
+        ex = self.examples
+        if self._texts is None or self._texts[0] is not ex or self._texts[1] != ex.total:
+            self._texts = (ex, ex.total, ExampleTexts(ex.values))
+        return self._texts[2]
 
     # -- the loop ---------------------------------------------------------------------------------
 
@@ -1044,17 +1075,31 @@ class Trainer:
                                    f"--full-batch-memory {self.opt.full_batch_memory} MB")
 
     def _final_model(self) -> Model:
-        """The run's model, with its final summary, saved in the folder: the solver's current one
+        """The run's model (:meth:`finish_in`) in the folder."""
+        return self.finish_in(self.folder.path)
+
+    def finish_in(self, folder: Path) -> Model:
+        """The run's model, with its final summary, saved in ``folder``: the solver's current one
         without a holdout, else the best pass's (still in memory when the last pass was the best, else
-        read back); not written again when model.json already holds it as it is."""
+        read back from ``folder``); not written again when ``folder`` already holds it as it is.
+
+        Parameters
+        ----------
+        folder : Path
+            The model folder the passes wrote.
+
+        Returns
+        -------
+        Model
+        """
         if self.holdout is None:
             model, saved = self.current_model(), False
         else:
-            model = self._written or self.folder.load_model()
+            model = self._written or load_model(folder)
             saved = all(model.info["summary"].get(k) == v for k, v in self._final_summary().items())
         final = self.finished(model)
         if final is not model or not saved:
-            self.folder.save_model(final)
+            final.save(folder)
         return final
 
     def _final_summary(self) -> dict:
