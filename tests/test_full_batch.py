@@ -5,6 +5,7 @@ several values in lockstep is scipy's L-BFGS-B run on each alone."""
 
 import json
 
+import numba
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
@@ -173,12 +174,13 @@ def _scipy_pass(log, code, l2, x, iterations):
 
 
 @pytest.mark.parametrize("loss", LOSSES)
-@pytest.mark.parametrize("iterations", [8, 30])
-def test_values_in_lockstep_are_each_scipys_l_bfgs_b_bit_for_bit(loss, iterations):
+@pytest.mark.parametrize("iterations,threads", [(8, 1), (30, 1), (30, 2)])
+def test_values_in_lockstep_are_each_scipys_l_bfgs_b_bit_for_bit(loss, iterations, threads):
     # Reference: scipy.optimize.minimize(method="L-BFGS-B") on each value alone ("Algorithm 778:
     # L-BFGS-B", ACM TOMS 23, 1997), with the pass's scaling and options: the same weights bit for bit,
-    # iterations, evaluations (minimize's nfev), objective and convergence. The strong values converge in
-    # a few iterations and leave the lockstep while the others go on.
+    # iterations, evaluations (minimize's nfev), objective and convergence, whether the values' evaluations
+    # run on one thread or are split over two. The strong values converge in a few iterations and leave
+    # the lockstep while the others go on.
     rng = np.random.default_rng(17)
     log = _in_memory_log(rng)
     code = loss_code(loss)
@@ -186,7 +188,12 @@ def test_values_in_lockstep_are_each_scipys_l_bfgs_b_bit_for_bit(loss, iteration
     x0[rng.integers(0, 300, 40)] = rng.normal(scale=0.3, size=40)
     l2s = [1e-4, 1e-3, 3e-2, 1.0, 1e3]
     xs = [x0.copy() for _ in l2s]
-    fitted = full_batch.minimize(log, code, l2s, xs, iterations=iterations)
+    before = numba.get_num_threads()
+    numba.set_num_threads(min(threads, numba.config.NUMBA_NUM_THREADS))
+    try:
+        fitted = full_batch.minimize(log, code, l2s, xs, iterations=iterations)
+    finally:
+        numba.set_num_threads(before)
     assert len({f["iterations"] for f in fitted}) > 1
     for l2, x, f in zip(l2s, xs, fitted):
         ref, res = _scipy_pass(log, code, l2, x0, iterations)
@@ -197,6 +204,15 @@ def test_values_in_lockstep_are_each_scipys_l_bfgs_b_bit_for_bit(loss, iteration
         one, = full_batch.minimize(log, code, [l2], [alone], iterations=iterations)
         assert one["iterations"] == res.nit
         assert np.array_equal(alone, x)
+
+
+def test_values_are_split_over_threads_in_groups_of_nearly_equal_size():
+    # Reference: the documented rule of groups (min(count, threads) consecutive groups, sizes differing
+    # by at most one, larger first), worked by hand.
+    assert full_batch.groups(5, 2) == [slice(0, 3), slice(3, 5)]
+    assert full_batch.groups(1, 2) == [slice(0, 1)]
+    assert full_batch.groups(8, 3) == [slice(0, 3), slice(3, 6), slice(6, 8)]
+    assert full_batch.groups(4, 1) == [slice(0, 4)]
 
 
 def test_a_stop_after_an_iteration_leaves_every_value_unchanged():

@@ -208,11 +208,14 @@ def test_objectives_of_k_models_match_dense_algebra_and_the_one_model_kernels(lo
     code = loss_code(loss)
     slot = np.empty(batch.indices.shape[0], dtype=np.int32)
     cols = batch_support(batch.indices, np.zeros(1, dtype=np.uint64), slot)
-    W = np.ascontiguousarray(rng.normal(size=(cols.shape[0], k)))
+    W = rng.normal(size=(cols.shape[0], k))
     b = rng.normal(size=k)
-    G, loss_sums, r_sums = np.empty_like(W), np.empty(k), np.empty(k)
-    weight_sum = objectives_into(code, batch.indptr, slot, batch.data, batch.labels, batch.weights, W,
-                                 tuple(b), G, loss_sums, r_sums)
+    WG = np.concatenate([W, np.full_like(W, np.nan)], axis=1)
+    loss_sums, r_sums = np.empty(k), np.empty(k)
+    weight_sum = objectives_into(code, batch.indptr, slot, batch.data, batch.labels, batch.weights, WG,
+                                 tuple(b), loss_sums, r_sums)
+    assert np.array_equal(WG[:, :k], W)
+    G = WG[:, k:]
     X = batch_csr(batch, n).toarray()[:, cols]
     Z = X @ W + b
     c, y = batch.weights, batch.labels

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import numpy as np
 from numba import njit, types
+from numba.cpython.unsafe.tuple import tuple_setitem
 from numba.extending import intrinsic
 
 from trainer.losses import d2loss, dloss, loss, loss_dloss
@@ -152,14 +153,16 @@ OBJECTIVE_BLOCK = 256
 
 
 @njit(cache=True, nogil=True)
-def objectives_into(code, indptr, slot, data, labels, weights, W, b, G, loss_sums, r_sums):
+def objectives_into(code, indptr, slot, data, labels, weights, WG, b, loss_sums, r_sums):
     """Loss sums and compact gradient sums of K models in one pass over the rows, block by block.
 
-    Model k has the compact weights ``W[:, k]`` (one row per distinct bucket, :func:`batch_support`) and
-    the intercept ``b[k]``; the K weights of a bucket are adjacent in memory, so each entry's K margins
-    and K gradient terms touch one cache line. Row by row, each model's margin z_ik, residual
-    r_ik = c_i l'(y_i, z_ik) and sums are those of :func:`margins_into`, :func:`residuals_into` and
-    :func:`scatter_compact` (scale 1), added in the same order: model k's results equal theirs bit for bit.
+    Model k has the compact weights ``WG[:, k]`` (one row per distinct bucket, :func:`batch_support`) and
+    the intercept ``b[k]``; its gradient sums go to ``WG[:, K + k]``, so each entry's K weights and K
+    gradient sums lie side by side, the sums in the lines its weights brought into the cache. A row's K
+    margins and residuals are kept in a tuple (registers, where a small array would be stored and loaded
+    again at each entry). Row by row, each model's margin z_ik, residual r_ik = c_i l'(y_i, z_ik) and
+    sums are those of :func:`margins_into`, :func:`residuals_into` and :func:`scatter_compact` (scale 1),
+    added in the same order: model k's results equal theirs bit for bit, for any K.
 
     Parameters
     ----------
@@ -169,13 +172,12 @@ def objectives_into(code, indptr, slot, data, labels, weights, W, b, G, loss_sum
         The rows: int64 offsets, per entry its slot among the distinct buckets, float64 values.
     labels, weights : numpy.ndarray
         0/1 labels y_i and row weights c_i.
-    W : numpy.ndarray
-        float64 (m, K) weights, C order.
+    WG : numpy.ndarray
+        float64 (m, 2K), C order: the K models' weights, then their gradient sums, overwritten:
+        WG[p, K + k] = sum over entries of slot p of r_ik * data.
     b : tuple of float
-        The K intercepts. A tuple's length is part of its type, so each K is compiled with loops of a
-        known length over the models (twice as fast for K = 1 as a length read from an array).
-    G : numpy.ndarray
-        float64 (m, K), overwritten: G[p, k] = sum over entries of slot p of r_ik * data.
+        The K intercepts. A tuple's length is part of its type, so each K is compiled with its loops
+        over the models of known length, unrolled.
     loss_sums, r_sums : numpy.ndarray
         float64 (K,), overwritten: sum_i c_i l(y_i, z_ik) and sum_i r_ik.
 
@@ -187,39 +189,40 @@ def objectives_into(code, indptr, slot, data, labels, weights, W, b, G, loss_sum
     n_models = len(b)
     n_rows = indptr.shape[0] - 1
     z = np.empty((OBJECTIVE_BLOCK, n_models))
-    G[:, :] = 0.0
+    WG[:, n_models:] = 0.0
     loss_sums[:] = 0.0
     r_sums[:] = 0.0
     weight_sum = 0.0
     for start in range(0, n_rows, OBJECTIVE_BLOCK):
         stop = min(start + OBJECTIVE_BLOCK, n_rows)
         for i in range(start, stop):
-            zi = z[i - start]
-            for k in range(n_models):
-                zi[k] = b[k]
+            zi = b
             for e in range(indptr[i], indptr[i + 1]):
                 p = slot[e]
                 v = data[e]
                 for k in range(n_models):
-                    zi[k] += v * W[p, k]
+                    zi = tuple_setitem(zi, k, zi[k] + v * WG[p, k])
+            for k in range(n_models):
+                z[i - start, k] = zi[k]
         for i in range(start, stop):
-            zi = z[i - start]
             c = weights[i]
             y = labels[i]
             for k in range(n_models):
-                value, slope = loss_dloss(code, y, zi[k])
+                value, slope = loss_dloss(code, y, z[i - start, k])
                 loss_sums[k] += c * value
                 rk = c * slope
-                zi[k] = rk
+                z[i - start, k] = rk
                 r_sums[k] += rk
             weight_sum += c
         for i in range(start, stop):
-            ri = z[i - start]
+            ri = b
+            for k in range(n_models):
+                ri = tuple_setitem(ri, k, z[i - start, k])
             for e in range(indptr[i], indptr[i + 1]):
                 p = slot[e]
                 v = data[e]
                 for k in range(n_models):
-                    G[p, k] += ri[k] * v
+                    WG[p, n_models + k] += ri[k] * v
     return weight_sum
 
 

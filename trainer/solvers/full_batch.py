@@ -32,8 +32,11 @@ point and gradient, its columns of the evaluation's weights and gradient sums, i
 from __future__ import annotations
 
 import time
+from concurrent.futures import ThreadPoolExecutor
+from contextlib import nullcontext
 from dataclasses import dataclass
 
+import numba
 import numpy as np
 
 from trainer.kernels import (batch_support, dot, margins_into, objectives_into, residuals_curvatures_into,
@@ -307,27 +310,60 @@ class _Problem:
         return True
 
 
-def _evaluate(log: InMemoryLog, code: int, problems: list[_Problem], W: np.ndarray, G: np.ndarray) -> None:
-    """Write each problem's objective and scaled gradient at its point, all from one pass over the rows
-    (:func:`trainer.kernels.objectives_into`); ``W`` and ``G`` are scratch of at least m x len(problems)."""
-    m, k = log.cols.shape[0], len(problems)
-    W, G = W[: m * k].reshape(m, k), G[: m * k].reshape(m, k)
+def _evaluate(log: InMemoryLog, code: int, problems: list[_Problem], scratch: np.ndarray, pool,
+              threads: int) -> None:
+    """Write each problem's objective and scaled gradient at its point, from one pass over the rows per
+    group of :func:`groups` (:func:`trainer.kernels.objectives_into`), the groups on the ``threads``
+    threads of ``pool`` (a ThreadPoolExecutor, None for one thread); ``scratch`` holds at least
+    m x 2 len(problems) float64 values."""
+    m = log.cols.shape[0]
     vs = [p.solver.arrays["u"] * p.scale for p in problems]
-    for j, v in enumerate(vs):
-        W[:, j] = v[:m]
-    loss_sums, r_sums = np.empty(k), np.empty(k)
-    weight_sum = objectives_into(code, log.indptr, log.slot, log.data, log.labels, log.weights, W,
-                                 tuple(float(v[m]) for v in vs), G, loss_sums, r_sums)
-    for j, (p, v) in enumerate(zip(problems, vs)):
+    loss_sums, r_sums = np.empty(len(problems)), np.empty(len(problems))
+    calls, grads = [], []
+    for part in groups(len(problems), threads):
+        k = part.stop - part.start
+        WG = scratch[2 * m * part.start: 2 * m * part.stop].reshape(m, 2 * k)
+        for j, v in enumerate(vs[part]):
+            WG[:, j] = v[:m]
+        grads += [WG[:, k + j] for j in range(k)]
+        calls.append((code, log.indptr, log.slot, log.data, log.labels, log.weights, WG,
+                      tuple(float(v[m]) for v in vs[part]), loss_sums[part], r_sums[part]))
+    if pool is None:
+        sums = [objectives_into(*args) for args in calls]
+    else:
+        sums = list(pool.map(lambda args: objectives_into(*args), calls))
+    weight_sum = sums[0]
+    for p, v, G, loss_sum, r_sum in zip(problems, vs, grads, loss_sums, r_sums):
         w, a = v[:m], p.solver.arrays
         g = a["g"]
-        g[:m] = G[:, j] * (1.0 / weight_sum)
+        g[:m] = G * (1.0 / weight_sum)
         g[:m] += p.l2 * w
-        g[m] = r_sums[j] / weight_sum
+        g[m] = r_sum / weight_sum
         g *= p.scale
-        a["f"][...] = loss_sums[j] / weight_sum + 0.5 * p.l2 * dot(w, w)
+        a["f"][...] = loss_sum / weight_sum + 0.5 * p.l2 * dot(w, w)
         p.evaluations += 1
         p.last = (a["u"].copy(), a["f"].copy(), g.copy())
+
+
+def groups(count: int, threads: int) -> list[slice]:
+    """How :func:`minimize` splits ``count`` values waiting for an evaluation over ``threads`` threads:
+    min(count, threads) consecutive groups, their sizes differing by at most one (larger first).
+
+    Parameters
+    ----------
+    count : int
+        Values (>= 1).
+    threads : int
+        Threads (>= 1).
+
+    Returns
+    -------
+    list of slice
+    """
+    n = min(count, threads)
+    sizes = [count // n + (j < count % n) for j in range(n)]
+    bounds = np.cumsum([0, *sizes]).tolist()
+    return [slice(a, b) for a, b in zip(bounds[:-1], bounds[1:])]
 
 
 def minimize(log: InMemoryLog, code: int, l2s, xs, *, history: int = 10,
@@ -391,30 +427,32 @@ def minimize(log: InMemoryLog, code: int, l2s, xs, *, history: int = 10,
         solver = LBFGSB(m + 1, history, FTOL, GTOL)
         solver.arrays["u"][:] = v0 / scale
         problems.append(_Problem(l2, x, scale, solver))
-    W, G = np.empty(m * len(problems)), np.empty(m * len(problems))
-    active, max_evaluations = problems, 2 * iterations + 20
-    while active:
-        asking = []
-        for p in active:
-            task = p.solver.call()
-            while task == LBFGSB.NEW_POINT or (task == LBFGSB.EVALUATE and p.asks_again()):
-                if task == LBFGSB.NEW_POINT:
-                    p.iterations += 1
-                    if stop is not None and stop():
-                        return [_summary(q, iterations, time.perf_counter() - started, stopped=True)
-                                for q in problems]
-                    if p.iterations >= iterations:
-                        p.solver.halt(LBFGSB.MAX_ITERATIONS)
-                    elif p.evaluations > max_evaluations:
-                        p.solver.halt(LBFGSB.MAX_EVALUATIONS)
+    scratch = np.empty(2 * m * len(problems))
+    threads = min(len(problems), numba.get_num_threads())
+    with ThreadPoolExecutor(threads) if threads > 1 else nullcontext() as pool:
+        active, max_evaluations = problems, 2 * iterations + 20
+        while active:
+            asking = []
+            for p in active:
                 task = p.solver.call()
-            if task == LBFGSB.EVALUATE:
-                asking.append(p)
-            else:
-                p.seconds = time.perf_counter() - started
-        if asking:
-            _evaluate(log, code, asking, W, G)
-        active = asking
+                while task == LBFGSB.NEW_POINT or (task == LBFGSB.EVALUATE and p.asks_again()):
+                    if task == LBFGSB.NEW_POINT:
+                        p.iterations += 1
+                        if stop is not None and stop():
+                            return [_summary(q, iterations, time.perf_counter() - started, stopped=True)
+                                    for q in problems]
+                        if p.iterations >= iterations:
+                            p.solver.halt(LBFGSB.MAX_ITERATIONS)
+                        elif p.evaluations > max_evaluations:
+                            p.solver.halt(LBFGSB.MAX_EVALUATIONS)
+                    task = p.solver.call()
+                if task == LBFGSB.EVALUATE:
+                    asking.append(p)
+                else:
+                    p.seconds = time.perf_counter() - started
+            if asking:
+                _evaluate(log, code, asking, scratch, pool, threads)
+            active = asking
     for p in problems:
         u = p.solver.arrays["u"]
         p.x[:] = 0.0
