@@ -25,9 +25,9 @@ kept value lies at an edge of the values tried, the closing lines say so and sug
 centred on it (:func:`edge_note`).
 
 Memory: each value keeps its solver's state, iterate average, best pass's model and full-batch
-workspace (:func:`value_bytes`; 372 bytes a bucket at the default options). A sweep whose values would take more than
-``BUDGET_SHARE`` of the machine's physical memory is refused before anything is read
-(:func:`check_budget`). While the holdout is scored, each value's metric accumulators add about
+workspace (:func:`value_bytes`; 372 bytes a bucket at the default options). A sweep whose values
+would take more than ``BUDGET_SHARE`` of the machine's physical memory is refused before anything is
+read (:func:`check_budget`). While the holdout is scored, each value's metric accumulators add about
 28 MB.
 """
 

@@ -24,6 +24,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from trainer.errors import UserError
+from trainer.kernels import batch_support
 from trainer.reader._kernels import keep_uniform, take_rows
 from trainer.reader.buffers import index_array, valid_mask, values_of
 from trainer.reader.featurize import Featurizer, accepted_labels, parse_labels, parse_weights
@@ -89,6 +90,28 @@ class Batch:
     n_rows: int
     position: Position | None = None
     columns: pa.Table | None = None
+    _support: tuple | None = field(default=None, repr=False, compare=False)
+
+    def support(self, bits: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """The batch's distinct buckets and each entry's slot among them
+        (:func:`trainer.kernels.batch_support`), made on the first call and kept for the values of a sweep,
+        which step on this batch one after another.
+
+        Parameters
+        ----------
+        bits : numpy.ndarray
+            A zero uint64 scratch bitmap of one bit per bucket (zero again on return).
+
+        Returns
+        -------
+        tuple of numpy.ndarray
+            ``(cols, slot)``: int32 distinct buckets, ascending, and int32 position in ``cols`` of each
+            entry; shared by every caller, not to be changed.
+        """
+        if self._support is None:
+            slot = np.empty(self.indices.shape[0], dtype=np.int32)
+            self._support = (batch_support(self.indices, bits, slot), slot)
+        return self._support
 
 
 @dataclass(frozen=True)

@@ -27,7 +27,7 @@ from typing import Protocol
 import numpy as np
 
 from trainer.errors import Diverged, UserError
-from trainer.kernels import (batch_support, margins_into, residuals_curvatures_into, residuals_into,
+from trainer.kernels import (margins_into, residuals_curvatures_into, residuals_into,
                              scatter_compact, scatter_gradient_curvature)
 from trainer.losses import LOSS_NAMES, loss_code
 from trainer.options import SOLVER_NAMES, check_choice, check_float, check_int
@@ -300,9 +300,7 @@ class LinearSolver:
     def _gradient(self, batch, curvature: bool = False) -> BatchGradient:
         """Evaluate the batch at the current weights; raise ``Diverged`` when the result is non-finite."""
         self._check_batch(batch)
-        slot = np.empty(batch.indices.shape[0], dtype=np.int32)
-        cols = batch_support(batch.indices, self._bits, slot)
-        g = BatchGradient(batch, cols, slot)
+        g = BatchGradient(batch, *batch.support(self._bits))
         if not g.evaluate(self.code, self._x[: self.n], self._x[self.n], curvature):
             self._diverged("the loss or its gradient")
         return g
