@@ -37,7 +37,12 @@ import dataclasses
 import math
 import os
 import time
+from concurrent.futures import ThreadPoolExecutor, wait
+from contextlib import nullcontext
 from pathlib import Path
+
+import numba
+import numpy as np
 
 from trainer.errors import Diverged, UserError
 from trainer.evaluation import evaluate_many
@@ -337,6 +342,8 @@ class SweepTrainer(Trainer):
         check_budget(spec, options, len(self.values))
         self.auto = options.l2_strength == AUTO
         self.narrowed: list[float] = []
+        self._pool = None
+        self._bits = np.zeros((spec.n_buckets + 63) // 64, dtype=np.uint64)
         super().__init__(spec, data, out, options, holdout=holdout, resume=resume, force=force, quiet=quiet)
 
     def _make_state(self) -> None:
@@ -351,7 +358,8 @@ class SweepTrainer(Trainer):
     # -- the passes -------------------------------------------------------------------------------
 
     def take(self, batch) -> bool:
-        """Step every value still training on one batch, one after another, and count it.
+        """Step every value still training on one batch, one after another, and count it; on several
+        threads (:meth:`_one_pass`), the values' first gradients are computed side by side before.
 
         Parameters
         ----------
@@ -368,12 +376,25 @@ class SweepTrainer(Trainer):
         Diverged
             Naming the value whose step would make the loss, gradient or weights non-finite.
         """
-        for lane in self.stepping:
+        lanes = self.stepping
+        firsts = [None] * len(lanes)
+        if self._pool is not None:
+            batch.support(self._bits)
+            firsts = [self._pool.submit(lane.solver.first_gradient, batch) for lane in lanes]
+            wait(firsts)
+        for lane, first in zip(lanes, firsts):
             try:
-                lane.take(batch)
+                lane.take(batch, first)
             except Diverged as exc:
                 raise Diverged(f"--l2-strength {l2_label(lane.value)}: {exc}") from None
         return self.count(batch)
+
+    def _one_pass(self, stop: _StopFlag) -> None:
+        """An online pass (:meth:`trainer.training.Trainer._one_pass`), the values' first gradients of
+        each batch on numba's threads side by side, before their steps (one after another)."""
+        threads = min(len(self.stepping), numba.get_num_threads())
+        with ThreadPoolExecutor(threads) if threads > 1 else nullcontext() as self._pool:
+            super()._one_pass(stop)
 
     def progress_text(self) -> str:
         """The progress bar's note.

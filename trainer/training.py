@@ -785,13 +785,15 @@ class Trainer:
         return Diverged(f"{exc}; column '{name}' reaches {worst:.3g} in that batch: give it \"transform\": "
                         "\"log1p\" or \"edges\" in the spec")
 
-    def take(self, batch) -> bool:
+    def take(self, batch, first=None) -> bool:
         """Count one batch of the current pass and step the solver on it (:meth:`count`, :meth:`step`).
 
         Parameters
         ----------
         batch : trainer.reader.stream.Batch
             The pass's next batch.
+        first : concurrent.futures.Future, optional
+            See :meth:`step`.
 
         Returns
         -------
@@ -804,7 +806,7 @@ class Trainer:
             When the step would make the loss, gradient or weights non-finite.
         """
         due = self.count(batch)
-        self.step(batch)
+        self.step(batch, first)
         return due
 
     def count(self, batch) -> bool:
@@ -832,7 +834,7 @@ class Trainer:
         self._since_checkpoint += batch.n_rows
         return self._since_checkpoint >= self.opt.checkpoint_every
 
-    def step(self, batch) -> None:
+    def step(self, batch, first=None) -> None:
         """Step the solver on a batch :meth:`count` counted; add to the progressive loss, the progress
         curve and the iterate average.
 
@@ -840,6 +842,9 @@ class Trainer:
         ----------
         batch : trainer.reader.stream.Batch
             The batch.
+        first : concurrent.futures.Future, optional
+            Resolves to the solver's ``first_gradient`` of the batch, computed on another thread (a
+            sweep's values); else the step computes it.
 
         Raises
         ------
@@ -848,7 +853,7 @@ class Trainer:
         """
         st = self.state
         try:
-            loss = self.solver.step(batch)
+            loss = self.solver.step(batch, None if first is None else first.result())
         except Diverged as exc:
             raise self._diverged(exc, batch) from None
         w = float(batch.weights.sum())

@@ -48,13 +48,16 @@ class Solver(Protocol):
         """The intercept b (unregularized)."""
         ...
 
-    def step(self, batch) -> float:
+    def step(self, batch, first: BatchGradient | None = None) -> float:
         """One update from a batch.
 
         Parameters
         ----------
         batch : trainer.reader.stream.Batch
             The minibatch.
+        first : BatchGradient, optional
+            :meth:`first_gradient` of this batch at the current weights, when computed beforehand (a
+            sweep computes its values' side by side on threads); else the step computes it.
 
         Returns
         -------
@@ -296,6 +299,27 @@ class LinearSolver:
         if x.shape != self._x.shape or not np.isfinite(x).all():
             raise ValueError(f"weights must be {self._x.shape[0]} finite values; got shape {x.shape}")
         self._x[:] = x
+
+    def first_gradient(self, batch) -> BatchGradient:
+        """The batch's loss and gradient at the current weights, as :meth:`step` begins with them (with the
+        curvature where the method takes it). Serial kernels that release the GIL: the values of a sweep
+        compute theirs on threads side by side.
+
+        Parameters
+        ----------
+        batch : trainer.reader.stream.Batch
+            The minibatch.
+
+        Returns
+        -------
+        BatchGradient
+
+        Raises
+        ------
+        Diverged
+            When the loss or the gradient is non-finite.
+        """
+        return self._gradient(batch)
 
     def _gradient(self, batch, curvature: bool = False) -> BatchGradient:
         """Evaluate the batch at the current weights; raise ``Diverged`` when the result is non-finite."""

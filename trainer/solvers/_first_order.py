@@ -11,7 +11,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from trainer.solvers import LinearSolver
+from trainer.solvers import BatchGradient, LinearSolver
 
 RULE_SGD = 0
 RULE_ADAGRAD = 1
@@ -135,13 +135,15 @@ class FirstOrderSolver(LinearSolver):
     def _accumulators(self) -> np.ndarray:
         return _NO_ACCUMULATORS
 
-    def step(self, batch) -> float:
+    def step(self, batch, first: BatchGradient | None = None) -> float:
         """One update from a batch.
 
         Parameters
         ----------
         batch : trainer.reader.stream.Batch
             The minibatch.
+        first : BatchGradient, optional
+            :meth:`first_gradient` of this batch at the current weights, computed beforehand.
 
         Returns
         -------
@@ -155,7 +157,7 @@ class FirstOrderSolver(LinearSolver):
         ValueError
             For an empty batch or a bucket id out of range.
         """
-        g = self._gradient(batch)
+        g = first if first is not None else self.first_gradient(batch)
         step = self._step_size()
         acc = self._accumulators()
         m = g.cols.shape[0] + 1

@@ -126,7 +126,7 @@ import numpy as np
 from trainer.errors import UserError
 from trainer.kernels import dot, margins_into, scatter_compact
 from trainer.options import check_choice, check_float, check_int
-from trainer.solvers import LinearSolver, schedule
+from trainer.solvers import BatchGradient, LinearSolver, schedule
 from trainer.solvers._olbfgs_kernels import (CHUNK, chunk_pointers, commit_step, fold_diagonal, lbfgs_direction,
                                              line_loss, line_residuals, pair_products, record_pair)
 
@@ -256,13 +256,30 @@ class OnlineLBFGS(LinearSolver):
         """
         return super().dense_bytes(n_features) + (4 * (history + 1) + 8) * (n_features + 1)
 
-    def step(self, batch) -> float:
+    def first_gradient(self, batch) -> BatchGradient:
+        """The batch's loss, gradient and curvature at the current weights, as :meth:`step` begins
+        (see :meth:`trainer.solvers.LinearSolver.first_gradient`).
+
+        Parameters
+        ----------
+        batch : trainer.reader.stream.Batch
+            The minibatch.
+
+        Returns
+        -------
+        trainer.solvers.BatchGradient
+        """
+        return self._gradient(batch, curvature=True)
+
+    def step(self, batch, first: BatchGradient | None = None) -> float:
         """One oLBFGS update from a batch.
 
         Parameters
         ----------
         batch : trainer.reader.stream.Batch
             The minibatch.
+        first : BatchGradient, optional
+            :meth:`first_gradient` of this batch at the current weights, computed beforehand.
 
         Returns
         -------
@@ -285,7 +302,7 @@ class OnlineLBFGS(LinearSolver):
         clock = time.perf_counter
         started = clock()
         n = self.n
-        g0 = self._gradient(batch, curvature=True)
+        g0 = first if first is not None else self.first_gradient(batch)
         gcols = np.append(g0.cols, np.int32(n))
         gvals = np.append(g0.gsp, g0.gb)
         gptr = chunk_pointers(gcols, n + 1)

@@ -26,7 +26,7 @@ import scipy.linalg.blas
 from trainer.errors import UserError
 from trainer.kernels import margins_into, regularized_gradient, residuals_into, scatter_compact
 from trainer.options import check_float
-from trainer.solvers import LinearSolver, schedule
+from trainer.solvers import BatchGradient, LinearSolver, schedule
 
 MAX_FEATURES = 4096
 
@@ -108,13 +108,30 @@ class RES(LinearSolver):
         diag[n] += g0.hb
         return np.asfortranarray(np.diag(diag))
 
-    def step(self, batch) -> float:
+    def first_gradient(self, batch) -> BatchGradient:
+        """The batch's loss, gradient and curvature at the current weights, as :meth:`step` begins
+        (see :meth:`trainer.solvers.LinearSolver.first_gradient`).
+
+        Parameters
+        ----------
+        batch : trainer.reader.stream.Batch
+            The minibatch.
+
+        Returns
+        -------
+        trainer.solvers.BatchGradient
+        """
+        return self._gradient(batch, curvature=not self._started)
+
+    def step(self, batch, first: BatchGradient | None = None) -> float:
         """One RES update from a batch.
 
         Parameters
         ----------
         batch : trainer.reader.stream.Batch
             The minibatch.
+        first : BatchGradient, optional
+            :meth:`first_gradient` of this batch at the current weights, computed beforehand.
 
         Returns
         -------
@@ -130,7 +147,7 @@ class RES(LinearSolver):
             For an empty batch or a bucket id out of range.
         """
         n = self.n
-        g0 = self._gradient(batch, curvature=not self._started)
+        g0 = first if first is not None else self.first_gradient(batch)
         g = np.empty(n + 1, dtype=np.float64)
         regularized_gradient(self._x[:n], self.l2, g0.cols, g0.gsp, g0.gb, g)
         B = self._B if self._started else self._initial_matrix(g0)
