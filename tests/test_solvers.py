@@ -3,6 +3,8 @@ published data set, SGD on an ill-conditioned problem, and exact determinism/res
 
 from __future__ import annotations
 
+from concurrent.futures import ThreadPoolExecutor
+
 import numpy as np
 import pytest
 import scipy.sparse as sp
@@ -150,6 +152,18 @@ def _roundtrip(state: dict, path) -> dict:
         assert isinstance(value, (np.ndarray, int, float, str)), type(value)
     save_checkpoint(path, {k: np.asarray(v) for k, v in state.items()}, {})
     return load_checkpoint(path)[0]
+
+
+@pytest.mark.parametrize("name", SOLVER_NAMES)
+def test_a_step_given_its_first_gradient_computed_on_another_thread_is_the_same_step(name):
+    # Reference: the same solver stepping on its own (the contract of step's ``first``): equal bits.
+    n, batches = _small_hashed_problem()
+    a, b = make_solver(name, n, "logistic", 1e-3), make_solver(name, n, "logistic", 1e-3)
+    with ThreadPoolExecutor(1) as pool:
+        for batch in batches * 2:
+            first = pool.submit(b.first_gradient, batch).result()
+            assert a.step(batch) == b.step(batch, first)
+    assert np.array_equal(a.state()["x"], b.state()["x"])
 
 
 @pytest.mark.parametrize("name", SOLVER_NAMES)
