@@ -1,16 +1,16 @@
 """Several L2 strengths from one read of the log: ``--l2-strength A,B,C`` (up to ``MAX_VALUES``) or ``auto``.
 
 Each batch is read and hashed once and stepped by one solver per value, one after another
-(:class:`SweepTrainer`). A value's training is exactly a single-value run's with the same options and
-seed: its solver, iterate average, phases (the in-memory log of the full-batch passes is collected
+(:class:`SweepTrainer`), the values' first gradients of the batch computed side by side on numba's
+threads before their steps. A value's training is exactly a single-value run's with the same options
+and seed: its solver, iterate average, phases (the in-memory log of the full-batch passes is collected
 once and shared), early stop and best pass are a :class:`trainer.training.Trainer`'s, so its weights
 are bit for bit those of that run. The values' full-batch passes run in lockstep
-(:func:`trainer.solvers.full_batch.minimize`): one pass over the in-memory log evaluates every value
-waiting for an evaluation. On the 1M-row benchmark (``scripts/bench_train.py --sweep``, 3 passes;
-three runs, each beside a run of the previous version in the same minutes) the 5 values of the auto
-grid as a list took 2.83x-3.57x one value's wall time (median 3.40x) and ``auto`` 2.44x-3.14x (2.98x),
-their passes 2 and 3 33.2-41.3 s on one core; with the values' passes on two threads, one value each:
-3.25x-4.22x (3.40x), 2.68x-3.28x (2.78x) and 35.6-46.1 s on two cores. A value that stops early stops
+(:func:`trainer.solvers.full_batch.minimize`): one pass over the in-memory log per group of values, the
+groups on numba's threads, evaluates every value waiting for an evaluation. On the 1M-row benchmark
+(``scripts/bench_train.py --sweep``, 3 passes; two runs of three rounds) the 5 values of the auto grid
+as a list took 2.59x and 2.72x one value's wall time (medians; rounds 2.47x-2.86x) and ``auto`` 2.20x
+and 1.97x (the README's Performance section has the history). A value that stops early stops
 stepping; training ends when every value has stopped or ``--epochs`` is reached. The holdout, required,
 is read once per pass for all values. The value of the lowest best-pass holdout loss (log-loss;
 squared-hinge loss for that loss) is kept as the folder's model; every value's model is in

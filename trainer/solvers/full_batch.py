@@ -12,16 +12,15 @@ resumed at a pass boundary repeats exactly what the uninterrupted run did.
 
 Several values of a sweep (:mod:`trainer.sweep`) run their passes together (:func:`minimize`): each
 value's L-BFGS-B is driven call by call through scipy's reverse-communication routine (:class:`LBFGSB`),
-and each round one pass over the rows computes the objective and gradient of every value waiting for
-them (:func:`trainer.kernels.objectives_into`, the K weights of a bucket side by side), each value's
-sums in the order of a value alone, so its weights are those of its pass alone, bit for bit. On the
-1M-row benchmark log (``scripts/bench_train.py --sweep``: 218k distinct buckets, 21 entries a row,
-36 evaluations a pass), an evaluation of 5 values takes 0.38-0.48 s on one core against 0.12 s for one
-value (each value still takes its own exponential and logarithm a row and its own arithmetic an
-entry), and a full-batch pass of the 5 values 16.1-20.8 s against 4.4-7.7 s for one, where the values'
-passes on two threads, one value each, took 15.5-26.9 s in the same minutes (three runs each). Running
-the values' evaluations on two threads, two or three values each, gave 8-16% on an idle machine and
-lost 30-50% while another process kept a core busy, so the pass keeps to one core.
+and each round one pass over the rows per group of values computes the objective and gradient of every
+value waiting for them (:func:`trainer.kernels.objectives_into`: a bucket's weights and gradient sums of
+the group side by side, a row's margins in registers), each value's sums in the order of a value
+alone, so its weights are those of its pass alone, bit for bit. The groups (:func:`groups`) run on
+numba's threads (``NUMBA_NUM_THREADS``), one each. On the 1M-row benchmark log (``scripts/bench_train.py
+--sweep``: 218k distinct buckets, 21 entries a row, about 36 evaluations a pass) an evaluation of 5
+values took 0.38-0.40 s on one core in one group against 0.13-0.14 s for one value, and 0.26-0.30 s
+as groups of 3 and 2 on two threads; the kernel before (a row's margins in a small array, the weights
+and the gradient sums in two arrays) took 0.48-0.58 s in the same two runs.
 
 Memory: the in-memory log takes ``log_bytes(rows, entries)`` (int32 bucket and float64 value per
 entry, row pointer, label, row weight, margin and residual per row); while a pass runs, each value adds
