@@ -12,15 +12,16 @@ resumed at a pass boundary repeats exactly what the uninterrupted run did.
 
 Several values of a sweep (:mod:`trainer.sweep`) run their passes together (:func:`minimize`): each
 value's L-BFGS-B is driven call by call through scipy's reverse-communication routine (:class:`LBFGSB`),
-and each round one pass over the rows per group of values computes the objective and gradient of every
-value waiting for them (:func:`trainer.kernels.objectives_into`: a bucket's weights and gradient sums of
-the group side by side, a row's margins in registers), each value's sums in the order of a value
-alone, so its weights are those of its pass alone, bit for bit. The groups (:func:`groups`) run on
-numba's threads (``NUMBA_NUM_THREADS``), one each. On the 1M-row benchmark log (``scripts/bench_train.py
---sweep``: 218k distinct buckets, 21 entries a row, about 36 evaluations a pass) an evaluation of 5
-values took 0.38-0.40 s on one core in one group against 0.13-0.14 s for one value, and 0.26-0.30 s
-as groups of 3 and 2 on two threads; the kernel before (a row's margins in a small array, the weights
-and the gradient sums in two arrays) took 0.48-0.58 s in the same two runs.
+the values are split into groups (:func:`groups`), one per numba thread (``NUMBA_NUM_THREADS``), and
+each round of a group one pass over the rows computes the objective and gradient of every value of
+the group waiting for them (:func:`trainer.kernels.objectives_into`: a bucket's weights and gradient
+sums of the group side by side, a row's margins in registers), each value's sums in the order of a
+value alone, so its weights are those of its pass alone, bit for bit. While one group's thread is in
+scipy's routine (which holds the GIL), the other's evaluates. On the 1M-row benchmark log
+(``scripts/bench_train.py --sweep``: 218k distinct buckets, 21 entries a row, about 36 evaluations a
+pass) an evaluation of 5 values took 0.38-0.40 s on one core in one group against 0.13-0.14 s for one
+value, and 0.26-0.30 s as groups of 3 and 2 on two threads; the kernel before (a row's margins in a
+small array, the weights and the gradient sums in two arrays) took 0.48-0.58 s in the same two runs.
 
 Memory: the in-memory log takes ``log_bytes(rows, entries)`` (int32 bucket and float64 value per
 entry, row pointer, label, row weight, margin and residual per row); while a pass runs, each value adds
@@ -30,9 +31,9 @@ point and gradient, its columns of the evaluation's weights and gradient sums, i
 
 from __future__ import annotations
 
+import threading
 import time
 from concurrent.futures import ThreadPoolExecutor
-from contextlib import nullcontext
 from dataclasses import dataclass
 
 import numba
@@ -309,44 +310,64 @@ class _Problem:
         return True
 
 
-def _evaluate(log: InMemoryLog, code: int, problems: list[_Problem], scratch: np.ndarray, pool,
-              threads: int) -> None:
-    """Write each problem's objective and scaled gradient at its point, from one pass over the rows per
-    group of :func:`groups` (:func:`trainer.kernels.objectives_into`), the groups on the ``threads``
-    threads of ``pool`` (a ThreadPoolExecutor, None for one thread); ``scratch`` holds at least
-    m x 2 len(problems) float64 values."""
-    m = log.cols.shape[0]
+def _evaluate(log: InMemoryLog, code: int, problems: list[_Problem], scratch: np.ndarray) -> None:
+    """Write each problem's objective and scaled gradient at its point, all from one pass over the rows
+    (:func:`trainer.kernels.objectives_into`); ``scratch`` holds at least m x 2 len(problems) float64
+    values."""
+    m, k = log.cols.shape[0], len(problems)
+    WG = scratch[: 2 * m * k].reshape(m, 2 * k)
     vs = [p.solver.arrays["u"] * p.scale for p in problems]
-    loss_sums, r_sums = np.empty(len(problems)), np.empty(len(problems))
-    calls, grads = [], []
-    for part in groups(len(problems), threads):
-        k = part.stop - part.start
-        WG = scratch[2 * m * part.start: 2 * m * part.stop].reshape(m, 2 * k)
-        for j, v in enumerate(vs[part]):
-            WG[:, j] = v[:m]
-        grads += [WG[:, k + j] for j in range(k)]
-        calls.append((code, log.indptr, log.slot, log.data, log.labels, log.weights, WG,
-                      tuple(float(v[m]) for v in vs[part]), loss_sums[part], r_sums[part]))
-    if pool is None:
-        sums = [objectives_into(*args) for args in calls]
-    else:
-        sums = list(pool.map(lambda args: objectives_into(*args), calls))
-    weight_sum = sums[0]
-    for p, v, G, loss_sum, r_sum in zip(problems, vs, grads, loss_sums, r_sums):
+    for j, v in enumerate(vs):
+        WG[:, j] = v[:m]
+    loss_sums, r_sums = np.empty(k), np.empty(k)
+    weight_sum = objectives_into(code, log.indptr, log.slot, log.data, log.labels, log.weights, WG,
+                                 tuple(float(v[m]) for v in vs), loss_sums, r_sums)
+    for j, (p, v) in enumerate(zip(problems, vs)):
         w, a = v[:m], p.solver.arrays
         g = a["g"]
-        g[:m] = G * (1.0 / weight_sum)
+        g[:m] = WG[:, k + j] * (1.0 / weight_sum)
         g[:m] += p.l2 * w
-        g[m] = r_sum / weight_sum
+        g[m] = r_sums[j] / weight_sum
         g *= p.scale
-        a["f"][...] = loss_sum / weight_sum + 0.5 * p.l2 * dot(w, w)
+        a["f"][...] = loss_sums[j] / weight_sum + 0.5 * p.l2 * dot(w, w)
         p.evaluations += 1
         p.last = (a["u"].copy(), a["f"].copy(), g.copy())
 
 
+def _lockstep(log: InMemoryLog, code: int, problems: list[_Problem], iterations: int, halted,
+              started: float) -> None:
+    """Advance ``problems`` together until each has converged or reached its limits, one evaluation of
+    all those waiting for one a round (:func:`_evaluate`); return early once ``halted()``, polled after
+    every iteration, says so."""
+    scratch = np.empty(2 * log.cols.shape[0] * len(problems))
+    active, max_evaluations = problems, 2 * iterations + 20
+    while active:
+        asking = []
+        for p in active:
+            task = p.solver.call()
+            while task == LBFGSB.NEW_POINT or (task == LBFGSB.EVALUATE and p.asks_again()):
+                if task == LBFGSB.NEW_POINT:
+                    p.iterations += 1
+                    if halted():
+                        return
+                    if p.iterations >= iterations:
+                        p.solver.halt(LBFGSB.MAX_ITERATIONS)
+                    elif p.evaluations > max_evaluations:
+                        p.solver.halt(LBFGSB.MAX_EVALUATIONS)
+                task = p.solver.call()
+            if task == LBFGSB.EVALUATE:
+                asking.append(p)
+            else:
+                p.seconds = time.perf_counter() - started
+        if asking:
+            _evaluate(log, code, asking, scratch)
+        active = asking
+
+
 def groups(count: int, threads: int) -> list[slice]:
-    """How :func:`minimize` splits ``count`` values waiting for an evaluation over ``threads`` threads:
-    min(count, threads) consecutive groups, their sizes differing by at most one (larger first).
+    """How :func:`minimize` splits ``count`` values over ``threads`` threads, each group advancing in
+    lockstep on its own: min(count, threads) consecutive groups, their sizes differing by at most one
+    (larger first).
 
     Parameters
     ----------
@@ -381,11 +402,11 @@ def minimize(log: InMemoryLog, code: int, l2s, xs, *, history: int = 10,
 
     Each value's L-BFGS-B is ``scipy.optimize.minimize(method="L-BFGS-B")``'s with the options ``maxiter``
     = ``iterations``, ``maxcor`` = ``history``, ``ftol`` = ``FTOL``, ``gtol`` = ``GTOL``, ``maxfun`` =
-    2 ``iterations`` + 20, driven through :class:`LBFGSB`; the values advance in lockstep, and each
-    round computes the objectives and gradients of all values waiting for one in a single pass over the
-    rows (:func:`trainer.kernels.objectives_into`, each value's sums in the order of one value alone), so
-    a value's result does not depend on the others. A value leaves the lockstep when it converges or
-    reaches its limits.
+    2 ``iterations`` + 20, driven through :class:`LBFGSB`; the values, in :func:`groups` of one thread
+    each, advance in lockstep, and each round of a group computes the objectives and gradients of its
+    values waiting for one in a single pass over the rows (:func:`trainer.kernels.objectives_into`,
+    each value's sums in the order of one value alone), so a value's result does not depend on the
+    others. A value leaves the lockstep when it converges or reaches its limits.
 
     Parameters
     ----------
@@ -426,32 +447,25 @@ def minimize(log: InMemoryLog, code: int, l2s, xs, *, history: int = 10,
         solver = LBFGSB(m + 1, history, FTOL, GTOL)
         solver.arrays["u"][:] = v0 / scale
         problems.append(_Problem(l2, x, scale, solver))
-    scratch = np.empty(2 * m * len(problems))
-    threads = min(len(problems), numba.get_num_threads())
-    with ThreadPoolExecutor(threads) if threads > 1 else nullcontext() as pool:
-        active, max_evaluations = problems, 2 * iterations + 20
-        while active:
-            asking = []
-            for p in active:
-                task = p.solver.call()
-                while task == LBFGSB.NEW_POINT or (task == LBFGSB.EVALUATE and p.asks_again()):
-                    if task == LBFGSB.NEW_POINT:
-                        p.iterations += 1
-                        if stop is not None and stop():
-                            return [_summary(q, iterations, time.perf_counter() - started, stopped=True)
-                                    for q in problems]
-                        if p.iterations >= iterations:
-                            p.solver.halt(LBFGSB.MAX_ITERATIONS)
-                        elif p.evaluations > max_evaluations:
-                            p.solver.halt(LBFGSB.MAX_EVALUATIONS)
-                    task = p.solver.call()
-                if task == LBFGSB.EVALUATE:
-                    asking.append(p)
-                else:
-                    p.seconds = time.perf_counter() - started
-            if asking:
-                _evaluate(log, code, asking, scratch, pool, threads)
-            active = asking
+    lock, stopped = threading.Lock(), []
+
+    def halted() -> bool:
+        with lock:  # polled from the groups' threads; once True, True for all
+            if not stopped and stop is not None and stop():
+                stopped.append(True)
+            return bool(stopped)
+
+    parts = groups(len(problems), numba.get_num_threads())
+    if len(parts) == 1:
+        _lockstep(log, code, problems, iterations, halted, started)
+    else:
+        with ThreadPoolExecutor(len(parts)) as pool:
+            runs = [pool.submit(_lockstep, log, code, problems[part], iterations, halted, started)
+                    for part in parts]
+            for run in runs:
+                run.result()
+    if stopped:
+        return [_summary(q, iterations, time.perf_counter() - started, stopped=True) for q in problems]
     for p in problems:
         u = p.solver.arrays["u"]
         p.x[:] = 0.0
