@@ -319,7 +319,11 @@ class LinearSolver:
         Diverged
             When the loss or the gradient is non-finite.
         """
-        return self._gradient(batch)
+        return self._gradient(batch, curvature=self._first_curvature())
+
+    def _first_curvature(self) -> bool:
+        """Whether :meth:`first_gradient` takes the curvature (the methods that use it say so)."""
+        return False
 
     def _gradient(self, batch, curvature: bool = False) -> BatchGradient:
         """Evaluate the batch at the current weights; raise ``Diverged`` when the result is non-finite."""

@@ -256,20 +256,9 @@ class OnlineLBFGS(LinearSolver):
         """
         return super().dense_bytes(n_features) + (4 * (history + 1) + 8) * (n_features + 1)
 
-    def first_gradient(self, batch) -> BatchGradient:
-        """The batch's loss, gradient and curvature at the current weights, as :meth:`step` begins
-        (see :meth:`trainer.solvers.LinearSolver.first_gradient`).
-
-        Parameters
-        ----------
-        batch : trainer.reader.stream.Batch
-            The minibatch.
-
-        Returns
-        -------
-        trainer.solvers.BatchGradient
-        """
-        return self._gradient(batch, curvature=True)
+    def _first_curvature(self) -> bool:
+        """Whether :meth:`first_gradient` takes the curvature: every step takes the batch's curvature."""
+        return True
 
     def step(self, batch, first: BatchGradient | None = None) -> float:
         """One oLBFGS update from a batch.

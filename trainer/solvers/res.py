@@ -108,20 +108,9 @@ class RES(LinearSolver):
         diag[n] += g0.hb
         return np.asfortranarray(np.diag(diag))
 
-    def first_gradient(self, batch) -> BatchGradient:
-        """The batch's loss, gradient and curvature at the current weights, as :meth:`step` begins
-        (see :meth:`trainer.solvers.LinearSolver.first_gradient`).
-
-        Parameters
-        ----------
-        batch : trainer.reader.stream.Batch
-            The minibatch.
-
-        Returns
-        -------
-        trainer.solvers.BatchGradient
-        """
-        return self._gradient(batch, curvature=not self._started)
+    def _first_curvature(self) -> bool:
+        """Whether :meth:`first_gradient` takes the curvature: the first step takes the batch's curvature (the initial matrix)."""
+        return not self._started
 
     def step(self, batch, first: BatchGradient | None = None) -> float:
         """One RES update from a batch.
