@@ -8,9 +8,9 @@ once and shared), early stop and best pass are a :class:`trainer.training.Traine
 are bit for bit those of that run. The values' full-batch passes run in lockstep
 (:func:`trainer.solvers.full_batch.minimize`): one pass over the in-memory log per group of values, the
 groups on numba's threads, evaluates every value waiting for an evaluation. On the 1M-row benchmark
-(``scripts/bench_train.py --sweep``, 3 passes; two runs of three rounds) the 5 values of the auto grid
-as a list took 2.59x and 2.72x one value's wall time (medians; rounds 2.47x-2.86x) and ``auto`` 2.20x
-and 1.97x (the README's Performance section has the history). A value that stops early stops
+(``scripts/bench_train.py --sweep``, 3 passes; three runs of three rounds) the 5 values of the auto
+grid as a list took 2.38x one value's median wall time over the nine rounds (runs' medians 2.09x-2.57x)
+and ``auto`` 1.90x (the README's Performance section has the history). A value that stops early stops
 stepping; training ends when every value has stopped or ``--epochs`` is reached. The holdout, required,
 is read once per pass for all values. The value of the lowest best-pass holdout loss (log-loss;
 squared-hinge loss for that loss) is kept as the folder's model; every value's model is in
