@@ -139,7 +139,7 @@ def test_sweep_killed_and_resumed_is_bit_identical(log_with_holdout, tmp_path, e
 def test_sweep_resumed_from_its_weights_after_a_full_batch_pass_is_bit_identical(log_with_holdout, tmp_path):
     # Reference: an uninterrupted 3-pass sweep of the same command (the resume contract); the 2-pass run's
     # checkpoint holds each value's weights alone, from which pass 3 (full-batch) starts. Patience 3: no
-    # value stops early in either run.
+    # value stops early, so both values take pass 3.
     root, spec = log_with_holdout
     ref, cut = tmp_path / "ref", tmp_path / "cut"
     assert main(sweep_args(root, spec, ref, "--epochs", "3", "--patience", "3")) == 0
@@ -151,6 +151,27 @@ def test_sweep_resumed_from_its_weights_after_a_full_batch_pass_is_bit_identical
         assert np.array_equal(a.weights, b.weights) and a.intercept == b.intercept  # bit for bit
     holdout = [json.loads(x)["holdout"] for x in (cut / "metrics.jsonl").read_text().splitlines()]
     assert holdout == [json.loads(x)["holdout"] for x in (ref / "metrics.jsonl").read_text().splitlines()]
+
+
+@pytest.mark.parametrize("l2,passes", [("1e-4,1e-2", 2), ("auto", 1)])
+def test_a_sweep_resumed_with_more_passes_goes_on_as_one_started_with_them(log_with_holdout, tmp_path, l2,
+                                                                            passes):
+    # Reference: an uninterrupted 3-pass sweep of the same command (the resume contract). The decisions
+    # a pass end takes only while passes remain are taken on the resume: a value's early stop (patience
+    # 1; 1e-4 gets worse in pass 2 on this log), auto's narrowing after pass 1, the full-batch passes.
+    root, spec = log_with_holdout
+    ref, cut = tmp_path / "ref", tmp_path / "cut"
+    assert main(sweep_args(root, spec, ref, "--epochs", "3", "--l2-strength", l2)) == 0
+    assert main(sweep_args(root, spec, cut, "--epochs", str(passes), "--l2-strength", l2)) == 0
+    assert main(sweep_args(root, spec, cut, "--epochs", "3", "--l2-strength", l2, "--resume")) == 0
+    theirs = [json.loads(x) for x in (ref / "metrics.jsonl").read_text().splitlines()]
+    ours = [json.loads(x) for x in (cut / "metrics.jsonl").read_text().splitlines()]
+    assert [(x["pass"], x["l2_strength"], x["phase"], x["holdout"]) for x in ours] == \
+        [(x["pass"], x["l2_strength"], x["phase"], x["holdout"]) for x in theirs]
+    assert json.loads((cut / "run.json").read_text())["sweep"] == json.loads((ref / "run.json").read_text())["sweep"]
+    for folder in sorted((ref / "l2").iterdir()):
+        a, b = load_model(folder), load_model(cut / "l2" / folder.name)
+        assert np.array_equal(a.weights, b.weights) and a.intercept == b.intercept  # bit for bit
 
 
 def test_a_resume_with_other_values_is_refused(log_with_holdout, tmp_path, capsys):

@@ -98,6 +98,22 @@ def test_after_a_full_batch_pass_the_checkpoint_holds_the_weights_and_resumes_ex
     assert phases == ["online", "full-batch", "full-batch", "full-batch"]
 
 
+def test_a_run_resumed_with_more_passes_goes_on_as_one_started_with_them(log_4files, tmp_path):
+    # Reference: an uninterrupted 3-pass run of the same command (the resume contract). A 1-pass run never
+    # decides the switch to full-batch passes (no pass is left); resumed with --epochs 3 it takes it then.
+    data, spec = log_4files
+    ref, cut = tmp_path / "ref", tmp_path / "cut"
+    assert main(cli_args(spec, data, ref, "--epochs", "3")) == 0
+    assert main(cli_args(spec, data, cut, "--epochs", "1")) == 0
+    assert main(cli_args(spec, data, cut, "--epochs", "3", "--resume")) == 0
+    w_ref, b_ref = weights_of(ref)
+    w_cut, b_cut = weights_of(cut)
+    assert np.array_equal(w_ref, w_cut) and b_ref == b_cut  # bit for bit
+    phases = [json.loads(x)["phase"] for x in (cut / "metrics.jsonl").read_text().splitlines()]
+    assert phases == ["online", "full-batch", "full-batch"]
+    assert json.loads((cut / "run.json").read_text())["phases"] == json.loads((ref / "run.json").read_text())["phases"]
+
+
 def test_resume_refusals_leave_checkpoint_untouched(log_4files, tmp_path, capsys):
     # Common practice: refuse a mismatched or corrupt state and leave it as it was (byte comparison).
     data, spec = log_4files

@@ -341,7 +341,7 @@ class SweepTrainer(Trainer):
                             "--holdout PATH, or --holdout-start/--holdout-end days of --data")
         check_budget(spec, options, len(self.values))
         self.auto = options.l2_strength == AUTO
-        self.narrowed: list[float] = []
+        self.narrowed: list[float] | None = None  # auto's rule not applied yet
         self._pool = None
         self._bits = np.zeros((spec.n_buckets + 63) // 64, dtype=np.uint64)
         super().__init__(spec, data, out, options, holdout=holdout, resume=resume, force=force, quiet=quiet)
@@ -446,7 +446,6 @@ class SweepTrainer(Trainer):
         fitted : dict of float to dict, optional
             Each value's full-batch summary (None after an online pass).
         """
-        st = self.state
         self.check_classes()
         lanes = self.stepping
         started = time.monotonic()
@@ -467,17 +466,23 @@ class SweepTrainer(Trainer):
             for line in lane.notes(record, f" (l2 {l2_label(lane.value)})"):
                 self.log(line)
         self.end_pass()
-        if self.auto and st.pass_index == 1 and st.pass_index < self.opt.epochs:
-            self._narrow(lanes)
-        st.stopped_early = not self.stepping and st.pass_index < self.opt.epochs
-        self.next_phase()
+        self._decide()
         self.save_checkpoint()
 
-    def _narrow(self, lanes: list[_Lane]) -> None:
+    def _decide(self) -> None:
+        """A pass end's decisions that look at the passes left: ``auto``'s narrowing after pass 1 (once),
+        the sweep's stop when no value steps any more, the switch to full-batch passes."""
+        st = self.state
+        if self.auto and self.narrowed is None and st.pass_index == 1 and st.pass_index < self.opt.epochs:
+            self._narrow()
+        st.stopped_early = not self.stepping and st.pass_index < self.opt.epochs
+        self.next_phase()
+
+    def _narrow(self) -> None:
         """Stop the values that :func:`narrowed` names after pass 1; say so in the log and in run.json."""
-        scores = {lane.value: lane.state.best_score for lane in lanes}
+        scores = {lane.value: lane.state.best_score for lane in self.lanes}
         self.narrowed = narrowed(self.values, scores)
-        for lane in lanes:
+        for lane in self.lanes:
             if lane.value in self.narrowed:
                 lane.state.stopped_early = True
         if self.narrowed:
@@ -507,8 +512,12 @@ class SweepTrainer(Trainer):
         for lane, state in zip(self.lanes, meta["lanes"]):
             prefix = f"l2/{l2_label(lane.value)}/"
             lane.restore({k[len(prefix):]: v for k, v in arrays.items() if k.startswith(prefix)}, state)
-        self.narrowed = list(meta["narrowed"])
+        self.narrowed = meta["narrowed"]
         self._resumed(meta)
+        if self.state.position is None:
+            for lane in self.lanes:
+                lane.patience_stop()
+            self._decide()
 
     # -- the end ----------------------------------------------------------------------------------
 
@@ -534,7 +543,7 @@ class SweepTrainer(Trainer):
 
     def _stopped(self, lane: _Lane) -> str:
         """Why a value stopped stepping, in words."""
-        if lane.value in self.narrowed:
+        if lane.value in (self.narrowed or ()):
             return "stopped after pass 1 by the auto rule"
         if lane.state.stopped_early:
             return f"early stop after pass {lane.state.pass_index}"
@@ -543,7 +552,7 @@ class SweepTrainer(Trainer):
     def _write_sweep(self, **end) -> None:
         """The ``sweep`` entry of run.json: the values, the auto rule and what it stopped, and at the end the
         kept value (``end``)."""
-        sweep = {"values": list(self.values), "auto": self.auto, "narrowed": self.narrowed, **end}
+        sweep = {"values": list(self.values), "auto": self.auto, "narrowed": self.narrowed or [], **end}
         if self.auto:
             sweep["rule"] = (f"after pass 1, a value whose holdout loss exceeds the best's by more than "
                              f"{AUTO_MARGIN:.0%} stops, unless it is the best's neighbour on the grid")

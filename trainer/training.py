@@ -485,6 +485,9 @@ class Trainer:
         arrays, meta = self._read_checkpoint()
         self.restore(arrays, meta["state"])
         self._resumed(meta)
+        if self.state.position is None:
+            self.patience_stop()
+            self.next_phase()
 
     def _read_checkpoint(self) -> tuple[dict, dict]:
         """The folder's checkpoint (arrays, meta); refuses one of another run."""
@@ -496,7 +499,10 @@ class Trainer:
 
     def _resumed(self, meta: dict) -> None:
         """After the state was restored from a checkpoint's ``meta``: take its bucket examples, and drop the
-        metrics lines of the passes it does not count."""
+        metrics lines of the passes it does not count. A checkpoint at a pass end is then followed by
+        that pass end's decisions for this run's ``--epochs`` (the early stop, the switch to full-batch
+        passes), which a run with fewer passes left untaken: resumed with more passes, a run goes on as
+        one started with them would have."""
         ex = meta["examples"]
         self.examples = BucketExamples(self.spec.n_buckets, max_rows=ex["rows_left"], values=ex["values"])
         self._saved = (self.state.pass_index, self.state.rows_in_pass)
@@ -1034,9 +1040,15 @@ class Trainer:
             st.best_score, st.best_pass, st.bad_passes = score, st.pass_index, 0
             return record, True
         st.bad_passes += 1
+        self.patience_stop()
+        return record, False
+
+    def patience_stop(self) -> None:
+        """Stop early when the holdout loss has not improved for ``--patience`` passes and passes remain
+        (a pass end's decision, taken again on a resume at a pass end for this run's ``--epochs``)."""
+        st = self.state
         if st.bad_passes >= self.opt.patience and st.pass_index < self.opt.epochs:
             st.stopped_early = True
-        return record, False
 
     def end_pass(self) -> None:
         """Count a finished pass: the pass index, the position back to the start, the pass's step counts."""
