@@ -196,7 +196,7 @@ def objectives_into(code, indptr, slot, data, labels, weights, WG, b, loss_sums,
     for start in range(0, n_rows, OBJECTIVE_BLOCK):
         stop = min(start + OBJECTIVE_BLOCK, n_rows)
         for i in range(start, stop):
-            zi = b
+            zi = b  # the row's K margins start at the intercepts
             for e in range(indptr[i], indptr[i + 1]):
                 p = slot[e]
                 v = data[e]
@@ -215,7 +215,7 @@ def objectives_into(code, indptr, slot, data, labels, weights, WG, b, loss_sums,
                 r_sums[k] += rk
             weight_sum += c
         for i in range(start, stop):
-            ri = b
+            ri = b  # a tuple of K floats (b's type), filled with the row's residuals
             for k in range(n_models):
                 ri = tuple_setitem(ri, k, z[i - start, k])
             for e in range(indptr[i], indptr[i + 1]):

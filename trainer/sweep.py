@@ -393,8 +393,12 @@ class SweepTrainer(Trainer):
         """An online pass (:meth:`trainer.training.Trainer._one_pass`), the values' first gradients of
         each batch on numba's threads side by side, before their steps (one after another)."""
         threads = min(len(self.stepping), numba.get_num_threads())
-        with ThreadPoolExecutor(threads) if threads > 1 else nullcontext() as self._pool:
-            super()._one_pass(stop)
+        with ThreadPoolExecutor(threads) if threads > 1 else nullcontext() as pool:
+            self._pool = pool
+            try:
+                super()._one_pass(stop)
+            finally:
+                self._pool = None  # no pass, no pool: take() outside a pass steps one thread
 
     def progress_text(self) -> str:
         """The progress bar's note.

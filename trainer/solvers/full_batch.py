@@ -447,13 +447,13 @@ def minimize(log: InMemoryLog, code: int, l2s, xs, *, history: int = 10,
         solver = LBFGSB(m + 1, history, FTOL, GTOL)
         solver.arrays["u"][:] = v0 / scale
         problems.append(_Problem(l2, x, scale, solver))
-    lock, stopped = threading.Lock(), []
+    lock, stopped = threading.Lock(), threading.Event()
 
     def halted() -> bool:
         with lock:  # polled from the groups' threads; once True, True for all
-            if not stopped and stop is not None and stop():
-                stopped.append(True)
-            return bool(stopped)
+            if not stopped.is_set() and stop is not None and stop():
+                stopped.set()
+            return stopped.is_set()
 
     parts = groups(len(problems), numba.get_num_threads())
     if len(parts) == 1:
@@ -464,7 +464,7 @@ def minimize(log: InMemoryLog, code: int, l2s, xs, *, history: int = 10,
                     for part in parts]
             for run in runs:
                 run.result()
-    if stopped:
+    if stopped.is_set():
         return [_summary(q, iterations, time.perf_counter() - started, stopped=True) for q in problems]
     for p in problems:
         u = p.solver.arrays["u"]
