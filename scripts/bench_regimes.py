@@ -15,8 +15,13 @@ package ships) it computes
   in-memory CSR, the best setting at each pass);
 - time to LL <= 1.01 LL*: hashcurve's cumulative training seconds from Parquet (metrics.jsonl), the
   peer's whole grid (every setting run to the target or 30 passes, the sum: what a user who must
-  search the step pays) and the peer's single best setting known in advance. Timings on a shared
-  machine are noisy: read them as measured, not as the tool's speed.
+  search the step pays) and the peer's single best setting known in advance;
+- (c) one pass: hashcurve's first pass from Parquet (training seconds) over the median of the peer
+  grid's first-pass times on the in-memory CSR, and beside it the memory-traffic floor of that pass's
+  dense work: its steps x ``bench_train.dense_bytes_per_step`` over the triad bandwidth measured at
+  the start of the run (``bench_train.triad_bandwidth``).
+
+Timings on a shared machine are noisy: read them as measured, not as the tool's speed.
 
 Before the first regime, two untimed passes on its first day load numba's kernels (:func:`warm_up`).
 
@@ -53,10 +58,11 @@ HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 
 import loggen  # noqa: E402
-from bench_train import (OPTIMUM_METHOD, PEER_PASSES, TARGET, cached_optimum, load_csr, log_loss,  # noqa: E402
-                         run_hashcurve, run_peer)
+from bench_train import (OPTIMUM_METHOD, PEER_PASSES, TARGET, cached_optimum, dense_bytes_per_step,  # noqa: E402
+                         load_csr, log_loss, run_hashcurve, run_peer, triad_bandwidth)
 
 from trainer.atomic import write_atomic  # noqa: E402
+from trainer.options import TrainOptions  # noqa: E402
 from trainer.solvers.res import MAX_FEATURES as RES_MAX_FEATURES  # noqa: E402
 from trainer.spec import load_spec  # noqa: E402
 
@@ -176,7 +182,7 @@ def train_keywords(d: dict, r: Regime) -> dict:
     return kw
 
 
-def run_regime(r: Regime, passes: int, skip_peer: bool) -> dict:
+def run_regime(r: Regime, passes: int, skip_peer: bool, bandwidth: float) -> dict:
     d = prepare(r)
     spec = load_spec(d["spec"])
     X, y = load_csr(spec, d["data"], *d["train"])
@@ -202,6 +208,15 @@ def run_regime(r: Regime, passes: int, skip_peer: bool) -> dict:
         print(f"  {name} at defaults: " + " / ".join(f"{h['ll'] / ll_star:.4f}" for h in out[name]), flush=True)
     if not skip_peer:
         out["peer"] = run_peer(X, y, Xh, yh, r.l2, TARGET * ll_star)
+    first = out["hashcurve"][0]
+    if first["phase"] == "online":
+        out["dense_floor"] = first["steps"] * dense_bytes_per_step(spec.n_buckets, TrainOptions().history) / bandwidth
+    if "peer" in out:
+        out["peer_pass"] = float(np.median([p["history"][0]["seconds"] for p in out["peer"]]))
+        floor = (f"; the dense work of its {first['steps']} steps moves at least {out['dense_floor']:.2f} s of memory "
+                 "traffic" if "dense_floor" in out else "")
+        print(f"  (c) one pass: hashcurve {first['seconds']:.2f} s from Parquet, the peer's median "
+              f"{out['peer_pass']:.3f} s from memory: {first['seconds'] / out['peer_pass']:.2f}x{floor}", flush=True)
     return out
 
 
@@ -222,10 +237,10 @@ def _rows(n: int) -> str:
 
 def print_table(results: list[dict], passes: int) -> None:
     """The matrix as one Markdown table (the README's): regime x pass, LL / LL* per solver, times to 1.01
-    LL* and hashcurve's time over the peer grid's (i)."""
+    LL*, hashcurve's time over the peer grid's (i), and (c) its first pass over the peer's median pass."""
     print("\n| regime | rows | l2 | pass | hashcurve | phase | SGD peer best | AdaGrad | tool SGD | RES | "
-          "hashcurve s to 1.01 LL* | peer grid s (i) | peer best s (ii) | hashcurve / (i) |")
-    print("|---|---|---|---|---|---|---|---|---|---|---|---|---|---|")
+          "hashcurve s to 1.01 LL* | peer grid s (i) | peer best s (ii) | hashcurve / (i) | (c) pass 1 / peer pass |")
+    print("|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|")
     for res in results:
         ll_star = res["ll_star"]
         ours = res["hashcurve"]
@@ -236,9 +251,11 @@ def print_table(results: list[dict], passes: int) -> None:
         for p in range(1, passes + 1):
             peer_best = (f"{min(q['history'][min(p, len(q['history'])) - 1]['ll'] for q in peer) / ll_star:.4f}"
                          if peer else "-")
+            one = (f"{ours[0]['seconds']:.2f} / {res['peer_pass']:.3f} s = {ours[0]['seconds'] / res['peer_pass']:.1f}x"
+                   if peer else "-")
             times = (f"{_seconds(hit)} | {_seconds(grid) if peer else '-'} | {_seconds(best) if peer else '-'} | "
-                     + (f"{hit / grid:.2f}x" if peer and math.isfinite(hit) and grid > 0 else "-")
-                     if p == 1 else " | | | ")
+                     + (f"{hit / grid:.2f}x" if peer and math.isfinite(hit) and grid > 0 else "-") + f" | {one}"
+                     if p == 1 else " | | | | ")
             phase = ours[p - 1]["phase"] if p <= len(ours) else "-"
             l2 = f"{res['l2']:.0e}".replace("e-0", "e-")
             head = f"{res['name']} | {_rows(res['rows'])} | {l2}" if p == 1 else " |  | "
@@ -248,6 +265,10 @@ def print_table(results: list[dict], passes: int) -> None:
     print("\nLL* per regime: " + ", ".join(f"{r['name']} {r['ll_star']:.5f}" for r in results))
     print(f"peer grid: SGDClassifier constant steps and 'optimal', each to LL <= {TARGET} LL* or {PEER_PASSES} "
           "passes on the in-memory CSR; hashcurve from Parquet, training seconds only")
+    floors = [f"{r['name']} {r['dense_floor']:.2f} s" for r in results if "dense_floor" in r]
+    if floors:
+        print("(c) the memory-traffic floor of an online first pass's dense work (steps x bytes a step / triad "
+              "bandwidth): " + ", ".join(floors))
 
 
 def main() -> None:
@@ -263,7 +284,9 @@ def main() -> None:
         if name not in by_name:
             ap.error(f"--regimes: unknown regime {name!r}; known: {', '.join(by_name)}")
     warm_up(by_name[chosen[0]])
-    results = [run_regime(by_name[name], a.passes, a.skip_peer) for name in chosen]
+    bandwidth = triad_bandwidth()
+    print(f"triad bandwidth {bandwidth / 1e9:.1f} GB/s", flush=True)
+    results = [run_regime(by_name[name], a.passes, a.skip_peer, bandwidth) for name in chosen]
     print_table(results, a.passes)
 
 
