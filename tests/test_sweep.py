@@ -174,6 +174,31 @@ def test_a_sweep_resumed_with_more_passes_goes_on_as_one_started_with_them(log_w
         assert np.array_equal(a.weights, b.weights) and a.intercept == b.intercept  # bit for bit
 
 
+@pytest.mark.parametrize("l2", ["1e-4", "1e-5,1e-4"])
+def test_a_run_stopped_early_goes_on_when_resumed_with_a_larger_patience(log_with_holdout, tmp_path, l2):
+    # Reference: an uninterrupted 3-pass run started with --patience 2 (the resume contract). With
+    # patience 1, 1e-4 stops after pass 2 (its holdout loss gets worse there on this log, as 1e-5's
+    # does: the sweep of both stops there); resumed with patience 2 it takes pass 3, as the run started
+    # with patience 2 does.
+    root, spec = log_with_holdout
+    ref, cut = tmp_path / "ref", tmp_path / "cut"
+    assert main(sweep_args(root, spec, ref, "--epochs", "3", "--patience", "2", "--l2-strength", l2)) == 0
+    assert main(sweep_args(root, spec, cut, "--epochs", "3", "--patience", "1", "--l2-strength", l2)) == 0
+    stopped = [json.loads(x) for x in (cut / "metrics.jsonl").read_text().splitlines()]
+    assert [x["pass"] for x in stopped if x.get("l2_strength", 1e-4) == 1e-4] == [1, 2]
+    assert main(sweep_args(root, spec, cut, "--epochs", "3", "--patience", "2", "--l2-strength", l2,
+                           "--resume")) == 0
+    theirs = [json.loads(x) for x in (ref / "metrics.jsonl").read_text().splitlines()]
+    ours = [json.loads(x) for x in (cut / "metrics.jsonl").read_text().splitlines()]
+    assert [x["pass"] for x in ours if x.get("l2_strength", 1e-4) == 1e-4] == [1, 2, 3]
+    assert [(x["pass"], x.get("l2_strength"), x["phase"], x["holdout"]) for x in ours] == \
+        [(x["pass"], x.get("l2_strength"), x["phase"], x["holdout"]) for x in theirs]
+    folders = [ref / "l2" / f.name for f in sorted((ref / "l2").iterdir())] if "," in l2 else [ref]
+    for folder in folders:
+        a, b = load_model(folder), load_model(cut / folder.relative_to(ref))
+        assert np.array_equal(a.weights, b.weights) and a.intercept == b.intercept  # bit for bit
+
+
 def test_a_resume_with_other_values_is_refused(log_with_holdout, tmp_path, capsys):
     # Reference: the resume contract (README: another weight-changing option is refused, naming it).
     root, spec = log_with_holdout

@@ -520,7 +520,8 @@ class SweepTrainer(Trainer):
         self._resumed(meta)
         if self.state.position is None:
             for lane in self.lanes:
-                lane.patience_stop()
+                if lane.state.pass_index == self.state.pass_index and lane.value not in (self.narrowed or ()):
+                    lane.patience_stop()
             self._decide()
 
     # -- the end ----------------------------------------------------------------------------------

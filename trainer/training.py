@@ -1045,10 +1045,11 @@ class Trainer:
 
     def patience_stop(self) -> None:
         """Stop early when the holdout loss has not improved for ``--patience`` passes and passes remain
-        (a pass end's decision, taken again on a resume at a pass end for this run's ``--epochs``)."""
+        (a pass end's decision, taken again on a resume at a pass end for this run's ``--epochs`` and
+        ``--patience``: a run that stopped early goes on when resumed with a patience it has not used up,
+        as a run started with it would have)."""
         st = self.state
-        if st.bad_passes >= self.opt.patience and st.pass_index < self.opt.epochs:
-            st.stopped_early = True
+        st.stopped_early = st.bad_passes >= self.opt.patience and st.pass_index < self.opt.epochs
 
     def end_pass(self) -> None:
         """Count a finished pass: the pass index, the position back to the start, the pass's step counts."""
