@@ -325,6 +325,11 @@ class LinearSolver:
         """Whether :meth:`first_gradient` takes the curvature (the methods that use it say so)."""
         return False
 
+    def _begin(self, batch, first: BatchGradient | None) -> BatchGradient:
+        """The gradient a step begins with: ``first`` when it was computed beforehand, else
+        :meth:`first_gradient` of ``batch``."""
+        return first if first is not None else self.first_gradient(batch)
+
     def _gradient(self, batch, curvature: bool = False) -> BatchGradient:
         """Evaluate the batch at the current weights; raise ``Diverged`` when the result is non-finite."""
         self._check_batch(batch)

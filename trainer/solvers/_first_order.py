@@ -157,7 +157,7 @@ class FirstOrderSolver(LinearSolver):
         ValueError
             For an empty batch or a bucket id out of range.
         """
-        g = first if first is not None else self.first_gradient(batch)
+        g = self._begin(batch, first)
         step = self._step_size()
         acc = self._accumulators()
         m = g.cols.shape[0] + 1

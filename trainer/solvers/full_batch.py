@@ -224,9 +224,8 @@ class LBFGSB:
         return {"u": (size, np.float64), "f": (1, np.float64), "g": (size, np.float64),
                 "wa": (2 * m * size + 5 * size + 11 * m * m + 8 * m, np.float64), "iwa": (3 * size, np.int32),
                 "task": (2, np.int32), "ln_task": (2, np.int32), "lsave": (4, np.int32),
-                "isave": (44, np.int32),
-                "dsave": (29, np.float64), "bound_lo": (size, np.float64), "bound_hi": (size, np.float64),
-                "bound_kind": (size, np.int32)}
+                "isave": (44, np.int32), "dsave": (29, np.float64),
+                "bound_lo": (size, np.float64), "bound_hi": (size, np.float64), "bound_kind": (size, np.int32)}
 
     @property
     def task(self) -> int:

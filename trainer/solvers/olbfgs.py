@@ -291,7 +291,7 @@ class OnlineLBFGS(LinearSolver):
         clock = time.perf_counter
         started = clock()
         n = self.n
-        g0 = first if first is not None else self.first_gradient(batch)
+        g0 = self._begin(batch, first)
         gcols = np.append(g0.cols, np.int32(n))
         gvals = np.append(g0.gsp, g0.gb)
         gptr = chunk_pointers(gcols, n + 1)

@@ -109,7 +109,8 @@ class RES(LinearSolver):
         return np.asfortranarray(np.diag(diag))
 
     def _first_curvature(self) -> bool:
-        """Whether :meth:`first_gradient` takes the curvature: the first step takes the batch's curvature (the initial matrix)."""
+        """Whether :meth:`first_gradient` takes the curvature: the first step does (the initial matrix is
+        the batch's curvature)."""
         return not self._started
 
     def step(self, batch, first: BatchGradient | None = None) -> float:
@@ -136,7 +137,7 @@ class RES(LinearSolver):
             For an empty batch or a bucket id out of range.
         """
         n = self.n
-        g0 = first if first is not None else self.first_gradient(batch)
+        g0 = self._begin(batch, first)
         g = np.empty(n + 1, dtype=np.float64)
         regularized_gradient(self._x[:n], self.l2, g0.cols, g0.gsp, g0.gb, g)
         B = self._B if self._started else self._initial_matrix(g0)
